@@ -1,0 +1,284 @@
+"""numba kernels: exact propagation, zero-current events, the open-loop cycle loop.
+
+Kernels are plain typed loops over arrays (no small-matrix ``@``: it compiles
+slowly and runs slower for 3 x 3). Everything a kernel needs is passed in as
+arrays prepared by :mod:`bucksim.engine.tables`.
+
+Propagation over an arbitrary interval ``d`` uses a table of exact
+transition matrices ``E[s, k] = expm(M_s h_k)`` with ``h_k = T 2**-k``:
+``d`` is decomposed into its binary digits and the matching matrices are
+applied to the state vector, so a new interval length costs ``O(K m^2)``
+multiply-adds and no new matrix exponential. Every product is of exact
+transition matrices, so the result is exact to rounding whatever the
+eigenstructure of ``M`` (repeated, zero or complex eigenvalues alike).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+# conduction codes (mirrors bucksim.stage; numba needs plain module constants)
+HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = 0, 1, 2, 3, 4
+N_CONDUCTION = 5
+GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2
+ASYNC, FORCED, EMULATION = 0, 1, 2
+
+STATUS_OK, STATUS_DIVERGED, STATUS_FULL = 0, 1, 2
+
+
+@njit(cache=True)
+def apply(E, s, k, z, tmp):
+    """z <- E[s, k] @ z (in place, via tmp)."""
+    m = z.shape[0]
+    for i in range(m):
+        acc = 0.0
+        for j in range(m):
+            acc += E[s, k, i, j] * z[j]
+        tmp[i] = acc
+    for i in range(m):
+        z[i] = tmp[i]
+
+
+@njit(cache=True)
+def derivative(Ms, s, z, row):
+    """Component ``row`` of M_s @ z."""
+    acc = 0.0
+    for j in range(z.shape[0]):
+        acc += Ms[s, row, j] * z[j]
+    return acc
+
+
+@njit(cache=True)
+def advance(Ms, E, h, s, z, d, tmp):
+    """z <- expm(M_s d) @ z for any d >= 0, by binary decomposition of d."""
+    K = h.shape[0]
+    r = d
+    while r >= h[0]:
+        apply(E, s, 0, z, tmp)
+        r -= h[0]
+    for k in range(1, K):
+        if r >= h[k]:
+            apply(E, s, k, z, tmp)
+            r -= h[k]
+    if r > 0.0:
+        # r < h[K-1] ~ 1e-14 T: the first-order term is exact to rounding
+        m = z.shape[0]
+        for i in range(m):
+            acc = 0.0
+            for j in range(m):
+                acc += Ms[s, i, j] * z[j]
+            tmp[i] = z[i] + r * acc
+        for i in range(m):
+            z[i] = tmp[i]
+
+
+@njit(cache=True)
+def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial):
+    """First zero of z[0] in (t, t + width], bracketed: z[0] has sign ``sign0`` at t.
+
+    Binary descent over the transition table keeps the state on the
+    ``sign0`` side until the gap is below h[K-1]; one Newton step on the
+    analytic derivative then lands on the zero. Returns the zero's time;
+    ``z`` holds the state there with ``z[0] = 0`` exactly.
+    """
+    K = h.shape[0]
+    m = z.shape[0]
+    gap = width
+    for k in range(K):
+        if h[k] > gap:
+            continue
+        for i in range(m):
+            trial[i] = z[i]
+        apply(E, s, k, trial, tmp)
+        if sign0 * trial[0] > 0.0:
+            for i in range(m):
+                z[i] = trial[i]
+            t += h[k]
+            gap -= h[k]
+        else:
+            gap = h[k]
+    slope = derivative(Ms, s, z, 0)
+    if slope != 0.0:
+        step = -z[0] / slope
+        if 0.0 < step <= 2.0 * h[K - 1]:
+            for i in range(m):
+                tmp[i] = z[i] + step * derivative(Ms, s, z, i)
+            for i in range(m):
+                z[i] = tmp[i]
+            t += step
+    z[0] = 0.0
+    return t
+
+
+@njit(cache=True)
+def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work):
+    """Locate the first zero of iL in (a, b] given the states at both ends.
+
+    Returns the zero's time (``za`` then holds the state there) or -1.0 when
+    iL keeps the sign ``sign0`` over the whole interval. Intervals longer
+    than ``guard`` (a quarter of the fastest natural time constant) are
+    marched in sub-steps so that each sub-step holds at most one extremum of
+    iL; inside a sub-step an extremum that turns toward zero is checked, so a
+    touch-and-return crossing is not stepped over.
+    """
+    m = za.shape[0]
+    n_sub = 1
+    if b - a > guard:
+        n_sub = int(np.ceil((b - a) / guard))
+    t0 = a
+    for q in range(n_sub):
+        t1 = b if q == n_sub - 1 else a + (b - a) * (q + 1) / n_sub
+        for i in range(m):
+            work[i] = za[i]
+        if n_sub == 1:
+            for i in range(m):
+                work[i] = zb[i]
+        else:
+            advance(Ms, E, h, s, work, t1 - t0, tmp)
+        if sign0 * work[0] <= 0.0:
+            return refine_zero(Ms, E, h, s, za, t0, t1 - t0, sign0, tmp, trial)
+        da = sign0 * derivative(Ms, s, za, 0)
+        db = sign0 * derivative(Ms, s, work, 0)
+        if da < 0.0 and db > 0.0:
+            te = t0 + (t1 - t0) * da / (da - db)
+            for i in range(m):
+                trial[i] = za[i]
+            advance(Ms, E, h, s, trial, te - t0, tmp)
+            if sign0 * trial[0] <= 0.0:
+                return refine_zero(Ms, E, h, s, za, t0, te - t0, sign0, tmp, trial)
+        for i in range(m):
+            za[i] = work[i]
+        t0 = t1
+    return -1.0
+
+
+@njit(cache=True)
+def conduction_for(gate, strategy, il):
+    """Conduction state entered under ``gate`` with inductor current ``il``."""
+    if gate == GATE_HIGH:
+        return HIGH
+    if gate == GATE_LOW:
+        if strategy == FORCED:
+            return LOW
+        if il > 0.0:
+            return LOW
+    if il > 0.0:
+        return LOW_DIODE
+    if il < 0.0:
+        return HIGH_DIODE
+    return IDLE
+
+
+@njit(cache=True)
+def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
+                  c_start, c_stop, level_times, level, z, t_end, guard,
+                  seg_t0, seg_dt, seg_cond, seg_sys, seg_x0):
+    """Simulate switching cycles ``c_start .. c_stop-1`` from state ``z``.
+
+    Segments are written to the ``seg_*`` arrays from index 0. Returns
+    ``(n_segments, level, status, t)``; ``z`` holds the state at ``t``.
+    """
+    n = seg_x0.shape[1]
+    m = z.shape[0]
+    tmp = np.empty(m)
+    trial = np.empty(m)
+    work = np.empty(m)
+    zs = np.empty(m)
+    gates = np.empty(4, np.int64)
+    durs = np.empty(4)
+    n_levels = level_times.shape[0]
+    cap = seg_t0.shape[0]
+    nseg = 0
+    t = c_start * T
+    for c in range(c_start, c_stop):
+        tc = c * T
+        ton = t_on[c] if t_on.shape[0] > 1 else t_on[0]
+        if strategy == ASYNC:
+            nph = 2
+            gates[0] = GATE_HIGH
+            durs[0] = ton
+            gates[1] = GATE_OFF
+            durs[1] = T - ton
+        else:
+            nph = 4
+            gates[0] = GATE_HIGH
+            durs[0] = ton
+            gates[1] = GATE_OFF
+            durs[1] = td_fall
+            gates[2] = GATE_LOW
+            durs[2] = max(0.0, T - ton - td_fall - td_rise)
+            gates[3] = GATE_OFF
+            durs[3] = td_rise
+        offset = 0.0
+        for p in range(nph):
+            t_phase = tc + offset
+            offset += durs[p]
+            t_phase_end = (c + 1) * T if p == nph - 1 else tc + offset
+            if t_phase_end <= t_phase:
+                continue
+            t = t_phase
+            cond = conduction_for(gates[p], strategy, z[0])
+            while t < t_phase_end:
+                while level + 1 < n_levels and level_times[level + 1] <= t:
+                    level += 1
+                t_stop = t_phase_end
+                if level + 1 < n_levels and level_times[level + 1] < t_stop:
+                    t_stop = level_times[level + 1]
+                if t_end < t_stop:
+                    t_stop = t_end
+                s = level * N_CONDUCTION + cond
+                if nseg >= cap:
+                    return nseg, level, STATUS_FULL, t
+                seg_t0[nseg] = t
+                seg_cond[nseg] = cond
+                seg_sys[nseg] = s
+                for i in range(n):
+                    seg_x0[nseg, i] = z[i]
+                for i in range(m):
+                    zs[i] = z[i]
+                d = t_stop - t
+                if t == t_phase and t_stop == t_phase_end and durs[p] == nominal[p]:
+                    apply(P, s, p, z, tmp)
+                else:
+                    advance(Ms, E, h, s, z, d, tmp)
+                evented = cond == LOW_DIODE or cond == HIGH_DIODE or (
+                    cond == LOW and strategy == EMULATION)
+                if evented:
+                    sign0 = -1.0 if cond == HIGH_DIODE else 1.0
+                    tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard,
+                                   tmp, trial, work)
+                    if tz >= 0.0:
+                        for i in range(m):
+                            z[i] = zs[i]
+                        seg_dt[nseg] = tz - t
+                        nseg += 1
+                        t = tz
+                        cond = IDLE
+                        continue
+                seg_dt[nseg] = d
+                nseg += 1
+                t = t_stop
+                for i in range(m):
+                    if not np.isfinite(z[i]):
+                        return nseg, level, STATUS_DIVERGED, t
+                if t >= t_end:
+                    return nseg, level, STATUS_OK, t
+    return nseg, level, STATUS_OK, t
+
+
+@njit(cache=True)
+def evaluate(Ms, E, h, seg_sys, seg_x0, index, tau, out):
+    """States ``out[j] = z(t_j)`` for times given as (segment index, offset)."""
+    n = seg_x0.shape[1]
+    m = out.shape[1]
+    z = np.empty(m)
+    tmp = np.empty(m)
+    for j in range(index.shape[0]):
+        k = index[j]
+        for i in range(n):
+            z[i] = seg_x0[k, i]
+        z[m - 1] = 1.0
+        advance(Ms, E, h, seg_sys[k], z, tau[j], tmp)
+        for i in range(m):
+            out[j, i] = z[i]

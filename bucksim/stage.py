@@ -1,0 +1,203 @@
+"""Conduction states of the buck power stage as linear systems.
+
+The stage has two energy-storage states, ``x = [iL, vC]``: the inductor
+current (positive toward the load) and the voltage across the ideal part of
+the output capacitor. Within one conduction state the circuit is linear,
+``x' = A x + b``. The engine works on the augmented state ``z = [iL, vC, 1]``
+with ``z' = M z``, ``M = [[A, b], [0, 0]]``, which treats singular ``A`` (the
+idle state, a load with no resistor) without special cases.
+
+Circuit (all values from the scenario)::
+
+    Vin --Rs--+--[high side]--+-- sw --L--DCR--+--+-- vo
+              |               |                |  |
+                        [low side]          ESR  load (R || Icc)
+                              |              C    |
+    gnd ------+---------------+----------------+--+
+
+Output voltage with ESR ``rC`` and load conductance ``g``:
+``vo = (vC + rC (iL - Icc)) / (1 + rC g)``; load current ``io = g vo + Icc``;
+capacitor current ``iC = iL - io``.
+
+Switch-node voltage per conduction state (``iL`` sign in brackets):
+
+===========  =================================  ==========================
+state        vsw                                current through the part
+===========  =================================  ==========================
+HIGH         Vin - (Rs + Rds_hs) iL             high-side channel: iL
+LOW          -Rds_ls iL                         low-side channel: iL
+LOW_DIODE    -Vf_ls - r_ls iL      (iL > 0)     low-side diode: iL
+HIGH_DIODE   Vin + Vf_hs - (Rs + r_hs) iL (iL<0) high-side body diode: -iL
+IDLE         vo (iL = 0, held)                  none
+===========  =================================  ==========================
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .parts import Diode, Mosfet, Scenario
+
+HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = range(5)
+N_CONDUCTION = 5
+CONDUCTION_NAMES = ("high", "low", "low-diode", "high-diode", "idle")
+
+#: Gate commands of a switching phase.
+GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2
+
+STRATEGY_CODES = {"asynchronous": 0, "forced-pwm": 1, "diode-emulation": 2}
+
+N_STATES = 2
+STATE_NAMES = ("iL", "vC")
+
+
+@dataclass(frozen=True)
+class Level:
+    """Supply and load values that hold from ``time`` [s] to the next level."""
+
+    time: float
+    vin: float
+    conductance: float
+    current: float
+
+
+def operating_levels(scenario: Scenario) -> list[Level]:
+    """Merge supply and load steps into one list of piecewise-constant levels."""
+    supply = [(0.0, scenario.supply.voltage)] + [(s.time, s.voltage) for s in scenario.supply.steps]
+    load = scenario.load.levels()
+    times = sorted({t for t, _ in supply} | {t for t, _, _ in load})
+    out = []
+    for t in times:
+        vin = [v for ts, v in supply if ts <= t][-1]
+        g, i = [(g, i) for ts, g, i in load if ts <= t][-1]
+        out.append(Level(float(t), float(vin), float(g), float(i)))
+    return out
+
+
+class Stage:
+    """Linear systems and output maps for every (level, conduction state).
+
+    System id ``s = level * N_CONDUCTION + conduction``. ``matrices[s]`` is the
+    augmented ``M`` (3 x 3). :meth:`signal` returns a row vector ``c`` such that
+    a signal equals ``c @ z`` in that system.
+    """
+
+    def __init__(self, scenario: Scenario):
+        self.scenario = scenario
+        self.levels = operating_levels(scenario)
+        self.n = N_STATES
+        ind, cap = scenario.inductor, scenario.output_capacitor
+        self.L, self.dcr = ind.inductance, ind.dcr
+        self.C, self.esr = cap.capacitance, cap.esr
+        self.rs = scenario.supply.resistance
+        hs, ls = scenario.high_side, scenario.low_side
+        self.rds_hs = hs.rds_on
+        self.vf_hs, self.r_hs = hs.body_diode.vf, hs.body_diode.r
+        if isinstance(ls, Mosfet):
+            self.rds_ls = ls.rds_on
+            self.vf_ls, self.r_ls = ls.body_diode.vf, ls.body_diode.r
+        else:
+            assert isinstance(ls, Diode)
+            self.rds_ls = 0.0  # no channel: the LOW state is never entered
+            self.vf_ls, self.r_ls = ls.vf, ls.r
+        self.matrices = np.array([self._matrix(lev, k) for lev in self.levels
+                                  for k in range(N_CONDUCTION)])
+
+    # -- maps ----------------------------------------------------------------
+    def system_id(self, level: int, conduction: int) -> int:
+        return level * N_CONDUCTION + conduction
+
+    def split_id(self, system: int) -> tuple[int, int]:
+        """Return ``(level, conduction)`` of a system id."""
+        return divmod(int(system), N_CONDUCTION)
+
+    def _vo(self, lev: Level):
+        den = 1.0 + self.esr * lev.conductance
+        return np.array([self.esr, 1.0, -self.esr * lev.current]) / den
+
+    def _vsw(self, lev: Level, k: int, vo: np.ndarray):
+        if k == HIGH:
+            return np.array([-(self.rs + self.rds_hs), 0.0, lev.vin])
+        if k == LOW:
+            return np.array([-self.rds_ls, 0.0, 0.0])
+        if k == LOW_DIODE:
+            return np.array([-self.r_ls, 0.0, -self.vf_ls])
+        if k == HIGH_DIODE:
+            return np.array([-(self.rs + self.r_hs), 0.0, lev.vin + self.vf_hs])
+        return vo.copy()  # idle: inductor voltage is zero
+
+    def _matrix(self, lev: Level, k: int) -> np.ndarray:
+        vo = self._vo(lev)
+        io = lev.conductance * vo + np.array([0.0, 0.0, lev.current])
+        ic = np.array([1.0, 0.0, 0.0]) - io
+        if k == IDLE:
+            di = np.zeros(3)  # iL is held at exactly zero
+        else:
+            di = (self._vsw(lev, k, vo) - vo - np.array([self.dcr, 0.0, 0.0])) / self.L
+        dv = ic / self.C
+        return np.array([di, dv, [0.0, 0.0, 0.0]])
+
+    def signal(self, name: str, system: int) -> np.ndarray:
+        """Row vector ``c`` with ``signal = c @ z`` in ``system``.
+
+        Names: ``iL``, ``vC``, ``vo``, ``io``, ``ic``, ``iin`` (current drawn
+        from the ideal source), ``vsw``, ``vin``, and the device currents
+        ``high_side``, ``low_side``, ``high_side_body_diode``,
+        ``low_side_body_diode`` (each positive in its conducting direction:
+        channels carry iL, the high-side body diode carries -iL).
+        """
+        level, k = self.split_id(system)
+        lev = self.levels[level]
+        il = np.array([1.0, 0.0, 0.0])
+        zero = np.zeros(3)
+        vo = self._vo(lev)
+        if name == "iL":
+            return il
+        if name == "vC":
+            return np.array([0.0, 1.0, 0.0])
+        if name == "vo":
+            return vo
+        if name == "io":
+            return lev.conductance * vo + np.array([0.0, 0.0, lev.current])
+        if name == "ic":
+            return il - (lev.conductance * vo + np.array([0.0, 0.0, lev.current]))
+        if name == "iin":
+            return il if k in (HIGH, HIGH_DIODE) else zero
+        if name == "vsw":
+            return self._vsw(lev, k, vo)
+        if name == "vin":
+            return np.array([0.0, 0.0, lev.vin])
+        asynchronous = self.scenario.switching.strategy == "asynchronous"
+        if name == "high_side":
+            return il if k == HIGH else zero
+        if name == "high_side_body_diode":
+            return -il if k == HIGH_DIODE else zero
+        if name == "low_side":
+            if asynchronous:
+                return il if k == LOW_DIODE else zero
+            return il if k == LOW else zero
+        if name == "low_side_body_diode":
+            return il if (k == LOW_DIODE and not asynchronous) else zero
+        raise KeyError(f"unknown signal {name!r}")
+
+    def device_models(self):
+        """Per device: ``(name, resistance [ohm], forward drop [V])`` of its conduction loss.
+
+        The conduction loss of a device is ``r * i**2 + vf * i`` with its
+        current ``i`` from :meth:`signal`.
+        """
+        asynchronous = self.scenario.switching.strategy == "asynchronous"
+        out = [("high_side", self.rds_hs, 0.0),
+               ("high_side_body_diode", self.r_hs, self.vf_hs)]
+        if asynchronous:
+            out.append(("low_side", self.r_ls, self.vf_ls))
+        else:
+            out += [("low_side", self.rds_ls, 0.0),
+                    ("low_side_body_diode", self.r_ls, self.vf_ls)]
+        return out
+
+    def stored_energy(self, x: np.ndarray) -> float:
+        """Energy in L and C [J] for state ``x = [iL, vC]``."""
+        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2

@@ -1,0 +1,78 @@
+"""The Summary result object: metrics of a run's window, as a dict and a table."""
+
+from __future__ import annotations
+
+import copy
+import json
+
+DEVICE_ORDER = ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode",
+                "inductor", "output_capacitor", "supply")
+
+
+class Summary:
+    """Metrics over the summary window (keys as in the design contract).
+
+    Index it like a dict (``summary["power"]["loss"]``) or take
+    :meth:`to_dict` for a plain, JSON-ready copy. Values are SI units.
+    """
+
+    def __init__(self, data: dict):
+        self._data = data
+
+    def __getitem__(self, key):
+        return self._data[key]
+
+    def __contains__(self, key):
+        return key in self._data
+
+    def keys(self):
+        return self._data.keys()
+
+    def to_dict(self) -> dict:
+        """A deep copy of the summary as plain Python types."""
+        return copy.deepcopy(self._data)
+
+    def to_json(self, **kw) -> str:
+        return json.dumps(self._data, **kw)
+
+    def table(self) -> str:
+        """A readable multi-line table with engineering units."""
+        from .units import format_si
+
+        d = self._data
+        w = d["window"]
+        vo, il, p = d["output_voltage"], d["inductor_current"], d["power"]
+        lines = [
+            f"window        {format_si(w['start'], 's')} .. {format_si(w['stop'], 's')} "
+            f"({w['cycles']:.4g} cycles)",
+            f"mode          {d['mode'].upper()}"
+            + ("   inductor current reverses" if d["reverse_current"] else ""),
+            f"output        mean {format_si(vo['mean'], 'V')}   ripple {format_si(vo['ripple'], 'V')} p-p"
+            f"   [{format_si(vo['min'], 'V')}, {format_si(vo['max'], 'V')}]",
+            f"inductor      mean {format_si(il['mean'], 'A')}   rms {format_si(il['rms'], 'A')}"
+            f"   ripple {format_si(il['ripple'], 'A')} p-p   [{format_si(il['min'], 'A')}, "
+            f"{format_si(il['max'], 'A')}]",
+            "",
+            f"{'device':<22}{'rms':>12}{'mean':>12}{'conduction':>13}{'switching':>13}",
+        ]
+        for name in DEVICE_ORDER:
+            if name not in d["devices"]:
+                continue
+            v = d["devices"][name]
+            lines.append(f"{name:<22}{format_si(v['rms'], 'A'):>12}{format_si(v['mean'], 'A'):>12}"
+                         f"{format_si(v['conduction_loss'], 'W'):>13}"
+                         f"{format_si(v['switching_loss'], 'W'):>13}")
+        lines += [
+            "",
+            f"power         in {format_si(p['input'], 'W')}   out {format_si(p['output'], 'W')}"
+            f"   loss {format_si(p['loss'], 'W')}",
+            f"efficiency    {100 * d['efficiency']:.3f} %",
+            f"energy balance error {d['energy_balance_error']:.2e} (relative)",
+        ]
+        return "\n".join(lines)
+
+    def __str__(self):
+        return self.table()
+
+    def __repr__(self):
+        return f"<Summary efficiency={self._data['efficiency']:.5f} mode={self._data['mode']}>"
