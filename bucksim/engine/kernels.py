@@ -31,6 +31,12 @@ STATUS_OK, STATUS_DIVERGED, STATUS_FULL = 0, 1, 2
 def apply(E, s, k, z, tmp):
     """z <- E[s, k] @ z (in place, via tmp)."""
     m = z.shape[0]
+    if m == 3:  # the two-state stage: unrolled, ~3x faster than the loop
+        z0, z1, z2 = z[0], z[1], z[2]
+        z[0] = E[s, k, 0, 0] * z0 + E[s, k, 0, 1] * z1 + E[s, k, 0, 2] * z2
+        z[1] = E[s, k, 1, 0] * z0 + E[s, k, 1, 1] * z1 + E[s, k, 1, 2] * z2
+        z[2] = E[s, k, 2, 0] * z0 + E[s, k, 2, 1] * z1 + E[s, k, 2, 2] * z2
+        return
     for i in range(m):
         acc = 0.0
         for j in range(m):
