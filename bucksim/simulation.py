@@ -17,7 +17,9 @@ def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
         From :func:`bucksim.load_scenario` or built from :mod:`bucksim.parts`.
     x0 : array_like, optional
         Initial ``[iL [A], vC [V]]``; default from ``scenario.run``
-        (``initial_current``, ``initial_voltage``; zero = start from rest).
+        (``initial_current``, ``initial_voltage``; zero = start from rest),
+        or the periodic steady state when ``run.start = "steady-state"``
+        (then ``run.steady_state`` holds the :class:`~bucksim.steady.SteadyState`).
     check : bool
         Raise :class:`~bucksim.errors.SimulationError` if the run did not
         complete (by default the Run carries ``status``/``message``).
@@ -29,10 +31,19 @@ def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
     if scenario.control.mode != "open-loop":
         raise NotImplementedError(
             f"control.mode = {scenario.control.mode!r} is not available yet; use 'open-loop'")
+    steady = None
+    if x0 is None and scenario.run.start == "steady-state":
+        from .steady import steady_state
+        steady = steady_state(scenario)
+        if not steady.success:
+            raise SimulationError(f"{scenario.source or scenario.title}: run.start = "
+                                  f"'steady-state': {steady.message}")
+        x0 = steady.x
     stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
     result = integrate(stage, x0, table=table)
     run = Run(scenario, stage, table, result)
+    run.steady_state = steady
     if check and not run.success:
         raise SimulationError(run.message)
     return run

@@ -90,7 +90,8 @@ def phase_durations(scenario, on_time: float) -> list[float]:
 
 
 def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = None,
-              chunk_cycles: int = CHUNK_CYCLES, sink=None) -> EngineResult:
+              chunk_cycles: int = CHUNK_CYCLES, sink=None, n_cycles: int | None = None,
+              t_end: float | None = None, phase_cache: dict | None = None) -> EngineResult:
     """Simulate ``stage.scenario`` from ``x0`` for its run duration.
 
     Parameters
@@ -105,14 +106,20 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
     sink : callable, optional
         Called as ``sink(t0, dt, conduction, system, x0)`` with each chunk of
         segments instead of keeping them; the result then holds no segments.
+    n_cycles, t_end : optional
+        Override the scenario's run length (cycles, and the time to stop [s]).
+    phase_cache : dict, optional
+        Keeps the fixed-phase exponentials between calls (keyed on the
+        nominal durations), for callers that integrate one stage many times.
     """
-    from .kernels import ASYNC, EMULATION, FORCED  # noqa: F401  (codes)
     from ..stage import STRATEGY_CODES
 
     sc = stage.scenario
     T = sc.period
-    n_cycles = sc.n_cycles
-    t_end = sc.duration
+    if n_cycles is None:
+        n_cycles = sc.n_cycles
+    if t_end is None:
+        t_end = sc.duration if n_cycles == sc.n_cycles else n_cycles * T
     if x0 is None:
         x0 = [sc.run.initial_current, sc.run.initial_voltage]
     if on_times is None:
@@ -121,7 +128,13 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
     if table is None:
         table = build_table(stage.matrices, T)
     nominal = np.array(phase_durations(sc, float(on_times[-1])) + [0.0] * 4)[:4]
-    P = phase_exponentials(table.matrices, nominal)
+    key = tuple(nominal)
+    if phase_cache is not None and key in phase_cache:
+        P = phase_cache[key]
+    else:
+        P = phase_exponentials(table.matrices, nominal)
+        if phase_cache is not None:
+            phase_cache[key] = P
     tf, tr = sc.switching.dead_time
     strategy = STRATEGY_CODES[sc.switching.strategy]
     level_times = np.array([lev.time for lev in stage.levels])
