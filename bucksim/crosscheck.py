@@ -50,11 +50,13 @@ class CrossCheck:
         from .units import format_si
         head = f"{'item':<34}{'closed form':>13}{'waveforms':>13}{'diff':>12}{'diff %':>9}"
         lines = [head, "-" * len(head)]
+        def w(v):
+            return "n/a" if v is None else format_si(v, "W")
+
         for r in self.rows:
             pct = "" if r["percent"] is None else f"{r['percent']:+.2f}"
-            lines.append(f"{r['item']:<34}{format_si(r['closed_form'], 'W'):>13}"
-                         f"{format_si(r['simulated'], 'W'):>13}"
-                         f"{format_si(r['difference'], 'W'):>12}{pct:>9}")
+            lines.append(f"{r['item']:<34}{w(r['closed_form']):>13}{w(r['simulated']):>13}"
+                         f"{w(r['difference']):>12}{pct:>9}")
             if r["reason"]:
                 lines.append(f"    -> {r['reason']}")
         return "\n".join(lines)
@@ -91,15 +93,26 @@ def crosscheck(scenario, run=None, cycles=None) -> CrossCheck:
     ----------
     scenario : Scenario
     run : Run, optional
-        A run of ``scenario`` (simulated if omitted; start it in steady state
-        or run it long enough to settle).
+        A settled run of ``scenario``. If omitted, the periodic steady state
+        is found by shooting (:func:`bucksim.steady_state`) and the window is
+        simulated from it, so the comparison is at the true operating point.
     cycles : int, optional
         Summary window in periods (default ``run.summary_cycles``).
     """
     from .simulation import simulate
 
     if run is None:
-        run = simulate(scenario)
+        import dataclasses
+
+        from .steady import steady_state
+        ss = steady_state(scenario)
+        if not ss.success:
+            raise RuntimeError(f"crosscheck: no periodic steady state: {ss.message}")
+        n = cycles or scenario.run.summary_cycles
+        settled = dataclasses.replace(scenario, run=dataclasses.replace(
+            scenario.run, cycles=n, duration=None, start="rest",
+            initial_current=float(ss.x[0]), initial_voltage=float(ss.x[1])))
+        run = simulate(settled)
     summary = run.summary(cycles=cycles).to_dict()
     budget = estimate(scenario)
     op = budget.operating_point

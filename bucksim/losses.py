@@ -52,6 +52,25 @@ def _zeros():
     return {k: 0.0 for k in KINDS}
 
 
+def _conduction_before_start(scenario, il: float) -> int:
+    """Conduction state just before t = 0, as if the run had been switching before.
+
+    A run starts at a high-side turn-on; the state before it is the end of
+    the previous period: the rising dead time (diode chosen by the sign of
+    iL), the low-side channel in forced PWM without dead time, or idle.
+    """
+    sw = scenario.switching
+    if sw.strategy == "forced-pwm" and sw.dead_time[1] == 0.0:
+        return LOW
+    if sw.strategy == "diode-emulation" and sw.dead_time[1] == 0.0 and il > 0:
+        return LOW
+    if il > 0:
+        return LOW_DIODE
+    if il < 0:
+        return HIGH_DIODE
+    return IDLE
+
+
 def switching_energy(run, t_start: float, t_stop: float) -> dict:
     """Switching energy per device and kind over ``[t_start, t_stop)``.
 
@@ -70,8 +89,9 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
     qrr_hs = hs.body_diode.qrr
 
     k = np.nonzero((seg.t0 >= t_start) & (seg.t0 < t_stop))[0]
-    k = k[k >= 1]
-    prev = seg.conduction[k - 1]
+    prev = seg.conduction[np.maximum(k - 1, 0)].copy()
+    if k.shape[0] and k[0] == 0:
+        prev[0] = _conduction_before_start(sc, seg.x0[0, 0])
     cur = seg.conduction[k]
     changed = prev != cur
     k, prev, cur = k[changed], prev[changed], cur[changed]

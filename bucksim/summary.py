@@ -62,6 +62,9 @@ class Summary:
             lines.append(f"{name:<22}{format_si(v['rms'], 'A'):>12}{format_si(v['mean'], 'A'):>12}"
                          f"{format_si(v['conduction_loss'], 'W'):>13}"
                          f"{format_si(v['switching_loss'], 'W'):>13}")
+        core = d["devices"].get("inductor", {}).get("core_loss")
+        if core is not None:
+            lines.append(f"{'inductor core (iGSE)':<22}{'':>24}{format_si(core, 'W'):>13}")
         lines += [
             "",
             f"power         in {format_si(p['input'], 'W')}   out {format_si(p['output'], 'W')}"
