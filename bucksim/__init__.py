@@ -26,4 +26,29 @@ def load_scenario(path):
     return _load(path)
 
 
-__all__ = ["load_scenario", "simulate", "Run", "ScenarioError", "SimulationError", "__version__"]
+def open_run(path):
+    """Open a run stored with :meth:`Run.save` (see :mod:`bucksim.storage`)."""
+    from .storage import open_run as _open
+    return _open(path)
+
+
+def steady_state(scenario, **kw):
+    """Periodic steady state by shooting-Newton (see :mod:`bucksim.steady`)."""
+    from .steady import steady_state as _ss
+    return _ss(scenario, **kw)
+
+
+def estimate(scenario):
+    """Closed-form loss budget (see :mod:`bucksim.estimate`)."""
+    from .estimate import estimate as _est
+    return _est(scenario)
+
+
+def crosscheck(scenario, run=None, cycles=None):
+    """Closed form vs waveform integrals, item by item (see :mod:`bucksim.crosscheck`)."""
+    from .crosscheck import crosscheck as _cc
+    return _cc(scenario, run, cycles)
+
+
+__all__ = ["load_scenario", "simulate", "open_run", "steady_state", "estimate", "crosscheck",
+           "Run", "ScenarioError", "SimulationError", "__version__"]

@@ -54,3 +54,30 @@ class ScenarioError(ValueError):
 
 class SimulationError(RuntimeError):
     """The engine could not continue (e.g. the state diverged)."""
+
+
+class StorageError(ValueError):
+    """A run file cannot be read as a bucksim run.
+
+    Raised for a file that is not HDF5, is truncated or corrupt, lacks the
+    bucksim layout, was never completed, was written with a newer layout, or
+    whose stored matrices do not belong to its stored scenario. The message
+    names the file and the problem::
+
+        rail.h5: written with layout version 99; this bucksim reads up to 1
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The run file.
+    problem : str
+        What is wrong, in plain words.
+    """
+
+    def __init__(self, path, problem):
+        self.path = str(path)
+        self.problem = problem
+        super().__init__(f"{self.path}: {problem}")
+
+    def __reduce__(self):  # keep pickling (process pools) working
+        return (StorageError, (self.path, self.problem))

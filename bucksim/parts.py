@@ -270,6 +270,13 @@ class Control:
             _finite("control.duty", self.duty, "(fraction of the period)")
             if not 0.0 < self.duty < 1.0:
                 raise ScenarioError("control.duty", "must be inside (0, 1)", self.duty)
+        else:
+            if self.reference is None:
+                raise ScenarioError("control.reference", f"is required in {self.mode} mode "
+                                    "(output voltage set point in V)")
+        if self.reference is not None:
+            _positive("control.reference", self.reference, "V")
+        _non_negative("control.slope_compensation", self.slope_compensation, "V/s")
 
 
 @dataclass(frozen=True)
@@ -336,9 +343,12 @@ class Scenario:
         if not sync and not isinstance(self.low_side, Diode):
             raise ScenarioError("low_side.device", "must be \"diode\" for strategy 'asynchronous'",
                                 "mosfet")
+        tf, tr = self.switching.dead_time
+        if sync and tf + tr >= T:
+            raise ScenarioError("switching.dead_time", f"must fit in the period: falling + "
+                                f"rising < T = {T:.6g} s", list(self.switching.dead_time))
         if self.control.mode == "open-loop" and sync:
             on = self.control.duty * T
-            tf, tr = self.switching.dead_time
             if on + tf + tr >= T:
                 raise ScenarioError("switching.dead_time",
                                     f"must fit in the off-time: falling + rising < (1 - duty) T "

@@ -159,5 +159,10 @@ class Run:
         from .measure import summarize
         return summarize(self, cycles)
 
+    def save(self, path, compression=None):
+        """Write this run to the HDF5 file ``path`` (see :mod:`bucksim.storage`)."""
+        from .storage import save_run
+        return save_run(self, path, compression)
+
 
 __all__ = ["Run", "SegmentTable", "SIGNALS", "UNITS", "STATE_NAMES"]

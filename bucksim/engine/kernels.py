@@ -80,13 +80,23 @@ def advance(Ms, E, h, s, z, d, tmp):
 
 
 @njit(cache=True)
-def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial):
-    """First zero of z[0] in (t, t + width], bracketed: z[0] has sign ``sign0`` at t.
+def crossing_value(z, t, level, ramp, t_ref):
+    """Event function ``g = iL + ramp (t - t_ref) - level``.
+
+    ``level = ramp = 0`` is the zero-current event; a peak-current comparator
+    with slope compensation is ``level = vc / Ri``, ``ramp = Se / Ri``.
+    """
+    return z[0] + ramp * (t - t_ref) - level
+
+
+@njit(cache=True)
+def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref, snap):
+    """First zero of the event function in (t, t + width]; it has sign ``sign0`` at t.
 
     Binary descent over the transition table keeps the state on the
     ``sign0`` side until the gap is below h[K-1]; one Newton step on the
     analytic derivative then lands on the zero. Returns the zero's time;
-    ``z`` holds the state there with ``z[0] = 0`` exactly.
+    ``z`` holds the state there (with ``z[0] = level`` exactly when ``snap``).
     """
     K = h.shape[0]
     m = z.shape[0]
@@ -97,36 +107,38 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial):
         for i in range(m):
             trial[i] = z[i]
         apply(E, s, k, trial, tmp)
-        if sign0 * trial[0] > 0.0:
+        if sign0 * crossing_value(trial, t + h[k], level, ramp, t_ref) > 0.0:
             for i in range(m):
                 z[i] = trial[i]
             t += h[k]
             gap -= h[k]
         else:
             gap = h[k]
-    slope = derivative(Ms, s, z, 0)
+    slope = derivative(Ms, s, z, 0) + ramp
     if slope != 0.0:
-        step = -z[0] / slope
+        step = -crossing_value(z, t, level, ramp, t_ref) / slope
         if 0.0 < step <= 2.0 * h[K - 1]:
             for i in range(m):
                 tmp[i] = z[i] + step * derivative(Ms, s, z, i)
             for i in range(m):
                 z[i] = tmp[i]
             t += step
-    z[0] = 0.0
+    if snap:
+        z[0] = level
     return t
 
 
 @njit(cache=True)
-def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work):
-    """Locate the first zero of iL in (a, b] given the states at both ends.
+def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work,
+              level=0.0, ramp=0.0, t_ref=0.0, snap=True):
+    """Locate the first zero of the event function in (a, b] given the states at both ends.
 
     Returns the zero's time (``za`` then holds the state there) or -1.0 when
-    iL keeps the sign ``sign0`` over the whole interval. Intervals longer
-    than ``guard`` (a quarter of the fastest natural time constant) are
-    marched in sub-steps so that each sub-step holds at most one extremum of
-    iL; inside a sub-step an extremum that turns toward zero is checked, so a
-    touch-and-return crossing is not stepped over.
+    the function keeps the sign ``sign0`` over the whole interval. Intervals
+    longer than ``guard`` (a quarter of the fastest natural time constant)
+    are marched in sub-steps so that each sub-step holds at most one
+    extremum; inside a sub-step an extremum that turns toward zero is
+    checked, so a touch-and-return crossing is not stepped over.
     """
     m = za.shape[0]
     n_sub = 1
@@ -142,17 +154,19 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work):
                 work[i] = zb[i]
         else:
             advance(Ms, E, h, s, work, t1 - t0, tmp)
-        if sign0 * work[0] <= 0.0:
-            return refine_zero(Ms, E, h, s, za, t0, t1 - t0, sign0, tmp, trial)
-        da = sign0 * derivative(Ms, s, za, 0)
-        db = sign0 * derivative(Ms, s, work, 0)
+        if sign0 * crossing_value(work, t1, level, ramp, t_ref) <= 0.0:
+            return refine_zero(Ms, E, h, s, za, t0, t1 - t0, sign0, tmp, trial,
+                               level, ramp, t_ref, snap)
+        da = sign0 * (derivative(Ms, s, za, 0) + ramp)
+        db = sign0 * (derivative(Ms, s, work, 0) + ramp)
         if da < 0.0 and db > 0.0:
             te = t0 + (t1 - t0) * da / (da - db)
             for i in range(m):
                 trial[i] = za[i]
             advance(Ms, E, h, s, trial, te - t0, tmp)
-            if sign0 * trial[0] <= 0.0:
-                return refine_zero(Ms, E, h, s, za, t0, te - t0, sign0, tmp, trial)
+            if sign0 * crossing_value(trial, te, level, ramp, t_ref) <= 0.0:
+                return refine_zero(Ms, E, h, s, za, t0, te - t0, sign0, tmp, trial,
+                                   level, ramp, t_ref, snap)
         for i in range(m):
             za[i] = work[i]
         t0 = t1
@@ -177,6 +191,81 @@ def conduction_for(gate, strategy, il):
 
 
 @njit(cache=True)
+def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, level,
+              level_times, z, t_end, guard, thr_level, thr_ramp,
+              seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs):
+    """Propagate one gate phase ``[t_phase, t_phase_end)`` from state ``z``.
+
+    Splits the phase at operating-level changes and at ``t_end``, ends a
+    diode-like conduction at its zero-current event (then idles), and, when
+    ``thr_level`` is finite in a high-side phase, ends the phase early where
+    ``iL + thr_ramp (t - t_phase)`` reaches ``thr_level`` (peak-current
+    comparator, current limit). ``P[:, p]`` is used when ``cached`` and the
+    phase runs whole. Returns ``(nseg, level, t, status, tripped)``.
+    """
+    n = seg_x0.shape[1]
+    m = z.shape[0]
+    n_levels = level_times.shape[0]
+    cap = seg_t0.shape[0]
+    t = t_phase
+    cond = conduction_for(gate, strategy, z[0])
+    threshold = gate == GATE_HIGH and np.isfinite(thr_level)
+    while t < t_phase_end:
+        while level + 1 < n_levels and level_times[level + 1] <= t:
+            level += 1
+        t_stop = t_phase_end
+        if level + 1 < n_levels and level_times[level + 1] < t_stop:
+            t_stop = level_times[level + 1]
+        if t_end < t_stop:
+            t_stop = t_end
+        s = level * N_CONDUCTION + cond
+        if nseg >= cap:
+            return nseg, level, t, STATUS_FULL, False
+        if threshold and crossing_value(z, t, thr_level, thr_ramp, t_phase) >= 0.0:
+            return nseg, level, t, STATUS_OK, True
+        seg_t0[nseg] = t
+        seg_cond[nseg] = cond
+        seg_sys[nseg] = s
+        for i in range(n):
+            seg_x0[nseg, i] = z[i]
+        for i in range(m):
+            zs[i] = z[i]
+        d = t_stop - t
+        if cached and t == t_phase and t_stop == t_phase_end:
+            apply(P, s, p, z, tmp)
+        else:
+            advance(Ms, E, h, s, z, d, tmp)
+        evented = cond == LOW_DIODE or cond == HIGH_DIODE or (
+            cond == LOW and strategy == EMULATION)
+        tz = -1.0
+        if evented:
+            sign0 = -1.0 if cond == HIGH_DIODE else 1.0
+            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp, trial, work)
+        elif threshold:
+            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp, trial, work,
+                           thr_level, thr_ramp, t_phase, False)
+        if tz >= 0.0:
+            for i in range(m):
+                z[i] = zs[i]
+            seg_dt[nseg] = tz - t
+            nseg += 1
+            t = tz
+            if threshold:
+                return nseg, level, t, STATUS_OK, True
+            cond = IDLE
+            continue
+        seg_dt[nseg] = d
+        nseg += 1
+        t = t_stop
+        for i in range(m):
+            if not np.isfinite(z[i]):
+                return nseg, level, t, STATUS_DIVERGED, False
+        if t >= t_end:
+            return nseg, level, t, STATUS_OK, False
+    return nseg, level, t, STATUS_OK, False
+
+
+@njit(cache=True)
 def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
                   c_start, c_stop, level_times, level, z, t_end, guard,
                   seg_t0, seg_dt, seg_cond, seg_sys, seg_x0):
@@ -184,6 +273,11 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
 
     Segments are written to the ``seg_*`` arrays from index 0. Returns
     ``(n_segments, level, status, t)``; ``z`` holds the state at ``t``.
+
+    The same logic as :func:`run_phase`, written out in one loop: calling a
+    phase function four times a period cost 2.5x in speed on the open-loop
+    path (measured with benchmarks/bench_engine.py), which has no per-phase
+    decisions to make.
     """
     n = seg_x0.shape[1]
     m = z.shape[0]
@@ -271,6 +365,24 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
                 if t >= t_end:
                     return nseg, level, STATUS_OK, t
     return nseg, level, STATUS_OK, t
+
+
+@njit(cache=True)
+def cycle_phases(ton, td_fall, td_rise, T, strategy, gates, durs):
+    """Gate phases of one period at high-side on-time ``ton``; returns their number."""
+    gates[0] = GATE_HIGH
+    durs[0] = ton
+    if strategy == ASYNC:
+        gates[1] = GATE_OFF
+        durs[1] = T - ton
+        return 2
+    gates[1] = GATE_OFF
+    durs[1] = td_fall
+    gates[2] = GATE_LOW
+    durs[2] = max(0.0, T - ton - td_fall - td_rise)
+    gates[3] = GATE_OFF
+    durs[3] = td_rise
+    return 4
 
 
 @njit(cache=True)
