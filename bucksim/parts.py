@@ -249,9 +249,16 @@ class Control:
     """Controller settings.
 
     Open loop: ``duty`` (0 < duty < 1) with an optional linear ramp of the
-    duty from 0 over ``soft_start`` [s]. Closed-loop keys (``reference`` [V],
-    ``compensator``, ``slope_compensation`` [V/s]) are kept for the
-    closed-loop modes.
+    duty from 0 over ``soft_start`` [s].
+
+    Closed loop (``voltage-mode``, ``peak-current``; see :mod:`bucksim.control`):
+    ``reference`` [V] (ramped from 0 over ``soft_start``), ``sense_gain``
+    (divider, V/V), ``compensator`` = ``{gain [1/s], zeros [Hz], poles [Hz]}``,
+    ``ramp`` (PWM ramp peak-to-peak [V], voltage mode), ``current_sense`` (Ri
+    [V/A]) and ``slope_compensation`` [V/s] (peak-current mode),
+    ``current_limit`` [A] (cycle by cycle), ``max_duty``, ``min_on_time`` [s],
+    ``pulse_skipping``, ``delay`` (computation delay, periods) and
+    ``duty_bits`` (duty resolution; 0 = exact).
     """
 
     mode: str = "open-loop"
@@ -260,10 +267,34 @@ class Control:
     reference: float | None = None
     compensator: dict | None = None
     slope_compensation: float = 0.0
+    sense_gain: float = 1.0
+    ramp: float = 1.0
+    current_sense: float = 0.0
+    current_limit: float | None = None
+    max_duty: float = 0.95
+    min_on_time: float = 0.0
+    pulse_skipping: bool = False
+    delay: int = 0
+    duty_bits: int = 0
 
     def __post_init__(self):
         _choice("control.mode", self.mode, CONTROL_MODES)
         _non_negative("control.soft_start", self.soft_start, "s")
+        _positive("control.sense_gain", self.sense_gain, "V/V")
+        _positive("control.ramp", self.ramp, "V")
+        _non_negative("control.current_sense", self.current_sense, "V/A")
+        if self.current_limit is not None:
+            _positive("control.current_limit", self.current_limit, "A")
+        _finite("control.max_duty", self.max_duty, "(fraction of the period)")
+        if not 0.0 < self.max_duty <= 1.0:
+            raise ScenarioError("control.max_duty", "must be inside (0, 1]", self.max_duty)
+        _non_negative("control.min_on_time", self.min_on_time, "s")
+        if not isinstance(self.pulse_skipping, bool):
+            raise ScenarioError("control.pulse_skipping", "must be true or false",
+                                self.pulse_skipping)
+        for key, v, hi in (("delay", self.delay, 8), ("duty_bits", self.duty_bits, 24)):
+            if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= hi:
+                raise ScenarioError(f"control.{key}", f"must be an integer in [0, {hi}]", v)
         if self.mode == "open-loop":
             if self.duty is None:
                 raise ScenarioError("control.duty", "is required in open-loop mode (0 < duty < 1)")
@@ -277,6 +308,13 @@ class Control:
         if self.reference is not None:
             _positive("control.reference", self.reference, "V")
         _non_negative("control.slope_compensation", self.slope_compensation, "V/s")
+        if self.mode == "peak-current" and self.current_sense <= 0:
+            raise ScenarioError("control.current_sense", "is required in peak-current mode "
+                                "(current-sense gain Ri > 0 V/A)", self.current_sense)
+        if self.mode != "open-loop" and not isinstance(self.compensator, dict):
+            raise ScenarioError("control.compensator", f"is required in {self.mode} mode: a "
+                                "table {gain, zeros = [Hz...], poles = [Hz...]}",
+                                self.compensator)
 
 
 @dataclass(frozen=True)

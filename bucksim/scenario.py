@@ -60,7 +60,9 @@ MOSFET_KEYS = ("rds_on", "body_diode", "rise_time", "fall_time", "coss", "qg", "
 LOW_SIDE_DEVICES = ("mosfet", "diode")
 LOAD_KEYS = ("resistance", "current", "steps")
 LOAD_STEP_KEYS = ("time", "resistance", "current")
-CONTROL_KEYS = ("mode", "duty", "soft_start", "reference", "compensator", "slope_compensation")
+CONTROL_KEYS = ("mode", "duty", "soft_start", "reference", "compensator", "slope_compensation",
+                "sense_gain", "ramp", "current_sense", "current_limit", "max_duty",
+                "min_on_time", "pulse_skipping", "delay", "duty_bits")
 RUN_KEYS = ("duration", "cycles", "start", "summary_cycles", "initial_current",
             "initial_voltage")
 
@@ -297,7 +299,16 @@ def _control(t):
                    soft_start=t.quantity("soft_start", "s", 0.0),
                    reference=t.quantity("reference", "V", None),
                    compensator=copy.deepcopy(compensator),
-                   slope_compensation=t.quantity("slope_compensation", "V/s", 0.0))
+                   slope_compensation=t.quantity("slope_compensation", "V/s", 0.0),
+                   sense_gain=t.quantity("sense_gain", "", 1.0),
+                   ramp=t.quantity("ramp", "V", 1.0),
+                   current_sense=t.quantity("current_sense", "V/A", 0.0),
+                   current_limit=t.quantity("current_limit", "A", None),
+                   max_duty=t.quantity("max_duty", "", 0.95),
+                   min_on_time=t.quantity("min_on_time", "s", 0.0),
+                   pulse_skipping=t._get("pulse_skipping", False, "true or false"),
+                   delay=t.integer("delay", 0),
+                   duty_bits=t.integer("duty_bits", 0))
 
 
 def _run(t):
@@ -354,7 +365,14 @@ def scenario_to_dict(scenario):
     control = _drop_none({"mode": ctl.mode, "duty": ctl.duty, "soft_start": ctl.soft_start,
                           "reference": ctl.reference,
                           "compensator": copy.deepcopy(ctl.compensator),
-                          "slope_compensation": ctl.slope_compensation})
+                          "slope_compensation": ctl.slope_compensation,
+                          **({} if ctl.mode == "open-loop" else {
+                              "sense_gain": ctl.sense_gain, "ramp": ctl.ramp,
+                              "current_sense": ctl.current_sense,
+                              "current_limit": ctl.current_limit, "max_duty": ctl.max_duty,
+                              "min_on_time": ctl.min_on_time,
+                              "pulse_skipping": ctl.pulse_skipping, "delay": ctl.delay,
+                              "duty_bits": ctl.duty_bits})})
     r = s.run
     run = _drop_none({"duration": r.duration, "cycles": r.cycles, "start": r.start,
                       "summary_cycles": r.summary_cycles,

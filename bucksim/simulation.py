@@ -29,8 +29,7 @@ def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
     Run
     """
     if scenario.control.mode != "open-loop":
-        raise NotImplementedError(
-            f"control.mode = {scenario.control.mode!r} is not available yet; use 'open-loop'")
+        return _simulate_closed_loop(scenario, x0, check)
     steady = None
     if x0 is None and scenario.run.start == "steady-state":
         from .steady import steady_state
@@ -44,6 +43,33 @@ def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
     result = integrate(stage, x0, table=table)
     run = Run(scenario, stage, table, result)
     run.steady_state = steady
+    if check and not run.success:
+        raise SimulationError(run.message)
+    return run
+
+
+def _simulate_closed_loop(scenario, x0, check):
+    from .control import design
+    from .engine.controlled import integrate_closed_loop
+
+    stage = Stage(scenario)
+    table = build_table(stage.matrices, scenario.period)
+    comp = design(scenario.control.compensator, scenario.period)
+    steady = None
+    state = None
+    if x0 is None and scenario.run.start == "steady-state":
+        from .steady_loop import closed_loop_steady_state
+        steady = closed_loop_steady_state(scenario)
+        if not steady.success:
+            raise SimulationError(f"{scenario.source or scenario.title}: run.start = "
+                                  f"'steady-state': {steady.message}")
+        x0, state = steady.x, steady.controller
+    result, end_state, duty, u = integrate_closed_loop(stage, comp, x0, state, table=table)
+    run = Run(scenario, stage, table, result)
+    run.steady_state = steady
+    run.controller_state = end_state
+    run.duty = duty
+    run.control_output = u
     if check and not run.success:
         raise SimulationError(run.message)
     return run

@@ -72,6 +72,18 @@ class Summary:
             f"efficiency    {100 * d['efficiency']:.3f} %",
             f"energy balance error {d['energy_balance_error']:.2e} (relative)",
         ]
+        if d.get("transients"):
+            lines += ["", f"{'event':<13}{'at':>10}{'vo max':>11}{'vo min':>11}{'over':>8}"
+                          f"{'under':>8}{'settles in':>12}{'iL peak':>10}"]
+            for e in d["transients"]:
+                st = e["settling_time"]
+                st = "in band" if st is None else ("not yet" if st == float("inf")
+                                                   else format_si(st, "s"))
+                under = "" if e["event"] == "start-up" else f"{e['undershoot_percent']:.2f}%"
+                lines.append(f"{e['event']:<13}{format_si(e['time'], 's'):>10}"
+                             f"{format_si(e['vo_max'], 'V'):>11}{format_si(e['vo_min'], 'V'):>11}"
+                             f"{e['overshoot_percent']:>7.2f}%{under:>8}{st:>12}"
+                             f"{format_si(e['il_peak'], 'A'):>10}")
         return "\n".join(lines)
 
     def __str__(self):

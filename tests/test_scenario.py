@@ -538,7 +538,8 @@ def test_dead_time_not_fitting_in_the_off_time(tmp_path):
 
 def test_dead_time_not_fitting_in_the_period_in_closed_loop(tmp_path):
     text = edit("duty = 0.3", 'reference = "3.3 V"')
-    text = edit('mode = "open-loop"', 'mode = "peak-current"', text)
+    text = edit('mode = "open-loop"', 'mode = "peak-current"\ncurrent_sense = "0.1 V/A"\n'
+                'compensator = { gain = 1e4 }', text)
     text = edit('dead_time = ["20 ns", "30 ns"]', 'dead_time = ["0.6 us", "0.5 us"]', text)
     path, err = load_error(tmp_path, text)
     assert str(err).startswith(f"{path}:{line_no(text, 'dead_time')}: switching.dead_time: "

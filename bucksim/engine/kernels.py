@@ -192,15 +192,15 @@ def conduction_for(gate, strategy, il):
 
 @njit(cache=True)
 def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, level,
-              level_times, z, t_end, guard, thr_level, thr_ramp,
+              level_times, z, t_end, guard, thr_level, thr_ramp, thr_tref,
               seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs):
     """Propagate one gate phase ``[t_phase, t_phase_end)`` from state ``z``.
 
     Splits the phase at operating-level changes and at ``t_end``, ends a
     diode-like conduction at its zero-current event (then idles), and, when
     ``thr_level`` is finite in a high-side phase, ends the phase early where
-    ``iL + thr_ramp (t - t_phase)`` reaches ``thr_level`` (peak-current
-    comparator, current limit). ``P[:, p]`` is used when ``cached`` and the
+    ``iL + thr_ramp (t - thr_tref)`` reaches ``thr_level`` (peak-current
+    comparator with slope compensation, current limit). ``P[:, p]`` is used when ``cached`` and the
     phase runs whole. Returns ``(nseg, level, t, status, tripped)``.
     """
     n = seg_x0.shape[1]
@@ -221,7 +221,7 @@ def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, leve
         s = level * N_CONDUCTION + cond
         if nseg >= cap:
             return nseg, level, t, STATUS_FULL, False
-        if threshold and crossing_value(z, t, thr_level, thr_ramp, t_phase) >= 0.0:
+        if threshold and crossing_value(z, t, thr_level, thr_ramp, thr_tref) >= 0.0:
             return nseg, level, t, STATUS_OK, True
         seg_t0[nseg] = t
         seg_cond[nseg] = cond
@@ -243,7 +243,7 @@ def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, leve
             tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp, trial, work)
         elif threshold:
             tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp, trial, work,
-                           thr_level, thr_ramp, t_phase, False)
+                           thr_level, thr_ramp, thr_tref, False)
         if tz >= 0.0:
             for i in range(m):
                 z[i] = zs[i]
