@@ -6,13 +6,17 @@ Quick start::
     sc = bucksim.load_scenario("scenarios/core_rail_1v0.toml")
     run = bucksim.simulate(sc)
     print(run.summary())
+
+The engine (numba) is imported on first use, so importing the package and
+``bucksim --help`` stay fast.
 """
 
 from importlib.metadata import PackageNotFoundError, version as _version
 
-from .errors import ScenarioError, SimulationError
-from .simulation import simulate
-from .waveforms import Run
+from .crosscheck import crosscheck
+from .errors import ScenarioError, SimulationError, StorageError
+from .estimate import estimate
+from .sweep import sweep
 
 try:
     __version__ = _version("bucksim")
@@ -26,6 +30,12 @@ def load_scenario(path):
     return _load(path)
 
 
+def simulate(scenario, x0=None, **kw):
+    """Simulate a scenario exactly, cycle by cycle (see :func:`bucksim.simulation.simulate`)."""
+    from .simulation import simulate as _simulate
+    return _simulate(scenario, x0, **kw)
+
+
 def open_run(path):
     """Open a run stored with :meth:`Run.save` (see :mod:`bucksim.storage`)."""
     from .storage import open_run as _open
@@ -33,22 +43,21 @@ def open_run(path):
 
 
 def steady_state(scenario, **kw):
-    """Periodic steady state by shooting-Newton (see :mod:`bucksim.steady`)."""
+    """Periodic steady state by shooting-Newton (open loop: :mod:`bucksim.steady`;
+    closed loop: :mod:`bucksim.steady_loop`)."""
+    if scenario.control.mode != "open-loop":
+        from .steady_loop import closed_loop_steady_state
+        return closed_loop_steady_state(scenario, **kw)
     from .steady import steady_state as _ss
     return _ss(scenario, **kw)
 
 
-def estimate(scenario):
-    """Closed-form loss budget (see :mod:`bucksim.estimate`)."""
-    from .estimate import estimate as _est
-    return _est(scenario)
-
-
-def crosscheck(scenario, run=None, cycles=None):
-    """Closed form vs waveform integrals, item by item (see :mod:`bucksim.crosscheck`)."""
-    from .crosscheck import crosscheck as _cc
-    return _cc(scenario, run, cycles)
+def __getattr__(name):
+    if name == "Run":
+        from .waveforms import Run
+        return Run
+    raise AttributeError(f"module 'bucksim' has no attribute {name!r}")
 
 
 __all__ = ["load_scenario", "simulate", "open_run", "steady_state", "estimate", "crosscheck",
-           "Run", "ScenarioError", "SimulationError", "__version__"]
+           "sweep", "Run", "ScenarioError", "SimulationError", "StorageError", "__version__"]

@@ -150,6 +150,9 @@ def build_parser() -> argparse.ArgumentParser:
                        epilog="Example: bucksim cache clear")
     c.add_argument("action", choices=["clear"])
     c.set_defaults(func=_cmd_cache)
+
+    from .sweep_cli import register as register_sweep
+    register_sweep(sub)
     return p
 
 

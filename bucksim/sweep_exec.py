@@ -1,0 +1,319 @@
+"""Running sweep points: one point, a batch of points, and the executors for batches.
+
+A point is the base scenario with some keys replaced, solved for its periodic
+steady state and summarised over ``run.summary_cycles`` periods started from
+that state. Batches run in this process (one worker), in a pool of local
+processes, or on a Dask cluster; every path calls :func:`run_batch`, so a
+point's row does not depend on where it ran.
+
+Each point runs its small (3 x 3) matrix exponentials serially: OpenBLAS
+threads cost far more than they save at that size, and on a loaded machine
+they made a point about 20 times slower (measured here). The BLAS libraries are
+already loaded when a worker receives its first task, so setting
+``OPENBLAS_NUM_THREADS`` then is too late; their own ``set_num_threads`` entry
+points are called as well.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import contextlib
+import ctypes
+import dataclasses
+import math
+import multiprocessing
+import os
+import threading
+
+WORKER_ENV = {"NUMBA_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1",
+              "MKL_NUM_THREADS": "1"}
+
+_BLAS_SETTERS = (("openblas_get_num_threads", "openblas_set_num_threads"),
+                 ("scipy_openblas_get_num_threads", "scipy_openblas_set_num_threads"),
+                 ("scipy_openblas_get_num_threads64_", "scipy_openblas_set_num_threads64_"))
+_blas_lock = threading.Lock()
+_blas_users = 0
+_blas_saved = []
+_blas_found = None
+
+
+def _blas_controls():
+    """``(get, set)`` thread-count functions of every OpenBLAS loaded in this process."""
+    global _blas_found
+    if _blas_found is not None:
+        return _blas_found
+    paths = set()
+    try:
+        with open("/proc/self/maps", encoding="utf-8", errors="replace") as f:
+            for line in f:
+                fields = line.split(maxsplit=5)
+                if len(fields) == 6 and "openblas" in fields[5].lower():
+                    paths.add(fields[5].strip())
+    except OSError:  # not Linux: the environment variables are all we have
+        pass
+    found = []
+    for path in sorted(paths):
+        try:
+            lib = ctypes.CDLL(path)
+        except OSError:
+            continue
+        for get_name, set_name in _BLAS_SETTERS:
+            get, put = getattr(lib, get_name, None), getattr(lib, set_name, None)
+            if get is not None and put is not None:
+                get.restype, get.argtypes = ctypes.c_int, []
+                put.restype, put.argtypes = None, [ctypes.c_int]
+                found.append((get, put))
+                break
+    _blas_found = found
+    return found
+
+
+@contextlib.contextmanager
+def serial_blas():
+    """Run the enclosed code with one BLAS thread; restore the count on leaving.
+
+    Counted, so threads of one process (Dask threads) may nest it: the first
+    to enter sets one thread, the last to leave restores the old count.
+    """
+    global _blas_users, _blas_saved
+    with _blas_lock:
+        if _blas_users == 0:
+            controls = _blas_controls()
+            _blas_saved = [get() for get, _ in controls]
+            for _, put in controls:
+                put(1)
+        _blas_users += 1
+    try:
+        yield
+    finally:
+        with _blas_lock:
+            _blas_users -= 1
+            if _blas_users == 0:
+                for (_, put), n in zip(_blas_controls(), _blas_saved):
+                    put(n)
+
+
+def _init_worker():
+    """Process-pool initializer: serial numerical libraries for the worker's life."""
+    for key, value in WORKER_ENV.items():
+        os.environ[key] = value
+    for _, put in _blas_controls():
+        put(1)
+
+
+# ----------------------------------------------------------------------------- points
+
+def _error_text(exc):
+    from .errors import ScenarioError, SimulationError
+
+    text = str(exc) if isinstance(exc, (ScenarioError, SimulationError)) \
+        else f"{type(exc).__name__}: {exc}"
+    return " ".join(text.split()) or type(exc).__name__
+
+
+def run_point(scenario, index, draw, values):
+    """Row for one point (see :mod:`bucksim.sweep_table` for its columns).
+
+    Parameters
+    ----------
+    scenario : Scenario
+        The base scenario.
+    index : int
+        Point index.
+    draw : int or None
+        Monte Carlo draw index (``None``: no draws in this sweep).
+    values : dict
+        ``{dotted key: value}`` applied to ``scenario`` in order with
+        :func:`bucksim.scenario.replace_key`.
+
+    Returns
+    -------
+    dict
+        Never raises for a bad point: the reason goes to ``"error"`` and the
+        metrics are left out (NaN in the table).
+    """
+    import numpy as np
+
+    from .scenario import replace_key
+    from .simulation import simulate
+    from .steady import periodic_scenario, steady_state
+    from .sweep_table import flatten
+
+    row = {"point": index}
+    if draw is not None:
+        row["draw"] = draw
+    row.update(values)
+    steady = {"steady.iterations": math.nan, "steady.residual": math.nan,
+              "steady.method": "", "steady.max_floquet": math.nan}
+    try:
+        sc = scenario
+        for key, value in values.items():
+            sc = replace_key(sc, key, value)
+        ss = steady_state(sc)
+        steady = {"steady.iterations": float(ss.iterations), "steady.residual": float(ss.residual),
+                  "steady.method": ss.method,
+                  "steady.max_floquet": float(np.max(np.abs(ss.floquet)))}
+        if not ss.success:
+            raise RuntimeError(f"no periodic steady state: {ss.message}")
+        # the steady state is that of the t = 0 operating level (no steps, no
+        # soft-start), so the summary run must be that same periodic scenario
+        base = periodic_scenario(sc)
+        n = sc.run.summary_cycles
+        run_settings = dataclasses.replace(base.run, cycles=n, duration=None, start="rest",
+                                           summary_cycles=n,
+                                           initial_current=float(ss.x[0]),
+                                           initial_voltage=float(ss.x[1]))
+        run = simulate(dataclasses.replace(base, run=run_settings))
+        if not run.success:
+            raise RuntimeError(f"simulation did not complete: {run.message}")
+        row.update(flatten(run.summary(cycles=n).to_dict()))
+        error = ""
+    except Exception as exc:  # noqa: BLE001 - a bad point is data, the sweep goes on
+        error = _error_text(exc)
+    row.update(steady)
+    row["error"] = error
+    return row
+
+
+def run_batch(scenario, points):
+    """Rows of ``points`` (a list of ``(index, draw, values)``), in order."""
+    with serial_blas():
+        return [run_point(scenario, i, d, v) for i, d, v in points]
+
+
+# ----------------------------------------------------------------------------- executors
+
+MISSING_DASK = ("running a sweep on a Dask cluster needs Dask's distributed scheduler, "
+                "which is not installed: pip install bucksim[cluster]")
+
+
+def _import_distributed():
+    try:
+        import distributed
+    except ImportError as exc:
+        raise ImportError(MISSING_DASK) from exc
+    return distributed
+
+
+def _is_dask_client(obj):
+    return type(obj).__module__.split(".", 1)[0] == "distributed" and hasattr(obj, "nthreads")
+
+
+class Runner:
+    """Runs batches where asked; a context manager that releases what it started.
+
+    Parameters
+    ----------
+    workers : int, optional
+        Local processes (default ``os.cpu_count()``; 1 = this process, no pool),
+        or the worker processes of ``cluster="local"``.
+    cluster : None, "local", str, dask Client, Dask cluster or Executor
+        ``None``: local processes. ``"local"``: start a Dask ``LocalCluster``
+        and close it afterwards. An address (``"tcp://host:8786"``): connect to
+        that scheduler. A ``distributed.Client``, a Dask cluster object or any
+        ``concurrent.futures.Executor`` is used as given and left open.
+    """
+
+    def __init__(self, workers=None, cluster=None):
+        if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int)
+                                    or workers < 1):
+            raise ValueError(f"workers: must be an integer >= 1, got {workers!r}")
+        self.workers = workers
+        self.cluster = cluster
+        self._owned = []  # things to close, last first
+        self._client = None
+        self._executor = None
+        self._pool_size = None
+        self.kind = "serial"
+        if cluster is None:
+            n = workers or os.cpu_count() or 1
+            if n > 1:
+                self.kind, self._pool_size = "processes", n
+        elif isinstance(cluster, cf.Executor):
+            self.kind, self._executor = "executor", cluster
+        elif isinstance(cluster, str) or _is_dask_client(cluster) or \
+                hasattr(cluster, "scheduler_address"):
+            self.kind = "dask"
+            self._client = self._connect(cluster)
+        else:
+            raise ValueError(f"cluster: must be None, 'local', a scheduler address such as "
+                             f"'tcp://host:8786', a Dask client or cluster, or an Executor; "
+                             f"got {cluster!r}")
+
+    def _connect(self, cluster):
+        distributed = _import_distributed()
+        if _is_dask_client(cluster):
+            return cluster
+        if cluster == "local":
+            # no dashboard; the scheduler's small HTTP server (health checks)
+            # takes a free port, not the usual 8787 another cluster may hold
+            lc = distributed.LocalCluster(n_workers=self.workers or os.cpu_count() or 1,
+                                          threads_per_worker=1, processes=True,
+                                          dashboard_address=None, env=dict(WORKER_ENV),
+                                          scheduler_kwargs={"dashboard": False,
+                                                            "dashboard_address": ":0"})
+            self._owned.append(lc)
+            cluster = lc
+        target = cluster if isinstance(cluster, str) else cluster.scheduler_address
+        try:
+            client = distributed.Client(target, timeout="20s", set_as_default=False)
+        except (OSError, ValueError) as exc:  # refused, timed out, or not an address
+            self.close()
+            raise ConnectionError(f"cluster: cannot connect to the Dask scheduler at "
+                                  f"{target!r}: {exc}") from exc
+        self._owned.append(client)
+        return client
+
+    @property
+    def slots(self):
+        """Batches that can run at once."""
+        if self.kind == "processes":
+            return self._pool_size
+        if self.kind == "dask":
+            return max(1, sum(self._client.nthreads().values()))
+        if self.kind == "executor":
+            return max(1, getattr(self._executor, "_max_workers", 1))
+        return 1
+
+    def run(self, scenario, batches):
+        """Yield each batch's rows as it finishes (in completion order)."""
+        if self.kind == "serial":
+            for batch in batches:
+                yield run_batch(scenario, batch)
+            return
+        if self.kind == "dask":
+            distributed = _import_distributed()
+            futures = [self._client.submit(run_batch, scenario, b, pure=False) for b in batches]
+            waiter = distributed.as_completed(futures, loop=self._client.loop)
+        else:
+            if self.kind == "processes":
+                # spawn, not fork: the parent may hold threads (progress bar,
+                # a Dask client) and a forked child would inherit their locks
+                self._executor = cf.ProcessPoolExecutor(
+                    max_workers=min(self._pool_size, max(1, len(batches))),
+                    mp_context=multiprocessing.get_context("spawn"),
+                    initializer=_init_worker)
+                self._owned.append(self._executor)
+            futures = [self._executor.submit(run_batch, scenario, b) for b in batches]
+            waiter = cf.as_completed(futures)
+        try:
+            for future in waiter:
+                yield future.result()
+        finally:
+            for future in futures:
+                future.cancel()
+
+    def close(self):
+        while self._owned:
+            thing = self._owned.pop()
+            if isinstance(thing, cf.Executor):
+                thing.shutdown(wait=True, cancel_futures=True)
+            else:
+                thing.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
