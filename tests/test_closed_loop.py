@@ -174,3 +174,21 @@ def test_open_loop_start_without_soft_start_matches_rlc_step():
     _, il = signal.step(sys, T=t)
     ripple = D * vin * (1 - D) / (L * 1e6)
     assert il_peak == pytest.approx(il.max() + ripple / 2, rel=0.02)
+
+
+CLOSED_LOOP_DEMOS = ["startup_5v_softstart.toml", "core_rail_0v9_load_step.toml",
+                     "pcm_rail_3v3_high_duty.toml"]
+
+
+@pytest.mark.parametrize("name", CLOSED_LOOP_DEMOS)
+def test_closed_loop_demo_scenarios_regulate(name):
+    """Each bundled closed-loop demo ends regulated: integral action puts the mean
+    output within its ripple of the reference, and every event settles into the
+    +-1 % band before the run ends."""
+    sc = bucksim.load_scenario(f"scenarios/{name}")
+    run = bucksim.simulate(sc)
+    s = run.summary().to_dict()
+    assert s["energy_balance_error"] < 1e-9
+    assert abs(s["output_voltage"]["mean"] - sc.control.reference) <= s["output_voltage"]["ripple"]
+    for event in s["transients"]:
+        assert event["settling_time"] is None or np.isfinite(event["settling_time"])

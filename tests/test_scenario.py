@@ -24,6 +24,7 @@ from bucksim.units import format_si, parse_quantity
 
 ROOT = Path(__file__).resolve().parent.parent
 BUNDLED = sorted((ROOT / "scenarios").glob("*.toml")) + [DEFAULT_SCENARIO_PATH]
+OPEN_LOOP = [p for p in BUNDLED if 'mode = "open-loop"' in p.read_text()]
 
 # A complete scenario of our own (numbers invented); each error case below
 # changes one line of it.
@@ -320,8 +321,9 @@ def test_bundled_scenarios_load_and_round_trip(path, tmp_path):
     assert s.title and s.source == str(path)
     assert s.text.lstrip().startswith("#")          # each starts with its comment header
     assert "invented for demonstration" in s.text
-    assert s.run.summary_cycles == 20 and 2000 <= s.n_cycles <= 4000
-    assert s.control.mode == "open-loop"
+    assert s.run.summary_cycles == 20
+    if s.control.mode == "open-loop":   # closed-loop demos are timed by their events
+        assert 2000 <= s.n_cycles <= 4000
     out = tmp_path / "again.toml"
     dump_scenario(s, out)
     again = load_scenario(out)
@@ -383,7 +385,7 @@ def test_bundled_scenarios_operate_as_described(name, strategy, vout, dcm):
 # a single low-frequency pole wp = (2 - M) / ((1 - M) R C) (Erickson &
 # Maksimovic 2020, ch. 15, DCM buck small-signal model; quoted from memory).
 # Five time constants must pass after the last load step.
-@pytest.mark.parametrize("path", BUNDLED, ids=lambda p: p.name)
+@pytest.mark.parametrize("path", OPEN_LOOP, ids=lambda p: p.name)
 def test_bundled_scenarios_settle_before_the_summary_window(path):
     s = load_scenario(path)
     L, C = s.inductor.inductance, s.output_capacitor.capacitance
