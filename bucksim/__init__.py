@@ -13,9 +13,11 @@ The engine (numba) is imported on first use, so importing the package and
 
 from importlib.metadata import PackageNotFoundError, version as _version
 
+from .compare import compare
 from .crosscheck import crosscheck
 from .errors import ScenarioError, SimulationError, StorageError
 from .estimate import estimate
+from .reverse import reverse_current
 from .sweep import sweep
 
 try:
@@ -60,4 +62,4 @@ def __getattr__(name):
 
 
 __all__ = ["load_scenario", "simulate", "open_run", "steady_state", "estimate", "crosscheck",
-           "sweep", "Run", "ScenarioError", "SimulationError", "StorageError", "__version__"]
+           "sweep", "reverse_current", "compare", "Run", "ScenarioError", "SimulationError", "StorageError", "__version__"]

@@ -151,8 +151,14 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("action", choices=["clear"])
     c.set_defaults(func=_cmd_cache)
 
+    from .compare import register as register_compare
+    from .plots import register as register_plot
+    from .reverse import register as register_reverse
     from .sweep_cli import register as register_sweep
     register_sweep(sub)
+    register_reverse(sub)
+    register_compare(sub)
+    register_plot(sub)
     return p
 
 

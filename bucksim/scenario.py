@@ -58,7 +58,9 @@ CAPACITOR_KEYS = ("capacitance", "esr")
 DIODE_KEYS = ("vf", "r", "qrr")
 MOSFET_KEYS = ("rds_on", "body_diode", "rise_time", "fall_time", "coss", "qg", "gate_voltage")
 LOW_SIDE_DEVICES = ("mosfet", "diode")
-LOAD_KEYS = ("resistance", "current", "steps")
+#: ``profile`` (load levels with their share of time) is read by
+#: ``bucksim compare`` from the file itself; it does not change a run.
+LOAD_KEYS = ("resistance", "current", "steps", "profile")
 LOAD_STEP_KEYS = ("time", "resistance", "current")
 CONTROL_KEYS = ("mode", "duty", "soft_start", "reference", "compensator", "slope_compensation",
                 "sense_gain", "ramp", "current_sense", "current_limit", "max_duty",

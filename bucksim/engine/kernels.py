@@ -346,8 +346,14 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
                     cond == LOW and strategy == EMULATION)
                 if evented:
                     sign0 = -1.0 if cond == HIGH_DIODE else 1.0
-                    tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard,
-                                   tmp, trial, work)
+                    # fast path: the sign holds at the end and iL has no extremum
+                    # turning toward zero inside (the common dead-time case)
+                    tz = -1.0
+                    if (d > guard or sign0 * z[0] <= 0.0
+                            or (sign0 * derivative(Ms, s, zs, 0) < 0.0
+                                and sign0 * derivative(Ms, s, z, 0) > 0.0)):
+                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard,
+                                       tmp, trial, work)
                     if tz >= 0.0:
                         for i in range(m):
                             z[i] = zs[i]
@@ -359,7 +365,7 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
                 seg_dt[nseg] = d
                 nseg += 1
                 t = t_stop
-                for i in range(m):
+                for i in range(n):
                     if not np.isfinite(z[i]):
                         return nseg, level, STATUS_DIVERGED, t
                 if t >= t_end:

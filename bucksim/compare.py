@@ -1,0 +1,748 @@
+"""The three switching strategies on the same parts, across load and over a load profile.
+
+For one set of parts, :func:`compare` evaluates in periodic steady state
+
+* the asynchronous stage: high-side MOSFET and a freewheel diode (by default
+  a diode with the low-side MOSFET's body-diode values);
+* forced PWM: synchronous, the low-side channel on for the whole off-time;
+* diode emulation: synchronous, the low side turned off at zero current;
+
+at each load level: efficiency and the loss of every device (conduction and
+switching), the inductor (DCR, and core loss when the scenario gives core
+data), the output capacitor (ESR) and the supply resistance.
+
+By default the duty is trimmed at each point so that the mean output voltage
+equals the scenario's own (an ideal regulator), so every strategy delivers
+the same power to the same load and efficiencies compare like for like;
+``regulate=False`` keeps the scenario's duty.
+
+A load profile (levels and the share of time the rail spends at each) gives
+each strategy's energy-weighted efficiency ``sum(share P_out) / sum(share
+P_in)`` and its energy lost per day, names the best strategy and the one
+number that decides it.
+
+Load levels are written as in :mod:`bucksim.reverse` (``"0.3 A"``,
+``"2 ohm"`` or a number in the scenario's load unit).
+
+References
+----------
+.. [1] R. W. Erickson and D. Maksimovic, *Fundamentals of Power Electronics*,
+   3rd ed., Springer, 2020, ch. 4-5 (switch realisation, DCM). From memory.
+.. [2] Diode emulation avoids forced PWM's circulating current at light load;
+   at low output voltage and high current a freewheel diode's ``Vf Io (1-D)``
+   is a large share of the output power: common practice.
+"""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import io
+import math
+import tomllib
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import ScenarioError, SimulationError
+from .parts import Diode, Mosfet
+from .reverse import (
+    CAUTION,
+    LoadLevel,
+    cycle_mean,
+    load_kind,
+    parse_level,
+    parse_levels,
+    periodic_run,
+    require_open_loop,
+    with_level,
+)
+from .units import format_si, parse_quantity
+
+STRATEGY_ORDER = ("asynchronous", "forced-pwm", "diode-emulation")
+STRATEGY_NAMES = {"asynchronous": "asynchronous", "forced-pwm": "forced PWM",
+                  "diode-emulation": "diode emulation"}
+HOURS_PER_DAY = 24.0
+
+#: Loss items, in the order they are stacked and listed. The asynchronous
+#: stage's low side is the freewheel diode, kept apart from a MOSFET channel.
+LOSS_ITEMS = ("high_side.conduction", "high_side.switching", "high_side_body_diode.conduction",
+              "freewheel_diode.conduction", "low_side.conduction", "low_side.switching",
+              "low_side_body_diode.conduction", "inductor.dcr", "inductor.core",
+              "output_capacitor.esr", "supply.resistance")
+_ITEM_LABELS = {
+    "high_side.conduction": "high side conduction", "high_side.switching": "high side switching",
+    "high_side_body_diode.conduction": "high-side body diode",
+    "freewheel_diode.conduction": "freewheel diode",
+    "low_side.conduction": "low side conduction", "low_side.switching": "low side switching",
+    "low_side_body_diode.conduction": "low-side body diode",
+    "inductor.dcr": "inductor DCR", "inductor.core": "inductor core",
+    "output_capacitor.esr": "output capacitor ESR", "supply.resistance": "supply resistance"}
+
+
+def item_label(item: str) -> str:
+    """Readable name of a loss item of :data:`LOSS_ITEMS`."""
+    return _ITEM_LABELS[item]
+
+
+# ----------------------------------------------------------------------------- strategies
+
+def strategy_scenario(scenario, strategy: str, diode: Diode | None = None):
+    """The scenario's parts run with ``strategy``.
+
+    The synchronous strategies need a low-side MOSFET in the scenario; the
+    asynchronous one uses ``diode`` (default: the scenario's own freewheel
+    diode, else the low-side MOSFET's body diode) and no dead time.
+    """
+    rep = dataclasses.replace
+    ls = scenario.low_side
+    if strategy == "asynchronous":
+        if diode is None:
+            diode = ls if isinstance(ls, Diode) else ls.body_diode
+        diode = Diode(diode.vf, diode.r, diode.qrr, section="low_side")
+        return rep(scenario, low_side=diode,
+                   switching=rep(scenario.switching, strategy=strategy, dead_time=(0.0, 0.0)))
+    if not isinstance(ls, Mosfet):
+        raise ScenarioError("low_side.device", "must be \"mosfet\" to compare the synchronous "
+                            "strategies (describe the low-side MOSFET; give the freewheel "
+                            "diode with diode=... or --diode)", "diode")
+    return rep(scenario, switching=rep(scenario.switching, strategy=strategy))
+
+
+def _duty_limits(scenario):
+    T = scenario.period
+    if scenario.switching.strategy == "asynchronous":
+        return 1e-5, 1.0 - 1e-6
+    tf, tr = scenario.switching.dead_time
+    return 1e-5, 1.0 - (tf + tr) / T - 1e-6
+
+
+def regulated_point(scenario, target: float, guess: float | None = None):
+    """Duty giving mean output voltage ``target`` [V] in steady state.
+
+    Returns ``(scenario at that duty, SteadyState, Run over one period)``.
+
+    Notes
+    -----
+    The mean output voltage rises monotonically with the duty (CCM: about
+    ``Vin`` per unit duty, Erickson ch. 2; DCM: ch. 5); the root is bracketed
+    from a step of ``(target - Vo) / Vin`` and found by ``brentq`` to 1e-12
+    in duty.
+    """
+    from scipy.optimize import brentq
+
+    rep = dataclasses.replace
+    lo, hi = _duty_limits(scenario)
+    memo = {}
+
+    def at(d):
+        if d not in memo:
+            sc = rep(scenario, control=rep(scenario.control, duty=float(d)))
+            ss, run = periodic_run(sc)
+            memo[d] = (cycle_mean(run, "vo") - target, sc, ss, run)
+        return memo[d][0]
+
+    a = min(max(scenario.control.duty if guess is None else guess, lo), hi)
+    fa = at(a)
+    step = -fa / scenario.supply.voltage
+    b = min(max(a + 1.2 * step, lo), hi)
+    if b == a:
+        b = min(max(a - math.copysign(1e-3, fa), lo), hi)
+    fb = at(b)
+    for _ in range(40):
+        if fa * fb <= 0:
+            break
+        if b in (lo, hi):
+            vmax = "the lowest" if b == lo else "the highest"
+            strategy = scenario.switching.strategy
+            raise ScenarioError("output_voltage", f"must be reachable with {strategy} at "
+                                f"this load ({vmax} duty gives {fb + target:.6g} V)", target)
+        a, fa, b = b, fb, min(max(b + 2.0 * (b - a), lo), hi)
+        fb = at(b)
+    if fa == 0 or fb == 0:
+        d = a if fa == 0 else b
+    else:
+        d = brentq(at, min(a, b), max(a, b), xtol=1e-12, rtol=1e-12)
+    at(d)
+    _, sc, ss, run = memo[d]
+    return sc, ss, run
+
+
+# ----------------------------------------------------------------------------- rows
+
+def loss_items(summary: dict, strategy: str) -> dict:
+    """Loss items [W] of a summary dict (keys of :data:`LOSS_ITEMS`); they add up to
+    ``power.loss``."""
+    d = summary["devices"]
+    out = {}
+    for dev in ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode"):
+        if dev not in d:
+            continue
+        if dev == "low_side" and strategy == "asynchronous":
+            # a diode: its reverse recovery is dissipated in (and booked to) the high side
+            out["freewheel_diode.conduction"] = d[dev]["conduction_loss"]
+            continue
+        out[f"{dev}.conduction"] = d[dev]["conduction_loss"]
+        if not dev.endswith("body_diode"):
+            out[f"{dev}.switching"] = d[dev]["switching_loss"]
+    out["inductor.dcr"] = d["inductor"]["conduction_loss"]
+    if "core_loss" in d["inductor"]:
+        out["inductor.core"] = d["inductor"]["core_loss"]
+    out["output_capacitor.esr"] = d["output_capacitor"]["conduction_loss"]
+    if "supply" in d:
+        out["supply.resistance"] = d["supply"]["conduction_loss"]
+    return out
+
+
+@dataclass(frozen=True)
+class Row:
+    """One strategy at one load level, in steady state (SI units).
+
+    ``losses`` maps each item of :data:`LOSS_ITEMS` present to its power [W].
+    """
+
+    strategy: str
+    level: LoadLevel
+    duty: float
+    load_current: float
+    output_voltage: float
+    mode: str
+    reverse_current: bool
+    efficiency: float
+    input_power: float
+    output_power: float
+    loss: float
+    losses: dict
+    energy_balance_error: float
+
+    def to_dict(self) -> dict:
+        return {"strategy": self.strategy, "load": self.level.to_dict(), "duty": self.duty,
+                "load_current": self.load_current, "output_voltage": self.output_voltage,
+                "mode": self.mode, "reverse_current": self.reverse_current,
+                "efficiency": self.efficiency,
+                "power": {"input": self.input_power, "output": self.output_power,
+                          "loss": self.loss},
+                "losses": dict(self.losses),
+                "energy_balance_error": self.energy_balance_error}
+
+
+def _row(scenario, strategy, level, target, guess):
+    sc = with_level(scenario, level)
+    if target is None:
+        _, run = periodic_run(sc)
+    else:
+        sc, _, run = regulated_point(sc, target, guess)
+    s = run.summary(1).to_dict()
+    p = s["power"]
+    return Row(strategy=strategy, level=level, duty=sc.control.duty,
+               load_current=cycle_mean(run, "io"), output_voltage=s["output_voltage"]["mean"],
+               mode=s["mode"], reverse_current=s["reverse_current"],
+               efficiency=s["efficiency"], input_power=p["input"], output_power=p["output"],
+               loss=p["input"] - p["output"], losses=loss_items(s, strategy),
+               energy_balance_error=float(s["energy_balance_error"]))
+
+
+# ----------------------------------------------------------------------------- profile
+
+@dataclass(frozen=True)
+class Profile:
+    """Load levels and the share of time at each (shares add up to 1)."""
+
+    levels: tuple
+    shares: tuple
+    source: str = ""
+
+    def to_dict(self) -> dict:
+        return {"levels": [lv.to_dict() for lv in self.levels], "shares": list(self.shares),
+                "source": self.source}
+
+
+def make_profile(entries, scenario, key="profile", source="") -> Profile:
+    """A :class:`Profile` from ``[(level, share), ...]`` (levels as for :func:`parse_level`).
+
+    Raises
+    ------
+    ScenarioError
+        Naming the entry, when a share is not in (0, 1] or the shares do not
+        add up to 1 (within 1e-3; they are then normalised).
+    """
+    if isinstance(entries, Profile):
+        return entries
+    kind = load_kind(scenario)
+    levels, shares = [], []
+    for i, entry in enumerate(entries):
+        try:
+            level, share = entry
+        except (TypeError, ValueError):
+            raise ScenarioError(f"{key}[{i}]", "must be a (load level, share of time) pair",
+                                entry) from None
+        levels.append(parse_level(level, kind, f"{key}[{i}].level"))
+        if (isinstance(share, bool) or not isinstance(share, (int, float))
+                or not 0 < share <= 1):
+            raise ScenarioError(f"{key}[{i}].share", "must be a share of time in (0, 1]",
+                                share)
+        shares.append(float(share))
+    if not levels:
+        raise ScenarioError(key, "must hold at least one level", list(entries))
+    total = sum(shares)
+    if abs(total - 1.0) > 1e-3:
+        raise ScenarioError(key, "shares of time must add up to 1", round(total, 6))
+    return Profile(tuple(levels), tuple(s / total for s in shares), source)
+
+
+def _profile_entries(tables, key, load_key, file):
+    if not isinstance(tables, list) or not all(isinstance(t, dict) for t in tables):
+        raise ScenarioError(key, f"must be an array of tables {{{load_key} = ..., share = ...}}",
+                            tables, file=file)
+    out = []
+    for i, t in enumerate(tables):
+        unknown = set(t) - {load_key, "share"}
+        if unknown:
+            bad = min(unknown)
+            raise ScenarioError(f"{key}[{i}].{bad}", f"is not a known key (allowed: "
+                                f"{load_key}, share)", t[bad], file=file)
+        for name in (load_key, "share"):
+            if name not in t:
+                raise ScenarioError(f"{key}[{i}].{name}", "is required", file=file)
+        out.append((t[load_key], t["share"]))
+    return out
+
+
+def read_profile(path, scenario) -> Profile:
+    """A profile file: ``[[level]]`` tables with ``load = "0.3 A"`` and ``share = 0.7``."""
+    from .keylines import key_lines, line_of
+
+    with open(path, "rb") as f:
+        text = f.read().decode("utf-8-sig")
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ScenarioError("TOML syntax", str(exc), file=str(path)) from None
+    unknown = set(doc) - {"level"}
+    if unknown or "level" not in doc:
+        raise ScenarioError(min(unknown) if unknown else "level",
+                            "a profile file holds [[level]] tables only "
+                            "(load = \"0.3 A\", share = 0.7)", file=str(path))
+    try:
+        entries = _profile_entries(doc["level"], "level", "load", str(path))
+        return make_profile(entries, scenario, "level", str(path))
+    except ScenarioError as err:
+        key = err.key.replace("].level", "].load")
+        raise ScenarioError(key, err.expected, err.value, str(path),
+                            line_of(key_lines(text), key)) from None
+
+
+def load_scenario_and_profile(path):
+    """Read a scenario file that may hold ``[load] profile = [{level, share}, ...]``.
+
+    The scenario loader does not know the ``profile`` key, so it is taken out
+    of the raw TOML here and the rest is read as usual; errors name the
+    original file and line.
+
+    Returns
+    -------
+    (Scenario, Profile or None)
+    """
+    from .keylines import key_lines, line_of
+    from .scenario import load_scenario, loads_scenario
+
+    with open(path, "rb") as f:
+        text = f.read().decode("utf-8-sig")
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError:
+        return load_scenario(path), None  # the loader words the syntax error
+    load = doc.get("load")
+    if not isinstance(load, dict) or "profile" not in load:
+        return load_scenario(path), None
+    import tomli_w
+    entries = load.pop("profile")
+    lines = key_lines(text)
+    try:
+        scenario = loads_scenario(tomli_w.dumps(doc), source=str(path))
+        pairs = _profile_entries(entries, "load.profile", "level", str(path))
+        profile = make_profile(pairs, scenario, "load.profile", f"{path} [load] profile")
+    except ScenarioError as err:
+        raise ScenarioError(err.key, err.expected, err.value, str(path),
+                            line_of(lines, err.key)) from None
+    return dataclasses.replace(scenario, text=text), profile
+
+
+@dataclass(frozen=True)
+class ProfileResult:
+    """Energy-weighted figures of each strategy over a :class:`Profile`.
+
+    Attributes
+    ----------
+    profile : Profile
+    rows : dict   strategy -> list of Row, one per profile level
+    weighted_efficiency : dict   strategy -> sum(share P_out) / sum(share P_in)
+    energy_lost_per_day : dict   strategy -> [Wh/day]
+    best : str
+    decision : str   one sentence naming the best strategy and the deciding number
+    """
+
+    profile: Profile
+    rows: dict
+    weighted_efficiency: dict
+    energy_lost_per_day: dict
+    best: str
+    decision: str
+
+    def to_dict(self) -> dict:
+        return {"profile": self.profile.to_dict(),
+                "rows": {s: [r.to_dict() for r in rows] for s, rows in self.rows.items()},
+                "weighted_efficiency": dict(self.weighted_efficiency),
+                "energy_lost_per_day_wh": dict(self.energy_lost_per_day),
+                "best": self.best, "decision": self.decision}
+
+
+def _profile_result(profile, rows_by_strategy) -> ProfileResult:
+    shares = np.array(profile.shares)
+    eff, lost, mean_loss = {}, {}, {}
+    for s, rows in rows_by_strategy.items():
+        p_out = np.array([r.output_power for r in rows])
+        p_in = np.array([r.input_power for r in rows])
+        eff[s] = float(shares @ p_out / (shares @ p_in))
+        mean_loss[s] = float(shares @ (p_in - p_out))
+        lost[s] = mean_loss[s] * HOURS_PER_DAY
+    ranked = sorted(rows_by_strategy, key=lambda s: mean_loss[s])
+    best = ranked[0]
+    if len(ranked) == 1:
+        return ProfileResult(profile, rows_by_strategy, eff, lost, best,
+                             f"{STRATEGY_NAMES[best]} is the only strategy compared")
+    second = ranked[1]
+    saved = [(r2.loss - r1.loss) for r1, r2 in zip(rows_by_strategy[best],
+                                                    rows_by_strategy[second])]
+    k = int(np.argmax(shares * np.array(saved)))
+    row = rows_by_strategy[best][k]
+    decision = (f"{STRATEGY_NAMES[best]} saves {format_si(saved[k], 'W', 3)} against "
+                f"{STRATEGY_NAMES[second]} at {format_si(row.load_current, 'A', 3)}, where "
+                f"the rail spends {100 * shares[k]:.0f} % of its time "
+                f"({format_si(lost[second] - lost[best], 'Wh', 3)}/day over the whole "
+                "profile)")
+    return ProfileResult(profile, rows_by_strategy, eff, lost, best, decision)
+
+
+# ----------------------------------------------------------------------------- comparison
+
+@dataclass(frozen=True)
+class Comparison:
+    """Result of :func:`compare`.
+
+    Attributes
+    ----------
+    title : str
+    strategies : tuple of str
+    levels : tuple of LoadLevel     the sweep's load levels
+    rows : dict                     strategy -> tuple of Row, one per level
+    diode : Diode                   freewheel diode of the asynchronous stage
+    target_voltage : float or None  regulated mean output voltage [V]
+    log : bool                      loads spaced / plotted on a log axis
+    profile : ProfileResult or None
+    """
+
+    title: str
+    strategies: tuple
+    levels: tuple
+    rows: dict
+    diode: Diode
+    target_voltage: float | None
+    log: bool = False
+    profile: ProfileResult | None = None
+
+    def row(self, strategy: str, level) -> Row:
+        """The row of ``strategy`` at sweep level ``level`` (equal to 1e-6 relative)."""
+        k = self.level_index(level)
+        return self.rows[strategy][k]
+
+    def level_index(self, level) -> int:
+        kind = self.levels[0].key
+        lv = parse_level(level, kind)
+        for k, have in enumerate(self.levels):
+            if have.key == lv.key and math.isclose(have.value, lv.value, rel_tol=1e-6):
+                return k
+        raise KeyError(f"load level {lv} is not in the comparison; evaluated: "
+                       + ", ".join(str(x) for x in self.levels))
+
+    def to_dict(self) -> dict:
+        return {"title": self.title, "strategies": list(self.strategies),
+                "levels": [lv.to_dict() for lv in self.levels],
+                "target_voltage": self.target_voltage,
+                "diode": {"vf": self.diode.vf, "r": self.diode.r, "qrr": self.diode.qrr},
+                "rows": {s: [r.to_dict() for r in rows] for s, rows in self.rows.items()},
+                "profile": None if self.profile is None else self.profile.to_dict(),
+                "caution": CAUTION}
+
+    def to_csv(self, path=None) -> str:
+        """One line per strategy and load; powers [W], current [A], voltage [V].
+
+        Writes ``path`` when given; returns the CSV text either way.
+        """
+        present = [it for it in LOSS_ITEMS
+                   if any(it in r.losses for rows in self.rows.values() for r in rows)]
+        head = ["strategy", "load_key", "load_value", "load_current_A", "output_voltage_V",
+                "duty", "mode", "reverse_current", "efficiency", "input_W", "output_W",
+                "loss_W"] + [f"{it}_W" for it in present]
+        buf = io.StringIO()
+        w = csv.writer(buf, lineterminator="\n")
+        w.writerow(head)
+        for s in self.strategies:
+            for r in self.rows[s]:
+                w.writerow([s, r.level.key, repr(r.level.value), repr(r.load_current),
+                            repr(r.output_voltage), repr(r.duty), r.mode,
+                            int(r.reverse_current), repr(r.efficiency), repr(r.input_power),
+                            repr(r.output_power), repr(r.loss)]
+                           + [repr(r.losses.get(it, 0.0)) for it in present])
+        text = buf.getvalue()
+        if path is not None:
+            with open(path, "w", encoding="utf-8", newline="") as f:
+                f.write(text)
+        return text
+
+    def table(self) -> str:
+        """Readable report: efficiency and loss per load, the profile verdict, a caution."""
+        head = f"{'load':>10}{'Io':>10}" + "".join(
+            f"{STRATEGY_NAMES[s]:>24}" for s in self.strategies)
+        sub = " " * 20 + "".join(f"{'efficiency':>13}{'loss':>11}" for _ in self.strategies)
+        lines = [self.title]
+        if self.target_voltage is not None:
+            lines.append(f"duty trimmed to hold Vo = {format_si(self.target_voltage, 'V')} "
+                         "at every point")
+        d = self.diode
+        lines += [(f"asynchronous stage: freewheel diode Vf {format_si(d.vf, 'V')}, "
+                   f"r {format_si(d.r, 'ohm')}, Qrr {format_si(d.qrr, 'C')}"), "", head, sub]
+        for k, lv in enumerate(self.levels):
+            r0 = self.rows[self.strategies[0]][k]
+            cells = "".join(f"{100 * self.rows[s][k].efficiency:>12.2f}%"
+                            f"{format_si(self.rows[s][k].loss, 'W', 3):>11}"
+                            for s in self.strategies)
+            lines.append(f"{lv!s:>10}{format_si(r0.load_current, 'A', 3):>10}{cells}")
+        if self.profile is not None:
+            pr = self.profile
+            lines += ["", "load profile: " + ", ".join(
+                f"{lv} {100 * sh:.0f} %" for lv, sh in zip(pr.profile.levels, pr.profile.shares))]
+            for s in self.strategies:
+                lines.append(f"  {STRATEGY_NAMES[s]:<18} weighted efficiency "
+                             f"{100 * pr.weighted_efficiency[s]:.2f} %   lost "
+                             f"{format_si(pr.energy_lost_per_day[s], 'Wh', 4)}/day")
+            lines += ["", f"best: {pr.decision}"]
+        lines += ["", CAUTION]
+        return "\n".join(lines)
+
+    def __str__(self):
+        return self.table()
+
+    def efficiency_figure(self, log=None):
+        from .plots import efficiency_figure
+        return efficiency_figure(self, log=log)
+
+    def loss_breakdown_figure(self, loads):
+        from .plots import loss_breakdown_figure
+        return loss_breakdown_figure(self, loads)
+
+
+def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
+            regulate=True, strategies=STRATEGY_ORDER, log=False) -> Comparison:
+    """Efficiency and losses of the three strategies across load, on the same parts.
+
+    Parameters
+    ----------
+    scenario : Scenario
+        Open loop, with a low-side MOSFET (its body diode is the default
+        freewheel diode).
+    loads : list, dict or value
+        Sweep load levels (see :func:`bucksim.reverse.parse_levels`).
+    diode : Diode, optional
+        Freewheel diode of the asynchronous stage: ``vf`` [V], ``r`` [ohm],
+        ``qrr`` [C].
+    profile : Profile or list of (level, share), optional
+        Load profile for the weighted efficiency and energy lost per day.
+    output_voltage : float, optional
+        Mean output voltage [V] to hold at every point; default the
+        scenario's own (steady state at its duty and t = 0 load).
+    regulate : bool
+        Trim the duty to hold the output voltage (default); ``False`` keeps
+        the scenario's duty.
+    strategies : sequence of str
+    log : bool
+        Loads meant for a logarithmic axis (figures follow it).
+
+    Returns
+    -------
+    Comparison
+    """
+    require_open_loop(scenario)
+    for s in strategies:
+        if s not in STRATEGY_ORDER:
+            raise ScenarioError("strategies", "must name only " + ", ".join(STRATEGY_ORDER), s)
+    levels = parse_levels(loads, scenario, "loads")
+    variants = {s: strategy_scenario(scenario, s, diode) for s in strategies}
+    if "asynchronous" in variants:
+        used_diode = variants["asynchronous"].low_side
+    else:
+        used_diode = strategy_scenario(scenario, "asynchronous", diode).low_side
+    target = None
+    if regulate:
+        if output_voltage is not None:
+            target = parse_quantity(output_voltage, "V", "output_voltage")
+            if not 0 < target < scenario.supply.voltage:
+                raise ScenarioError("output_voltage", f"must lie between 0 and the supply "
+                                    f"voltage {scenario.supply.voltage:g} V", output_voltage)
+        else:
+            _, run = periodic_run(with_level(scenario, _own_level(scenario)))
+            target = cycle_mean(run, "vo")
+    cache = {}
+
+    def rows_for(strategy, lvls):
+        out, guess = [], None
+        for lv in lvls:
+            key = (strategy, lv.key, lv.value)
+            if key not in cache:
+                try:
+                    cache[key] = _row(variants[strategy], strategy, lv, target, guess)
+                except SimulationError as exc:
+                    raise SimulationError(f"{STRATEGY_NAMES[strategy]} at {lv}: {exc}") from None
+            out.append(cache[key])
+            guess = cache[key].duty
+        return tuple(out)
+
+    rows = {s: rows_for(s, levels) for s in strategies}
+    pres = None
+    if profile is not None:
+        prof = make_profile(profile, scenario)
+        pres = _profile_result(prof, {s: list(rows_for(s, prof.levels)) for s in strategies})
+    return Comparison(title=scenario.title, strategies=tuple(strategies), levels=tuple(levels),
+                      rows=rows, diode=used_diode, target_voltage=target, log=bool(log),
+                      profile=pres)
+
+
+def _own_level(scenario):
+    kind = load_kind(scenario)
+    value = scenario.load.current if kind == "current" else scenario.load.resistance
+    return LoadLevel(kind, float(value))
+
+
+# ----------------------------------------------------------------------------- command line
+
+def parse_sweep(text: str, scenario, log: bool = False) -> list:
+    """``"START:STOP:N"`` -> N load levels, evenly (or, with ``log``, geometrically) spaced."""
+    parts = text.split(":")
+    if len(parts) != 3:
+        raise ScenarioError("--loads", "must be START:STOP:N, e.g. '0.1 A:15 A:12'", text)
+    kind = load_kind(scenario)
+    a = parse_level(parts[0].strip(), kind, "--loads START")
+    b = parse_level(parts[1].strip(), kind, "--loads STOP")
+    if a.key != b.key:
+        raise ScenarioError("--loads", "START and STOP must both be currents or both "
+                            "resistances", text)
+    try:
+        n = int(parts[2])
+    except ValueError:
+        n = 0
+    if n < 1:
+        raise ScenarioError("--loads N", "must be an integer >= 1", parts[2])
+    if log and (a.value <= 0 or b.value <= 0):
+        raise ScenarioError("--loads", "must be > 0 at both ends for --log spacing", text)
+    values = np.geomspace(a.value, b.value, n) if log else np.linspace(a.value, b.value, n)
+    return [LoadLevel(a.key, float(v)) for v in values]
+
+
+def parse_diode(text: str) -> Diode:
+    """``"vf=0.45,r=0.02,qrr=0"`` (units allowed: ``vf=0.45V,r=20mohm``) -> Diode."""
+    units = {"vf": "V", "r": "ohm", "qrr": "C"}
+    values = {}
+    for part in filter(None, (p.strip() for p in text.split(","))):
+        name, sep, value = part.partition("=")
+        name = name.strip()
+        if not sep or name not in units:
+            raise ScenarioError(f"--diode {name or part}", "must be vf=..., r=..., qrr=... "
+                                "(V, ohm, C)", part)
+        values[name] = parse_quantity(value.strip(), units[name], f"--diode {name}")
+    if "vf" not in values:
+        raise ScenarioError("--diode vf", "is required (forward drop in V)", text)
+    return Diode(values["vf"], values.get("r", 0.0), values.get("qrr", 0.0), section="--diode")
+
+
+def register(subparsers):
+    """Add the ``compare`` verb to the ``bucksim`` command."""
+    p = subparsers.add_parser(
+        "compare", help="asynchronous vs forced PWM vs diode emulation across load",
+        description="Run the scenario's parts as an asynchronous stage, in forced PWM and "
+                    "with diode emulation at each load level, in steady state with the duty "
+                    "trimmed to hold the output voltage; print efficiency and losses, and "
+                    "with a load profile the weighted efficiency, energy lost per day and "
+                    "the best strategy.",
+        epilog="Example: bucksim compare scenarios/core_rail_1v0.toml --loads '0.2 A:20 A:12' "
+               "--log --profile rail_profile.toml --diode vf=0.45,r=0.02,qrr=0 "
+               "--csv out.csv --figure eff.png")
+    p.add_argument("file", help="scenario TOML file (open loop, low-side MOSFET)")
+    p.add_argument("--loads", required=True, metavar="START:STOP:N",
+                   help="sweep: N load levels from START to STOP ('0.1 A:15 A:12', "
+                        "'10 ohm:0.1 ohm:8', or numbers in the scenario's load unit)")
+    p.add_argument("--log", action="store_true",
+                   help="space the loads geometrically and plot them on a log axis")
+    p.add_argument("--profile", metavar="FILE",
+                   help="load profile TOML: [[level]] load = \"0.3 A\", share = 0.7 "
+                        "(default: [load] profile in the scenario, if any)")
+    p.add_argument("--diode", metavar="vf=..,r=..,qrr=..",
+                   help="freewheel diode of the asynchronous stage (default: the low-side "
+                        "body diode)")
+    p.add_argument("--fixed-duty", action="store_true",
+                   help="keep the scenario's duty instead of holding its output voltage")
+    p.add_argument("--output-voltage", metavar="V",
+                   help="output voltage to hold (default: the scenario's own)")
+    p.add_argument("--csv", metavar="OUT.csv", help="write every row to a CSV file")
+    p.add_argument("--figure", metavar="PNG", help="draw efficiency vs load")
+    p.add_argument("--breakdown", metavar="PNG",
+                   help="draw the loss breakdown at the lightest, middle and heaviest load")
+    p.add_argument("--force", action="store_true", help="overwrite existing output files")
+    p.add_argument("--json", action="store_true", help="print the comparison as JSON")
+    p.set_defaults(func=_cmd_compare)
+    return p
+
+
+def _cmd_compare(args) -> int:
+    import json
+    import os
+    import sys
+
+    for out in (args.csv, args.figure, args.breakdown):
+        if out and os.path.exists(out) and not args.force:
+            print(f"bucksim: error: {out} exists; pass --force to overwrite it",
+                  file=sys.stderr)
+            return 1
+    try:
+        scenario, profile = load_scenario_and_profile(args.file)
+        if args.profile:
+            if profile is not None:
+                print(f"bucksim: using {args.profile} instead of the scenario's load profile",
+                      file=sys.stderr)
+            profile = read_profile(args.profile, scenario)
+        levels = parse_sweep(args.loads, scenario, args.log)
+        diode = parse_diode(args.diode) if args.diode else None
+        result = compare(scenario, levels, diode=diode, profile=profile,
+                         output_voltage=args.output_voltage, regulate=not args.fixed_duty,
+                         log=args.log)
+    except (ScenarioError, SimulationError, OSError) as exc:
+        print(f"bucksim: error: {exc}", file=sys.stderr)
+        return 1
+    if args.json:
+        json.dump(result.to_dict(), sys.stdout, indent=2)
+        sys.stdout.write("\n")
+    else:
+        print(result.table())
+    if args.csv:
+        result.to_csv(args.csv)
+        print(f"bucksim: wrote {args.csv}", file=sys.stderr)
+    from .plots import save_png
+    if args.figure:
+        save_png(result.efficiency_figure(), args.figure)
+        print(f"bucksim: wrote {args.figure}", file=sys.stderr)
+    if args.breakdown:
+        n = len(result.levels)
+        picks = sorted({0, n // 2, n - 1})
+        save_png(result.loss_breakdown_figure([result.levels[k] for k in picks]),
+                 args.breakdown)
+        print(f"bucksim: wrote {args.breakdown}", file=sys.stderr)
+    return 0

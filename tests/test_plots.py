@@ -1,0 +1,171 @@
+"""Figures drawn headless: pixel size, plotted data against the run / comparison, units.
+
+The check is on the data the axes hold (``Line2D.get_xdata/get_ydata``, bar
+heights) against exact values from the run (``Run.at``) and the comparison
+rows, not on pixels. The stage is our own invented point-of-load rail.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import matplotlib
+import matplotlib.image
+import numpy as np
+import pytest
+from test_compare import pol_rail
+
+import bucksim
+from bucksim.compare import STRATEGY_NAMES, compare, item_label
+from bucksim.plots import (
+    STATE_LABELS,
+    efficiency_figure,
+    loss_breakdown_figure,
+    reverse_figure,
+    save_png,
+    waveform_figure,
+)
+from bucksim.reverse import reverse_current
+from bucksim.steady import steady_state
+
+CYCLES = 6
+
+
+@pytest.fixture(scope="module")
+def run():
+    """Diode emulation at 0.3 A (DCM: all four conduction states), from steady state."""
+    sc = pol_rail()
+    sc = dataclasses.replace(
+        sc, switching=dataclasses.replace(sc.switching, strategy="diode-emulation"),
+        load=dataclasses.replace(sc.load, current=0.3), control=dataclasses.replace(
+            sc.control, duty=0.1))
+    ss = steady_state(sc)
+    return bucksim.simulate(dataclasses.replace(sc, run=dataclasses.replace(
+        sc.run, cycles=CYCLES, initial_current=ss.x[0], initial_voltage=ss.x[1])))
+
+
+def test_backend_is_headless():
+    assert matplotlib.get_backend().lower() == "agg"
+
+
+def test_waveform_figure_data_size_and_labels(run, tmp_path):
+    T = run.period
+    window = (2.5 * T, 5.5 * T)
+    signals = ("iL", "vsw", "vo")
+    fig = waveform_figure(run, signals, window, size=(8.0, 6.0))
+    path = save_png(fig, tmp_path / "wave.png", dpi=100)
+    img = matplotlib.image.imread(path)
+    assert img.shape[:2] == (600, 800)
+    assert b"matplotlib" not in path.read_bytes().lower()  # no software stamp
+    starts = run.segments.t0
+    for ax, name, unit in zip(fig.axes, signals, ("[A]", "[V]", "[V]")):
+        line, = ax.lines
+        t, y = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
+        assert t[0] == pytest.approx(window[0], abs=1e-15) and t[-1] == pytest.approx(
+            window[1], abs=1e-15)
+        want = run.at(t, name)
+        inner = ~np.isin(t, starts)           # at a boundary vsw is drawn with both limits
+        scale = np.max(np.abs(want))
+        assert np.allclose(y[inner], want[inner], rtol=0, atol=1e-9 * scale)
+        if name != "vsw":                     # states are continuous: all points match
+            assert np.allclose(y, want, rtol=0, atol=1e-9 * scale)
+        assert unit in ax.get_ylabel()
+    band = fig.axes[len(signals)]
+    assert "[s]" in band.get_xlabel()
+    in_window = (starts + run.segments.dt > window[0]) & (starts < window[1])
+    codes = sorted(set(run.segments.conduction[in_window].tolist()))
+    assert len(codes) == 4                    # high, low, low-diode, idle
+    assert len(band.collections) == len(codes)
+    legend = [t.get_text() for t in fig.legends[0].get_texts()]
+    assert legend == [STATE_LABELS[c] for c in codes]
+
+
+def test_waveform_window_rejected(run):
+    with pytest.raises(ValueError, match="window"):
+        waveform_figure(run, window=(0.0, 10 * CYCLES * run.period))
+    with pytest.raises(ValueError, match="unknown signal"):
+        waveform_figure(run, signals=("iX",))
+
+
+@pytest.fixture(scope="module")
+def comparison():
+    return compare(pol_rail(), ["50 mA", "0.3 A", "3 A"], output_voltage=3.3, log=True,
+                   profile=[("50 mA", 0.7), ("3 A", 0.3)])
+
+
+def test_efficiency_figure_data(comparison, tmp_path):
+    fig = efficiency_figure(comparison)
+    img = matplotlib.image.imread(save_png(fig, tmp_path / "eff.png", dpi=50))
+    assert img.shape[:2] == (250, 400)
+    ax, = fig.axes
+    assert ax.get_xscale() == "log"
+    assert "[A]" in ax.get_xlabel() and "[%]" in ax.get_ylabel()
+    lines = {ln.get_label(): ln for ln in ax.lines if not ln.get_label().startswith("_")}
+    assert set(lines) == {STRATEGY_NAMES[s] for s in comparison.strategies}
+    for s in comparison.strategies:
+        ln = lines[STRATEGY_NAMES[s]]
+        rows = comparison.rows[s]
+        assert list(ln.get_xdata()) == [r.load_current for r in rows]
+        assert list(ln.get_ydata()) == [100 * r.efficiency for r in rows]
+
+
+def test_loss_breakdown_figure_data(comparison):
+    fig = loss_breakdown_figure(comparison, ["50 mA", "3 A"])
+    ax, = fig.axes
+    assert "[W]" in ax.get_ylabel()
+    bars = [(s, lv) for lv in ("50 mA", "3 A") for s in comparison.strategies]
+    total = np.zeros(len(bars))
+    for container in ax.containers:
+        item = container.patches[0].get_gid()
+        assert container.get_label() == item_label(item)
+        for k, (patch, (s, lv)) in enumerate(zip(container.patches, bars)):
+            want = comparison.row(s, lv).losses.get(item, 0.0)
+            assert patch.get_height() == pytest.approx(want, rel=1e-12, abs=1e-18)
+            assert patch.get_y() == pytest.approx(total[k], rel=1e-12, abs=1e-15)
+        total += [pt.get_height() for pt in container.patches]
+    assert total == pytest.approx([comparison.row(s, lv).loss for s, lv in bars], rel=1e-8)
+    with pytest.raises(KeyError, match="not in the comparison"):
+        loss_breakdown_figure(comparison, ["1 A"])
+
+
+def test_reverse_figure_data():
+    sc = dataclasses.replace(pol_rail(), inductor=bucksim.parts.Inductor(2.2e-6, 25e-3))
+    res = reverse_current(sc, load=[0.3, 2.0])
+    fig = reverse_figure(res)
+    ax, = fig.axes
+    curve = ax.lines[0]
+    assert list(curve.get_xdata()) == [pt.load_current for pt in res.points]
+    assert list(curve.get_ydata()) == [pt.min_current for pt in res.points]
+    vertical = [ln.get_xdata()[0] for ln in ax.lines[2:]]
+    assert vertical == [res.boundary.closed_form, res.boundary.simulated]
+    assert "[A]" in ax.get_xlabel() and "[A]" in ax.get_ylabel()
+
+
+def _cli(args):
+    import argparse
+
+    from bucksim.plots import register
+    parser = argparse.ArgumentParser(prog="bucksim")
+    register(parser.add_subparsers())
+    ns = parser.parse_args(args)
+    return ns.func(ns)
+
+
+def test_cli_plot(run, tmp_path, capsys):
+    stored = tmp_path / "run.h5"
+    run.save(stored)
+    out = tmp_path / "fig.png"
+    T = run.period
+    args = ["plot", str(stored), "--signals", "iL,vo", "--window", f"{T}:{3 * T}",
+            "--out", str(out)]
+    assert _cli(args) == 0
+    assert matplotlib.image.imread(out).shape[:2] == (600, 800)
+    before = out.read_bytes()
+    assert _cli(args) == 1                    # refuses to overwrite
+    assert "--force" in capsys.readouterr().err
+    assert out.read_bytes() == before
+    assert _cli(args + ["--force"]) == 0
+    assert out.read_bytes() == before         # same figure, same bytes
+    assert _cli(["plot", str(stored), "--signals", "iX", "--out",
+                 str(tmp_path / "x.png")]) == 1
+    assert "unknown signal" in capsys.readouterr().err
