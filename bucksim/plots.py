@@ -72,7 +72,7 @@ def waveform_points(run, signals, window=None):
     the segment itself, so a discontinuous signal (``vsw``) has a vertical
     edge at every segment boundary.
     """
-    from .reverse import segment_values
+    from .levels import segment_values
 
     seg = run.segments
     t_first, t_last = float(seg.t0[0]), float(run.t_end)
