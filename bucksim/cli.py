@@ -41,14 +41,47 @@ def _cmd_run(args) -> int:
         scenario = replace(scenario, run=replace(scenario.run, cycles=args.cycles, duration=None))
     if args.out:
         _refuse_overwrite(args.out, args.force)
-    run = bucksim.simulate(scenario)
+    compression = "gzip" if args.archive else None
+    with _progress_bar(scenario.n_cycles, args.quiet) as progress:
+        if args.stream:
+            if not args.out:
+                raise FileNotFoundError("--stream needs --out RUN.h5 (the segments go there)")
+            from .storage import open_run, simulate_to_file
+            simulate_to_file(scenario, args.out, compression, progress=progress)
+            run = open_run(args.out)
+        else:
+            run = bucksim.simulate(scenario, progress=progress)
     if not run.success:
         print(f"bucksim: {path}: {run.message}", file=sys.stderr)
+    if args.out and not args.stream:
+        run.save(args.out, compression=compression)
     if args.out:
-        run.save(args.out, compression="gzip" if args.archive else None)
         print(f"bucksim: wrote {args.out}", file=sys.stderr)
     _print_summary(run, path, args)
     return EXIT_OK if run.success else EXIT_USER
+
+
+class _progress_bar:
+    """A tqdm bar on stderr for long runs; silent off a terminal or with --quiet."""
+
+    def __init__(self, total, quiet):
+        self.total, self.quiet, self.bar = total, quiet, None
+
+    def __enter__(self):
+        if self.quiet or self.total < 100_000:
+            return None
+        from tqdm import tqdm
+        self.bar = tqdm(total=self.total, unit="cycle", unit_scale=True, disable=None,
+                        file=sys.stderr, leave=False)
+
+        def update(done, total):
+            self.bar.update(done - self.bar.n)
+        return update
+
+    def __exit__(self, *exc):
+        if self.bar is not None:
+            self.bar.close()
+        return False
 
 
 def _refuse_overwrite(path, force):
@@ -125,6 +158,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", metavar="RUN.h5", help="store the waveforms (HDF5)")
     r.add_argument("--archive", action="store_true", help="compress the stored file (gzip)")
     r.add_argument("--force", action="store_true", help="overwrite an existing --out file")
+    r.add_argument("--stream", action="store_true",
+                   help="write segments to --out as they come (bounded memory for long runs)")
+    r.add_argument("--quiet", action="store_true", help="no progress bar")
     r.set_defaults(func=_cmd_run)
 
     rep = sub.add_parser("report", help="summarise a stored run",

@@ -8,7 +8,7 @@ from .stage import Stage
 from .waveforms import Run
 
 
-def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
+def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> "Run":
     """Simulate a scenario's power stage exactly, cycle by cycle.
 
     Parameters
@@ -23,13 +23,15 @@ def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
     check : bool
         Raise :class:`~bucksim.errors.SimulationError` if the run did not
         complete (by default the Run carries ``status``/``message``).
+    progress : callable, optional
+        ``progress(cycles_done, n_cycles)``, called as the engine goes.
 
     Returns
     -------
     Run
     """
     if scenario.control.mode != "open-loop":
-        return _simulate_closed_loop(scenario, x0, check)
+        return _simulate_closed_loop(scenario, x0, check, progress)
     steady = None
     if x0 is None and scenario.run.start == "steady-state":
         from .steady import steady_state
@@ -40,7 +42,7 @@ def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
         x0 = steady.x
     stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
-    result = integrate(stage, x0, table=table)
+    result = integrate(stage, x0, table=table, progress=progress)
     run = Run(scenario, stage, table, result)
     run.steady_state = steady
     if check and not run.success:
@@ -48,7 +50,7 @@ def simulate(scenario, x0=None, *, check: bool = False) -> "Run":
     return run
 
 
-def _simulate_closed_loop(scenario, x0, check):
+def _simulate_closed_loop(scenario, x0, check, progress=None):
     from .control import design
     from .engine.controlled import integrate_closed_loop
 
@@ -64,7 +66,8 @@ def _simulate_closed_loop(scenario, x0, check):
             raise SimulationError(f"{scenario.source or scenario.title}: run.start = "
                                   f"'steady-state': {steady.message}")
         x0, state = steady.x, steady.controller
-    result, end_state, duty, u = integrate_closed_loop(stage, comp, x0, state, table=table)
+    result, end_state, duty, u = integrate_closed_loop(stage, comp, x0, state, table=table,
+                                                       progress=progress)
     run = Run(scenario, stage, table, result)
     run.steady_state = steady
     run.controller_state = end_state

@@ -255,7 +255,8 @@ def save_run(run: Run, path, compression=None) -> dict:
     return _report(path, len(seg), run.t_end, run.status, run.message)
 
 
-def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | None = None) -> dict:
+def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | None = None,
+                     progress=None) -> dict:
     """Simulate ``scenario`` and stream its segments into the HDF5 file ``path``.
 
     Memory stays bounded by one engine chunk (``chunk_cycles`` periods,
@@ -282,7 +283,7 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
     rows = scenario.n_cycles * (2 if scenario.switching.strategy == "asynchronous" else 4)
     with _InterruptLatch() as latch, _atomic_target(path) as tmp, h5py.File(tmp, "x") as f:
         writer = _RunWriter(f, scenario, table, compression, rows, latch)
-        res = integrate(stage, table=table, sink=writer.append, **options)
+        res = integrate(stage, table=table, sink=writer.append, progress=progress, **options)
         writer.finish(res.t_end, res.x_end, res.status, res.message)
     return _report(path, writer.n, res.t_end, res.status, res.message)
 

@@ -73,3 +73,13 @@ def test_python_dash_m_version():
     out = subprocess.run([sys.executable, "-m", "bucksim", "--version"], capture_output=True,
                          text=True, check=True)
     assert out.stdout.startswith("bucksim ")
+
+
+def test_streamed_run_reports_like_the_in_memory_run(tmp_path, capsys):
+    h5 = tmp_path / "long.h5"
+    assert main(["run", "--cycles", "3000", "--json", "--quiet"]) == 0
+    memory = json.loads(capsys.readouterr().out)
+    assert main(["run", "--cycles", "3000", "--json", "--quiet", "--stream",
+                 "--out", str(h5)]) == 0
+    streamed = json.loads(capsys.readouterr().out)
+    assert streamed == memory

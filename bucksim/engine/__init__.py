@@ -91,7 +91,8 @@ def phase_durations(scenario, on_time: float) -> list[float]:
 
 def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = None,
               chunk_cycles: int = CHUNK_CYCLES, sink=None, n_cycles: int | None = None,
-              t_end: float | None = None, phase_cache: dict | None = None) -> EngineResult:
+              t_end: float | None = None, phase_cache: dict | None = None,
+              progress=None) -> EngineResult:
     """Simulate ``stage.scenario`` from ``x0`` for its run duration.
 
     Parameters
@@ -111,6 +112,8 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
     phase_cache : dict, optional
         Keeps the fixed-phase exponentials between calls (keyed on the
         nominal durations), for callers that integrate one stage many times.
+    progress : callable, optional
+        Called as ``progress(cycles_done, n_cycles)`` after each chunk.
     """
     from ..stage import STRATEGY_CODES
 
@@ -167,6 +170,8 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
         else:
             pieces.append(piece)
         c = c_stop
+        if progress is not None:
+            progress(c, n_cycles)
         if t >= t_end:
             break
     if pieces:

@@ -33,7 +33,7 @@ def initial_controller(compensator, delay: int) -> ControllerState:
 
 def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | None = None, *,
                           table=None, n_cycles=None, t_end=None, sink=None,
-                          chunk_cycles=CHUNK_CYCLES):
+                          chunk_cycles=CHUNK_CYCLES, progress=None):
     """Simulate ``stage.scenario`` under its closed-loop controller.
 
     Returns ``(EngineResult, ControllerState at the end, duty per cycle,
@@ -90,6 +90,8 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
         duty_log.append(dl)
         u_log.append(ul)
         c = c_stop
+        if progress is not None:
+            progress(c, n_cycles)
         if t >= t_end:
             break
     cols = ([np.concatenate(col) for col in zip(*pieces)] if pieces else
