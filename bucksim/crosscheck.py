@@ -104,13 +104,15 @@ def crosscheck(scenario, run=None, cycles=None) -> CrossCheck:
     if run is None:
         import dataclasses
 
-        from .steady import steady_state
+        from .steady import periodic_scenario, steady_state
         ss = steady_state(scenario)
         if not ss.success:
             raise RuntimeError(f"crosscheck: no periodic steady state: {ss.message}")
         n = cycles or scenario.run.summary_cycles
-        settled = dataclasses.replace(scenario, run=dataclasses.replace(
-            scenario.run, cycles=n, duration=None, start="rest",
+        # the operating point of the t = 0 level: no soft-start, no steps
+        base = periodic_scenario(scenario)
+        settled = dataclasses.replace(base, run=dataclasses.replace(
+            base.run, cycles=n, duration=None, start="rest",
             initial_current=float(ss.x[0]), initial_voltage=float(ss.x[1])))
         run = simulate(settled)
     summary = run.summary(cycles=cycles).to_dict()

@@ -310,12 +310,17 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
             durs[2] = max(0.0, T - ton - td_fall - td_rise)
             gates[3] = GATE_OFF
             durs[3] = td_rise
+        last = nph - 1
+        while last > 0 and durs[last] <= 0.0:
+            last -= 1
         offset = 0.0
         for p in range(nph):
             t_phase = tc + offset
             offset += durs[p]
-            t_phase_end = (c + 1) * T if p == nph - 1 else tc + offset
-            if t_phase_end <= t_phase:
+            # the last phase that lasts ends exactly on the period boundary, so
+            # rounding of the offsets never leaves a sliver phase behind it
+            t_phase_end = (c + 1) * T if p == last else tc + offset
+            if durs[p] <= 0.0 or t_phase_end <= t_phase:
                 continue
             t = t_phase
             cond = conduction_for(gates[p], strategy, z[0])
