@@ -213,6 +213,11 @@ def main(argv=None) -> int:
     except (FileNotFoundError, FileExistsError, IsADirectoryError, PermissionError) as exc:
         print(f"bucksim: error: {exc}", file=sys.stderr)
         return EXIT_USER
+    except BrokenPipeError:  # `bucksim run ... | head`: the reader left, not an error
+        import os
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
     except KeyboardInterrupt:
         print("bucksim: interrupted", file=sys.stderr)
         return 130

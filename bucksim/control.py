@@ -28,7 +28,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import signal
 
 from .errors import ScenarioError
 
@@ -85,6 +84,8 @@ def compensator_tf(spec: dict) -> tuple[np.ndarray, np.ndarray]:
 
 def design(spec: dict, period: float) -> Compensator:
     """Discrete state space of the compensator by the bilinear transform."""
+    from scipy import signal
+
     num, den = compensator_tf(spec)
     A, B, C, D = signal.tf2ss(num, den)
     Ad, Bd, Cd, Dd, _ = signal.cont2discrete((A, B, C, D), period, method="bilinear")

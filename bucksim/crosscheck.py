@@ -48,15 +48,19 @@ class CrossCheck:
 
     def table(self) -> str:
         from .units import format_si
-        head = f"{'item':<34}{'closed form':>13}{'waveforms':>13}{'diff':>12}{'diff %':>9}"
+        head = f"{'item':<34}{'closed form':>13}{'waveforms':>13}{'diff':>13}{'diff %':>9}"
         lines = [head, "-" * len(head)]
         def w(v):
             return "n/a" if v is None else format_si(v, "W")
 
         for r in self.rows:
             pct = "" if r["percent"] is None else f"{r['percent']:+.2f}"
+            diff = r["difference"]
+            scale = max(abs(r["closed_form"] or 0.0), abs(r["simulated"] or 0.0))
+            if diff is not None and abs(diff) <= 1e-9 * scale:
+                diff = 0.0  # agreement to rounding: print it as such
             lines.append(f"{r['item']:<34}{w(r['closed_form']):>13}{w(r['simulated']):>13}"
-                         f"{w(r['difference']):>12}{pct:>9}")
+                         f"{w(diff):>13}{pct:>9}")
             if r["reason"]:
                 lines.append(f"    -> {r['reason']}")
         return "\n".join(lines)
@@ -99,22 +103,9 @@ def crosscheck(scenario, run=None, cycles=None) -> CrossCheck:
     cycles : int, optional
         Summary window in periods (default ``run.summary_cycles``).
     """
-    from .simulation import simulate
-
     if run is None:
-        import dataclasses
-
-        from .steady import periodic_scenario, steady_state
-        ss = steady_state(scenario)
-        if not ss.success:
-            raise RuntimeError(f"crosscheck: no periodic steady state: {ss.message}")
-        n = cycles or scenario.run.summary_cycles
-        # the operating point of the t = 0 level: no soft-start, no steps
-        base = periodic_scenario(scenario)
-        settled = dataclasses.replace(base, run=dataclasses.replace(
-            base.run, cycles=n, duration=None, start="rest",
-            initial_current=float(ss.x[0]), initial_voltage=float(ss.x[1])))
-        run = simulate(settled)
+        from .simulation import simulate_settled
+        run = simulate_settled(scenario, cycles)
     summary = run.summary(cycles=cycles).to_dict()
     budget = estimate(scenario)
     op = budget.operating_point

@@ -100,10 +100,25 @@ def operating_point(scenario) -> dict:
     or by the high-side body diode (``+Vin + Vf``) when negative. The ripple
     uses the on-time slope ``dI = (Vin - (Rs + Rhs + DCR) Io - Vo) D / (L fs)``.
     Solved by fixed-point iteration (the edge currents depend on ``Vo``).
+    In closed loop the duty is the one that puts ``Vo`` on ``control.reference``
+    (bisection: ``Vo`` rises monotonically with ``D``).
     """
+    if scenario.control.duty is not None:
+        return _operating_point(scenario, scenario.control.duty)
+    target = scenario.control.reference
+    lo, hi = 0.0, scenario.control.max_duty
+    for _ in range(80):
+        mid = 0.5 * (lo + hi)
+        if _operating_point(scenario, mid)["vo"] < target:
+            lo = mid
+        else:
+            hi = mid
+    return _operating_point(scenario, 0.5 * (lo + hi))
+
+
+def _operating_point(scenario, D: float) -> dict:
     sw = scenario.switching
     fs = sw.frequency
-    D = scenario.control.duty
     vin = scenario.supply.voltage
     rs = scenario.supply.resistance
     hs, ls = scenario.high_side, scenario.low_side

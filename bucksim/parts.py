@@ -315,6 +315,9 @@ class Control:
             raise ScenarioError("control.compensator", f"is required in {self.mode} mode: a "
                                 "table {gain, zeros = [Hz...], poles = [Hz...]}",
                                 self.compensator)
+        if self.compensator is not None:
+            from .control import compensator_tf
+            compensator_tf(self.compensator)  # raises ScenarioError naming the sub-key
 
 
 @dataclass(frozen=True)

@@ -170,7 +170,11 @@ def initial_guess(scenario) -> np.ndarray:
 
 def steady_state(scenario, x0=None, *, tol: float = 1e-12, max_iter: int = 20,
                  max_brute_cycles: int = 200_000) -> SteadyState:
-    """Periodic steady state of an open-loop scenario at its t = 0 level.
+    """Periodic steady state of a scenario at its t = 0 level.
+
+    Closed-loop scenarios are handed to
+    :func:`bucksim.steady_loop.closed_loop_steady_state` (plant and
+    controller states); the rest of this docstring is the open-loop method.
 
     Parameters
     ----------
@@ -191,6 +195,9 @@ def steady_state(scenario, x0=None, *, tol: float = 1e-12, max_iter: int = 20,
         ``method`` says which path converged; a fallback is reported in
         ``status`` (1) and ``message``, never silent.
     """
+    if scenario.control.mode != "open-loop":
+        from .steady_loop import closed_loop_steady_state
+        return closed_loop_steady_state(scenario)
     pmap = PeriodMap(scenario)
     x = initial_guess(scenario) if x0 is None else np.asarray(x0, dtype=float).copy()
     n = x.shape[0]

@@ -262,8 +262,9 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
     Memory stays bounded by one engine chunk (``chunk_cycles`` periods,
     default the engine's) whatever the run length. The file is written
     atomically as by :func:`save_run` (``compression`` as there), and
-    :func:`open_run` reads it the same. Open-loop control only, as
-    :func:`bucksim.simulate`; the initial state is the scenario's.
+    :func:`open_run` reads it the same. Open or closed loop; the initial
+    state is the scenario's (``run.start = "steady-state"`` is not applied
+    here).
 
     Returns
     -------
@@ -273,9 +274,6 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
     import h5py
 
     _filters(compression)
-    if scenario.control.mode != "open-loop":
-        raise NotImplementedError(
-            f"control.mode = {scenario.control.mode!r} is not available yet; use 'open-loop'")
     stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
     options = {} if chunk_cycles is None else {"chunk_cycles": int(chunk_cycles)}
@@ -283,7 +281,15 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
     rows = scenario.n_cycles * (2 if scenario.switching.strategy == "asynchronous" else 4)
     with _InterruptLatch() as latch, _atomic_target(path) as tmp, h5py.File(tmp, "x") as f:
         writer = _RunWriter(f, scenario, table, compression, rows, latch)
-        res = integrate(stage, table=table, sink=writer.append, progress=progress, **options)
+        if scenario.control.mode == "open-loop":
+            res = integrate(stage, table=table, sink=writer.append, progress=progress,
+                            **options)
+        else:
+            from .control import design
+            from .engine.controlled import integrate_closed_loop
+            res, _, _, _ = integrate_closed_loop(
+                stage, design(scenario.control.compensator, scenario.period), table=table,
+                sink=writer.append, progress=progress, **options)
         writer.finish(res.t_end, res.x_end, res.status, res.message)
     return _report(path, writer.n, res.t_end, res.status, res.message)
 

@@ -77,8 +77,8 @@ class Summary:
                           f"{'under':>8}{'settles in':>12}{'iL peak':>10}"]
             for e in d["transients"]:
                 st = e["settling_time"]
-                st = "in band" if st is None else ("not yet" if st == float("inf")
-                                                   else format_si(st, "s"))
+                st = "not yet" if not e["settled"] else (
+                    "in band" if st == 0.0 else format_si(st, "s"))
                 under = "" if e["event"] == "start-up" else f"{e['undershoot_percent']:.2f}%"
                 lines.append(f"{e['event']:<13}{format_si(e['time'], 's'):>10}"
                              f"{format_si(e['vo_max'], 'V'):>11}{format_si(e['vo_min'], 'V'):>11}"

@@ -19,7 +19,6 @@ from __future__ import annotations
 import concurrent.futures as cf
 import contextlib
 import ctypes
-import dataclasses
 import math
 import multiprocessing
 import os
@@ -135,8 +134,7 @@ def run_point(scenario, index, draw, values):
     import numpy as np
 
     from .scenario import replace_key
-    from .simulation import simulate
-    from .steady import periodic_scenario, steady_state
+    from .simulation import simulate_settled
     from .sweep_table import flatten
 
     row = {"point": index}
@@ -149,21 +147,12 @@ def run_point(scenario, index, draw, values):
         sc = scenario
         for key, value in values.items():
             sc = replace_key(sc, key, value)
-        ss = steady_state(sc)
+        run = simulate_settled(sc)
+        ss = run.steady_state
         steady = {"steady.iterations": float(ss.iterations), "steady.residual": float(ss.residual),
                   "steady.method": ss.method,
                   "steady.max_floquet": float(np.max(np.abs(ss.floquet)))}
-        if not ss.success:
-            raise RuntimeError(f"no periodic steady state: {ss.message}")
-        # the steady state is that of the t = 0 operating level (no steps, no
-        # soft-start), so the summary run must be that same periodic scenario
-        base = periodic_scenario(sc)
         n = sc.run.summary_cycles
-        run_settings = dataclasses.replace(base.run, cycles=n, duration=None, start="rest",
-                                           summary_cycles=n,
-                                           initial_current=float(ss.x[0]),
-                                           initial_voltage=float(ss.x[1]))
-        run = simulate(dataclasses.replace(base, run=run_settings))
         if not run.success:
             raise RuntimeError(f"simulation did not complete: {run.message}")
         row.update(flatten(run.summary(cycles=n).to_dict()))

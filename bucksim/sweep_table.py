@@ -100,6 +100,8 @@ def flatten(tree, prefix=""):
         name = f"{prefix}{key}"
         if isinstance(value, dict):
             out.update(flatten(value, name + "."))
+        elif isinstance(value, list):
+            continue  # per-event lists (transients) have no place in a flat row
         elif isinstance(value, bool):
             out[name] = 1.0 if value else 0.0
         elif value is None:

@@ -75,8 +75,9 @@ def transients(run, band: float = DEFAULT_BAND) -> list[dict]:
     list of dict
         ``{event, time [s], reference [V], vo_max, vo_min [V], overshoot,
         undershoot [V], overshoot_percent, undershoot_percent,
-        settling_time [s] (None if it never leaves the band; inf if it has
-        not re-entered it by the end of the window), il_peak [A]}``.
+        settling_time [s] (time from the event until vo stays inside the band;
+        0 if it never leaves it; None if it has not re-entered it by the end
+        of the window), settled (bool), band, il_peak [A]}``.
     """
     events = _events(run)
     out = []
@@ -90,12 +91,12 @@ def transients(run, band: float = DEFAULT_BAND) -> list[dict]:
         _, il_hi = piece_extrema(run, "iL", idx, ta_, tb_)
         lo_b, hi_b = ref * (1 - band), ref * (1 + band)
         t_last = _settle_time(run, idx, ta_, tb_, lo_b, hi_b, lo, hi)
-        if t_last is None:
-            settle = None
+        if t_last is None:          # never left the band
+            settle, settled = 0.0, True
         elif t_last >= tb - 1e-15 * max(tb, 1.0):
-            settle = float("inf")
+            settle, settled = None, False   # still outside when the window ends
         else:
-            settle = t_last - t_ev
+            settle, settled = t_last - t_ev, True
         vmax, vmin = float(hi.max()), float(lo.min())
         out.append({
             "event": kind, "time": float(t_ev), "reference": float(ref),
@@ -103,6 +104,7 @@ def transients(run, band: float = DEFAULT_BAND) -> list[dict]:
             "overshoot": max(vmax - ref, 0.0), "undershoot": max(ref - vmin, 0.0),
             "overshoot_percent": 100 * max(vmax - ref, 0.0) / ref,
             "undershoot_percent": 100 * max(ref - vmin, 0.0) / ref,
-            "settling_time": settle, "band": band, "il_peak": float(il_hi.max()),
+            "settling_time": settle, "settled": settled, "band": band,
+            "il_peak": float(il_hi.max()),
         })
     return out

@@ -346,12 +346,14 @@ def test_round_trip_of_a_scenario_using_every_key(tmp_path):
 def test_round_trip_keeps_closed_loop_settings_and_open_load():
     text = edit('mode = "open-loop"\nduty = 0.3\n',
                 'mode = "voltage-mode"\nreference = "3.3 V"\nslope_compensation = "50 kV/s"\n'
-                'compensator = { kind = "type-3", gain = 1.5, zeros = [1e3, 2e3] }\n')
+                'compensator = { kind = "type-3", gain = 1.5, zeros = [1e3, 2e3],'
+                ' poles = [5e4] }\n')
     text = edit('resistance = "1 ohm"', "resistance = inf", text)
     s = loads_scenario(text)
     assert s.control.duty is None and s.control.reference == 3.3
     assert s.control.slope_compensation == 50e3
-    assert s.control.compensator == {"kind": "type-3", "gain": 1.5, "zeros": [1e3, 2e3]}
+    assert s.control.compensator == {"kind": "type-3", "gain": 1.5, "zeros": [1e3, 2e3],
+                                     "poles": [5e4]}
     again = loads_scenario(tomli_w.dumps(scenario_to_dict(s)))
     assert again == s and again.load.resistance == math.inf
 
