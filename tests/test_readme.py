@@ -1,0 +1,289 @@
+"""The README as a fresh-clone walk-through: every command it shows runs and says something sane.
+
+The commands are read from the README in this working tree (it may hold edits not committed
+yet) and run in a fresh ``git clone`` of the committed HEAD, so they see only what a user who
+clones the project sees: committed code and committed scenarios. Output files land in the clone
+(a temporary folder), so nothing in the working tree is touched.
+
+* Shell commands: every line of every ``bash`` block. The set-up block's two lines install the
+  package and run this very suite; they are checked, not run: the block must hold exactly the
+  two documented commands, and ``.ci/run`` must run the second one. What follows a
+  ``pip install ... &&`` on those lines is run when it is a ``bucksim`` command (the default
+  demo rail). ``bucksim`` is the installed command when it is on ``PATH``, else
+  ``python -m bucksim`` run in the clone.
+* Python snippets: every ``python`` block runs as a script in the clone, against the installed
+  package if there is one, else against the clone's.
+
+Each command must exit 0 and print something plausible for its verb (a summary table with
+"efficiency", JSON with the summary keys, a CSV with its rows, a PNG or HDF5 file where it
+writes one).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import re
+import shlex
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+REPO = Path(__file__).resolve().parents[1]
+README = REPO / "README.md"
+
+SETUP_COMMANDS = ['python -m pip install -e . && bucksim run',
+                  'python -m pip install -e ".[test]" && python -m pytest']
+
+SECTIONS = ("Set-up", "A first look", "What is modelled", "A 5-minute tour", "Scenario reference",
+            "Summary reference", "Stored runs (HDF5 layout)", "Python API", "Performance",
+            "Validation", "Safety", "License")
+
+SUMMARY_KEYS = ("window", "mode", "reverse_current", "output_voltage", "inductor_current",
+                "devices", "power", "efficiency", "energy_balance_error", "transients")
+
+#: Options whose value is a file the command writes.
+OUTPUT_OPTIONS = ("--out", "--figure", "--csv", "--breakdown")
+
+TIMEOUT = 900  # s, per command: a cold numba cache compiles every kernel in the first ones
+
+
+# ----------------------------------------------------------------------------- reading
+
+def code_blocks(text):
+    """``[(section, language, [lines])]`` for every fenced block, in order."""
+    out, section, block = [], "", None
+    for line in text.splitlines():
+        if block is None:
+            if line.startswith("## "):
+                section = line[3:].strip()
+            m = re.match(r"^```(\w*)\s*$", line)
+            if m:
+                block = (section, m.group(1), [])
+        elif line.startswith("```"):
+            out.append(block)
+            block = None
+        else:
+            block[2].append(line)
+    assert block is None, "README: a code block is not closed"
+    return out
+
+
+def shell_commands(lines):
+    """Commands of a bash block: continuation lines joined, blank lines and comments dropped."""
+    out, pending = [], ""
+    for line in lines:
+        pending += line.strip() if pending else line.rstrip()
+        if pending.endswith("\\"):
+            pending = pending[:-1].rstrip() + " "
+            continue
+        command, pending = pending.strip(), ""
+        if command and not command.startswith("#"):
+            out.append(command)
+    assert not pending, "README: a bash block ends in a continuation line"
+    return out
+
+
+def readme_blocks():
+    return code_blocks(README.read_text(encoding="utf-8"))
+
+
+def bash_commands():
+    """``[(section, command)]`` of every bash block."""
+    return [(section, c) for section, lang, lines in readme_blocks() if lang == "bash"
+            for c in shell_commands(lines)]
+
+
+def runnable_commands():
+    """The commands the walk-through runs: everything but installing and the test suite."""
+    out = []
+    for section, command in bash_commands():
+        if "pip install" not in command:
+            out.append(command)
+            continue
+        for part in (p.strip() for p in command.split("&&")):
+            if part.startswith("bucksim"):
+                out.append(part)
+    return out
+
+
+# ----------------------------------------------------------------------------- fast checks
+
+def test_setup_block_is_the_two_documented_commands():
+    setup = [c for section, c in bash_commands() if section == "Set-up"]
+    assert setup == SETUP_COMMANDS
+    ci = (REPO / ".ci" / "run").read_text(encoding="utf-8").splitlines()
+    assert SETUP_COMMANDS[1] in [line.strip() for line in ci]
+    # installing happens in the set-up section only
+    assert all("pip install" not in c for section, c in bash_commands() if section != "Set-up")
+
+
+def test_sections_in_order_and_every_command_is_bucksim():
+    text = README.read_text(encoding="utf-8")
+    heads = [line[3:].strip() for line in text.splitlines() if line.startswith("## ")]
+    assert [h for h in heads if h in SECTIONS] == list(SECTIONS)  # in this order
+    assert heads[-2:] == ["Safety", "License"]
+    assert "<!-- bench-engine:start -->" in text and "<!-- bench-engine:end -->" in text
+    commands = runnable_commands()
+    assert len(commands) >= 12
+    for command in commands:
+        assert shlex.split(command, comments=True)[0] == "bucksim", command
+    argvs = [shlex.split(c, comments=True) for c in commands]
+    verbs = {argv[1] for argv in argvs if len(argv) > 1}
+    assert {"run", "report", "crosscheck", "reverse", "compare", "sweep", "plot"} <= verbs
+
+
+def test_every_scenario_key_is_documented():
+    from bucksim import scenario
+    from bucksim.control import COMPENSATOR_KEYS
+
+    text = README.read_text(encoding="utf-8")
+    reference = text.split("## Scenario reference", 1)[1].split("\n## ", 1)[0]
+    keys = set(scenario.TOP_KEYS[:2])
+    for names in (scenario.SUPPLY_KEYS, scenario.SWITCHING_KEYS, scenario.INDUCTOR_KEYS,
+                  scenario.CAPACITOR_KEYS, scenario.MOSFET_KEYS, scenario.DIODE_KEYS,
+                  scenario.LOAD_KEYS, scenario.CONTROL_KEYS, scenario.RUN_KEYS,
+                  COMPENSATOR_KEYS):
+        keys.update(names)
+    keys.update(f"core.{k}" for k in scenario.CORE_KEYS)
+    keys.update(f"body_diode.{k}" for k in scenario.DIODE_KEYS)
+    for section in scenario.TOP_KEYS[2:]:
+        assert f"`[{section}]`" in reference, section
+    missing = sorted(k for k in keys if f"`{k}`" not in reference)
+    assert not missing, f"scenario keys missing from the README's Scenario reference: {missing}"
+
+
+# ----------------------------------------------------------------------------- walk-through
+
+def _environment():
+    env = dict(os.environ)
+    env.setdefault("MPLBACKEND", "Agg")
+    env.setdefault("OPENBLAS_NUM_THREADS", "1")
+    env.pop("PYTHONPATH", None)  # the clone, or the installed package, nothing else
+    return env
+
+
+def _output_files(argv, clone):
+    out = []
+    for i, arg in enumerate(argv[:-1]):
+        if arg in OUTPUT_OPTIONS:
+            out.append(clone / argv[i + 1])
+    return out
+
+
+def _check_summary(data, command):
+    for key in SUMMARY_KEYS:
+        assert key in data, f"{command}: summary without {key!r}"
+    assert data["mode"] in ("ccm", "dcm")
+    assert 0.0 < data["efficiency"] < 1.0
+    assert data["energy_balance_error"] < 1e-9
+    for name in ("high_side", "low_side", "inductor", "output_capacitor"):
+        assert {"rms", "mean", "conduction_loss", "switching_loss"} <= set(data["devices"][name])
+
+
+def _check_json(verb, data, command):
+    if verb in ("run", "report"):
+        _check_summary(data, command)
+    elif verb == "crosscheck":
+        items = {row["item"] for row in data["rows"]}
+        assert "total loss" in items and "high_side.conduction" in items
+    elif verb == "reverse":
+        assert data["points"] and data["boundary"]["kind"] in ("reversal", "dcm")
+    elif verb == "compare":
+        assert set(data["rows"]) == set(data["strategies"])
+    else:
+        raise AssertionError(f"{command}: no check for JSON from {verb!r}")
+
+
+def _check_csv(path, verb, command):
+    rows = list(csv.DictReader(io.StringIO(path.read_text(encoding="utf-8"))))
+    assert rows, f"{command}: {path.name} holds no rows"
+    assert "efficiency" in rows[0], f"{command}: {path.name} has no efficiency column"
+    for row in rows:
+        assert 0.0 < float(row["efficiency"]) < 1.0, (command, row)
+        if verb == "sweep":
+            assert row["error"] == "", (command, row["error"])
+
+
+def _check_file(path, verb, command):
+    assert path.is_file() and path.stat().st_size > 0, f"{command}: {path.name} not written"
+    if path.suffix == ".png":
+        assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", f"{command}: {path.name}"
+    elif path.suffix == ".h5":
+        import h5py
+        assert h5py.is_hdf5(path), f"{command}: {path.name} is not HDF5"
+    elif path.suffix == ".csv":
+        _check_csv(path, verb, command)
+
+
+def check_output(command, stdout, clone):
+    """Plausibility of what one README command printed and wrote."""
+    argv = shlex.split(command, comments=True)
+    verb = argv[1] if len(argv) > 1 else None
+    if verb is None or "--help" in argv:
+        assert "usage:" in stdout and "run" in stdout, command
+        return
+    if "--json" in argv:
+        _check_json(verb, json.loads(stdout), command)
+    elif verb in ("run", "report"):
+        assert "efficiency" in stdout and "energy balance error" in stdout, command
+    elif verb == "crosscheck":
+        assert "closed form" in stdout and "total loss" in stdout, command
+    elif verb == "reverse":
+        assert "boundary" in stdout and stdout.rstrip().splitlines()[-1].startswith("Caution")
+    elif verb == "compare":
+        assert "efficiency" in stdout and stdout.rstrip().splitlines()[-1].startswith("Caution")
+    elif verb == "sweep" and "--out" not in argv:
+        assert "efficiency" in stdout.splitlines()[0], command
+    for path in _output_files(argv, clone):
+        _check_file(path, verb, command)
+
+
+def _run(args, clone, env, what):
+    proc = subprocess.run(args, cwd=clone, env=env, capture_output=True, text=True,
+                          timeout=TIMEOUT, stdin=subprocess.DEVNULL, check=False)
+    assert proc.returncode == 0, (f"README command failed (exit {proc.returncode}): {what}\n"
+                                  f"--- stdout\n{proc.stdout[-3000:]}\n"
+                                  f"--- stderr\n{proc.stderr[-3000:]}")
+    return proc.stdout
+
+
+@pytest.fixture(scope="module")
+def clone(tmp_path_factory):
+    if shutil.which("git") is None or not (REPO / ".git").exists():
+        pytest.skip("needs git and a git work tree to clone")
+    where = tmp_path_factory.mktemp("readme") / "bucksim"
+    subprocess.run(["git", "clone", "--quiet", str(REPO), str(where)], check=True,
+                   timeout=300)
+    return where
+
+
+@pytest.mark.slow
+def test_readme_walk_through(clone):
+    env = _environment()
+    if shutil.which("bucksim"):
+        prelude = ""
+    else:  # not installed: the clone's own package, as `python -m bucksim` in its folder
+        prelude = f'bucksim() {{ {shlex.quote(sys.executable)} -m bucksim "$@"; }}\n'
+    commands = runnable_commands()
+    for command in commands:
+        stdout = _run(["bash", "-c", "set -eo pipefail\n" + prelude + command], clone, env,
+                      command)
+        check_output(command, stdout, clone)
+
+    # the Python snippets, against the same package the commands used
+    installed = subprocess.run([sys.executable, "-P", "-c", "import bucksim"], cwd=clone,
+                               env=env, capture_output=True, check=False).returncode == 0
+    py_env = dict(env, PYTHONSAFEPATH="1") if installed else dict(env, PYTHONPATH=str(clone))
+    snippets = [lines for _, lang, lines in readme_blocks() if lang == "python"]
+    assert snippets
+    for k, lines in enumerate(snippets):
+        script = clone / f"readme_snippet_{k}.py"
+        script.write_text("\n".join(lines) + "\n", encoding="utf-8")
+        _run([sys.executable, str(script)], clone, py_env,
+             f"python block {k}:\n{script.read_text(encoding='utf-8')}")
