@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import numpy as np
+
 from .engine import build_table, integrate
 from .errors import SimulationError
 from .stage import Stage
@@ -101,6 +103,36 @@ def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
     run.controller_state = end_state
     run.duty = duty
     run.control_output = u
+    _check_loop_settles(run)
     if check and not run.success:
         raise SimulationError(run.message)
     return run
+
+
+#: Status of a closed-loop run whose duty swings between its limits at the end.
+STATUS_LOOP_UNSETTLED = 3
+
+
+def _check_loop_settles(run, last: int = 200):
+    """Flag a loop that ends limit-cycling between its duty limits.
+
+    A stable loop ends with the duty near its operating value; a duty that
+    still hits both 0 and ``max_duty`` within the last periods means the
+    loop is unstable (or the demand cannot be met). The run and its
+    segments are kept; ``status`` and ``message`` say what happened.
+    """
+    if run.status != 0:
+        return
+    ctl = run.scenario.control
+    d = run.duty[~np.isnan(run.duty)][-last:]
+    if d.shape[0] < min(last, 20):
+        return
+    low = np.mean(d <= 1e-12)
+    high = np.mean(d >= ctl.max_duty - 1e-9)
+    pinned_both = low > 0.1 and high > 0.1
+    if pinned_both and not ctl.pulse_skipping:
+        run.status = STATUS_LOOP_UNSETTLED
+        run.message = (f"control loop did not settle: in the last {d.shape[0]} periods the duty "
+                       f"sat at 0 in {100 * low:.0f} % and at max_duty ({ctl.max_duty:g}) in "
+                       f"{100 * high:.0f} % of them; the loop is likely unstable (check "
+                       f"control.compensator). Segments up to the end are kept.")

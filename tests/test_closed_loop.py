@@ -205,3 +205,15 @@ def test_closed_loop_scenarios_work_with_crosscheck_and_sweeps():
     assert not any(table.column("error"))
     eff = table.column("efficiency")
     assert np.all((eff > 0.5) & (eff < 1.0))
+
+
+def test_unstable_loop_is_reported_and_kept():
+    """A compensator gain far beyond crossover limits makes the loop bang between its
+    duty limits; the run says so (success False) and keeps every segment."""
+    sc = rail(Control(mode="voltage-mode", reference=3.3,
+                      compensator={"gain": 2e6, "zeros": [1e3]}), cycles=2000)
+    run = bucksim.simulate(sc)
+    assert not run.success and "did not settle" in run.message
+    assert run.t_end == pytest.approx(sc.duration) and len(run.segments) > 2000
+    with pytest.raises(bucksim.SimulationError):
+        bucksim.simulate(sc, check=True)
