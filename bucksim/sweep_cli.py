@@ -33,7 +33,7 @@ values:
 tolerances:
   KEY=10%  (uniform, +-10 %)   KEY=uniform:10%   KEY=normal:5% (sigma 5 %)
 
-examples:
+Example:
   bucksim sweep scenarios/core_rail_1v0.toml --vary load.resistance=0.05:1:20 \\
       --vary "inductor.inductance=100 nH:470 nH:5" --log load.resistance --out eff.csv
   bucksim sweep rail.toml --monte-carlo 500 --tolerance inductor.inductance=20% \\
@@ -63,6 +63,8 @@ def _add_arguments(p):
                         "beside it); default: CSV on stdout at the end")
     p.add_argument("--resume", action="store_true",
                    help="continue the interrupted sweep in --out")
+    p.add_argument("--force", action="store_true",
+                   help="overwrite an existing --out table (otherwise refused)")
     p.add_argument("--quiet", action="store_true",
                    help="no progress bar and no summary line")
 
@@ -220,6 +222,15 @@ def run_command(args) -> int:
         tolerance = parse_tolerance(args.tolerance) if args.tolerance else None
         if args.resume and not args.out:
             raise SweepError("--resume: needs --out FILE (the table of the interrupted sweep)")
+        if args.out and not args.resume and not args.force:
+            for path in out_paths(args.out):
+                if path is not None and path.exists():
+                    raise SweepError(f"--out: {path} exists; pass --force to overwrite it, "
+                                     "or --resume to complete the sweep it holds")
+        if args.out and args.force and not args.resume:
+            for path in out_paths(args.out):
+                if path is not None and path.exists():
+                    path.unlink()
         table = sweep(scenario, vary, monte_carlo=args.monte_carlo, tolerance=tolerance,
                       seed=args.seed, workers=args.workers, cluster=args.cluster,
                       out=args.out, resume=args.resume, batch=args.batch,

@@ -83,3 +83,14 @@ def test_streamed_run_reports_like_the_in_memory_run(tmp_path, capsys):
                  "--out", str(h5)]) == 0
     streamed = json.loads(capsys.readouterr().out)
     assert streamed == memory
+
+
+def test_sweep_out_never_silently_overwrites(tmp_path, capsys):
+    out = tmp_path / "table.csv"
+    out.write_text("keep me\n")
+    args = ["sweep", f"{SCENARIOS}/aux_rail_5v_async.toml", "--vary", "load.resistance=5:10:2",
+            "--workers", "1", "--quiet", "--out", str(out)]
+    assert main(args) == 1
+    assert "exists" in capsys.readouterr().err and out.read_text() == "keep me\n"
+    assert main(args + ["--force"]) == 0
+    assert out.read_text().startswith("point,")
