@@ -57,19 +57,26 @@ def compensator_tf(spec: dict) -> tuple[np.ndarray, np.ndarray]:
             raise ScenarioError(f"control.compensator.{key}", "is not a known key (allowed: "
                                 + ", ".join(COMPENSATOR_KEYS) + ")", spec[key])
     gain = spec.get("gain")
-    if not isinstance(gain, (int, float)) or isinstance(gain, bool) or not gain > 0:
+    integrator = spec.get("integrator", True)
+    if not isinstance(integrator, bool):
+        raise ScenarioError("control.compensator.integrator", "must be true or false",
+                            integrator)
+    if (not isinstance(gain, (int, float)) or isinstance(gain, bool) or not gain > 0
+            or not np.isfinite(gain)):
         raise ScenarioError("control.compensator.gain", "must be a number > 0 (1/s with the "
                             "integrator, V/V without)", gain)
     num = np.array([float(gain)])
-    den = np.array([1.0, 0.0]) if spec.get("integrator", True) else np.array([1.0])
+    den = np.array([1.0, 0.0]) if integrator else np.array([1.0])
     for key in ("zeros", "poles"):
         vals = spec.get(key, [])
         if not isinstance(vals, (list, tuple)):
             raise ScenarioError(f"control.compensator.{key}", "must be a list of frequencies "
                                 "in Hz", vals)
         for i, f in enumerate(vals):
-            if not isinstance(f, (int, float)) or isinstance(f, bool) or not f > 0:
-                raise ScenarioError(f"control.compensator.{key}[{i}]", "must be > 0 Hz", f)
+            if (not isinstance(f, (int, float)) or isinstance(f, bool) or not f > 0
+                    or not np.isfinite(f)):
+                raise ScenarioError(f"control.compensator.{key}[{i}]", "must be a finite "
+                                    "frequency > 0 Hz", f)
             factor = np.array([1.0 / (2 * np.pi * f), 1.0])
             if key == "zeros":
                 num = np.polymul(num, factor)

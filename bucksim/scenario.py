@@ -44,6 +44,9 @@ from .units import example, parse_quantity
 
 SCHEMA = 1
 
+#: A dotted key as written in a file: ``name(.name|[index])*``.
+_KEY_SYNTAX = re.compile(r"[A-Za-z_][A-Za-z0-9_]*(?:\.[A-Za-z_][A-Za-z0-9_]*|\[[0-9]+\])*")
+
 #: The scenario that ``bucksim run`` uses when given no file.
 DEFAULT_SCENARIO_PATH = Path(__file__).parent / "data" / "default.toml"
 
@@ -432,7 +435,8 @@ def replace_key(scenario, key, value):
         When the key is unknown or the new scenario is rejected.
     """
     path = parse_key_path(key)
-    if not path or not isinstance(path[0], str):
+    if (not isinstance(key, str) or not _KEY_SYNTAX.fullmatch(key) or not path
+            or not isinstance(path[0], str)):
         raise ScenarioError(key, "must be a dotted scenario key such as "
                             "'inductor.inductance'", value)
     doc = scenario_to_dict(scenario)

@@ -89,7 +89,8 @@ def transients(run, band: float = DEFAULT_BAND) -> list[dict]:
         ref = _target(run, t_ev, tb)
         lo, hi = piece_extrema(run, "vo", idx, ta_, tb_)
         _, il_hi = piece_extrema(run, "iL", idx, ta_, tb_)
-        lo_b, hi_b = ref * (1 - band), ref * (1 + band)
+        width = band * abs(ref)
+        lo_b, hi_b = ref - width, ref + width
         t_last = _settle_time(run, idx, ta_, tb_, lo_b, hi_b, lo, hi)
         if t_last is None:          # never left the band
             settle, settled = 0.0, True
@@ -102,8 +103,8 @@ def transients(run, band: float = DEFAULT_BAND) -> list[dict]:
             "event": kind, "time": float(t_ev), "reference": float(ref),
             "vo_max": vmax, "vo_min": vmin,
             "overshoot": max(vmax - ref, 0.0), "undershoot": max(ref - vmin, 0.0),
-            "overshoot_percent": 100 * max(vmax - ref, 0.0) / ref,
-            "undershoot_percent": 100 * max(ref - vmin, 0.0) / ref,
+            "overshoot_percent": 100 * max(vmax - ref, 0.0) / abs(ref) if ref else 0.0,
+            "undershoot_percent": 100 * max(ref - vmin, 0.0) / abs(ref) if ref else 0.0,
             "settling_time": settle, "settled": settled, "band": band,
             "il_peak": float(il_hi.max()),
         })
