@@ -84,6 +84,15 @@ class _progress_bar:
         return False
 
 
+def emit(result, as_json: bool):
+    """Print a result object: JSON of ``to_dict()`` or its readable ``table()``."""
+    if as_json:
+        json.dump(result.to_dict(), sys.stdout, indent=2)
+        sys.stdout.write("\n")
+    else:
+        print(result.table())
+
+
 def _refuse_overwrite(path, force):
     import os
     if os.path.exists(path) and not force:

@@ -524,7 +524,6 @@ def register(subparsers):
 
 
 def _cmd_compare(args) -> int:
-    import json
     import os
     import sys
 
@@ -548,11 +547,8 @@ def _cmd_compare(args) -> int:
     except (ScenarioError, SimulationError, OSError) as exc:
         print(f"bucksim: error: {exc}", file=sys.stderr)
         return 1
-    if args.json:
-        json.dump(result.to_dict(), sys.stdout, indent=2)
-        sys.stdout.write("\n")
-    else:
-        print(result.table())
+    from .cli import emit
+    emit(result, args.json)
     if args.csv:
         result.to_csv(args.csv)
         print(f"bucksim: wrote {args.csv}", file=sys.stderr)

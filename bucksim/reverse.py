@@ -486,7 +486,6 @@ def register(subparsers):
 
 
 def _cmd_reverse(args) -> int:
-    import json
     import os
     import sys
 
@@ -502,11 +501,8 @@ def _cmd_reverse(args) -> int:
     except (ScenarioError, SimulationError, OSError) as exc:
         print(f"bucksim: error: {exc}", file=sys.stderr)
         return 1
-    if args.json:
-        json.dump(result.to_dict(), sys.stdout, indent=2)
-        sys.stdout.write("\n")
-    else:
-        print(result.table())
+    from .cli import emit
+    emit(result, args.json)
     if args.figure:
         from .plots import save_png
         save_png(result.plot(), args.figure)

@@ -89,6 +89,17 @@ def phase_durations(scenario, on_time: float) -> list[float]:
     return [on_time, tf, max(0.0, T - on_time - tf - tr), tr]
 
 
+def run_span(scenario, n_cycles=None, t_end=None, x0=None):
+    """``(n_cycles, t_end [s], x0)`` of a run: the scenario's unless overridden."""
+    if n_cycles is None:
+        n_cycles = scenario.n_cycles
+    if t_end is None:
+        t_end = scenario.duration if n_cycles == scenario.n_cycles else n_cycles * scenario.period
+    if x0 is None:
+        x0 = [scenario.run.initial_current, scenario.run.initial_voltage]
+    return n_cycles, t_end, x0
+
+
 def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = None,
               chunk_cycles: int = CHUNK_CYCLES, sink=None, n_cycles: int | None = None,
               t_end: float | None = None, phase_cache: dict | None = None,
@@ -119,12 +130,7 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
 
     sc = stage.scenario
     T = sc.period
-    if n_cycles is None:
-        n_cycles = sc.n_cycles
-    if t_end is None:
-        t_end = sc.duration if n_cycles == sc.n_cycles else n_cycles * T
-    if x0 is None:
-        x0 = [sc.run.initial_current, sc.run.initial_voltage]
+    n_cycles, t_end, x0 = run_span(sc, n_cycles, t_end, x0)
     if on_times is None:
         on_times = duty_schedule(sc, n_cycles)
     on_times = np.ascontiguousarray(on_times, dtype=float)

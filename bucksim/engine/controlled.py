@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import CHUNK_CYCLES, STATUS_MESSAGES, EngineResult
+from . import CHUNK_CYCLES, STATUS_MESSAGES, EngineResult, run_span
 from .closed_loop import PEAK_CURRENT, VOLTAGE_MODE, run_closed_loop
 from .kernels import STATUS_FULL, STATUS_OK
 from .tables import build_table
@@ -44,12 +44,7 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
     sc = stage.scenario
     ctl = sc.control
     T = sc.period
-    if n_cycles is None:
-        n_cycles = sc.n_cycles
-    if t_end is None:
-        t_end = sc.duration if n_cycles == sc.n_cycles else n_cycles * T
-    if x0 is None:
-        x0 = [sc.run.initial_current, sc.run.initial_voltage]
+    n_cycles, t_end, x0 = run_span(sc, n_cycles, t_end, x0)
     if table is None:
         table = build_table(stage.matrices, T)
     state = initial_controller(compensator, ctl.delay) if state is None else state.copy()
