@@ -74,7 +74,37 @@ def closed_loop_steady_state(scenario, y0=None, *, tol=1e-11, max_iter=12,
     """
     lm = LoopMap(scenario)
     if y0 is None:
+        first = _solve(lm, _averaged_guess(lm), tol, max_iter)
+        if first.success and first.method == "newton":
+            return first
         y0 = _settle_guess(lm)
+    return _solve(lm, y0, tol, max_iter, max_brute_cycles)
+
+
+def _averaged_guess(lm):
+    """Plant at the averaged CCM point, controller on its equilibrium.
+
+    At a steady state the error is zero each period, so the compensator
+    state is a fixed point of ``w = Ad w`` whose output ``Cd w`` is the
+    control value that holds the operating point: ``D V_ramp`` (voltage
+    mode) or ``Ri I_peak + Se D T`` (peak-current mode).
+    """
+    from .estimate import operating_point
+    sc = lm.scenario
+    ctl = sc.control
+    op = operating_point(sc)
+    if ctl.mode == "peak-current":
+        u = ctl.current_sense * op["peak"] + ctl.slope_compensation * op["duty"] * sc.period
+    else:
+        u = op["duty"] * ctl.ramp
+    k = lm.k
+    lhs = np.vstack([lm.comp.Ad - np.eye(k), lm.comp.Cd[None, :]])
+    rhs = np.concatenate([np.zeros(k), [u]])
+    w = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
+    return np.concatenate([[op["valley"], op["vo"]], w, np.full(lm.delay, op["duty"])])
+
+
+def _solve(lm, y0, tol, max_iter, max_brute_cycles=0):
     y = np.asarray(y0, dtype=float).copy()
     n = y.shape[0]
     method = "newton"
@@ -105,7 +135,9 @@ def closed_loop_steady_state(scenario, y0=None, *, tol=1e-11, max_iter=12,
         it += 1
     status = STEADY_OK if method == "newton" else STEADY_FALLBACK
     msg = f"converged by {method} in {it} updates (residual {resid:.2e})"
-    if resid > tol:
+    if resid > tol and max_brute_cycles == 0:
+        status, msg = STEADY_FAILED, f"Newton did not converge (residual {resid:.2e})"
+    if resid > tol and max_brute_cycles > 0:
         y, resid, done = _brute_force(lm, y, tol, scale, max_brute_cycles)
         method = "brute-force"
         status = STEADY_FALLBACK if done else STEADY_FAILED

@@ -78,3 +78,31 @@ def test_find_zero_catches_touch_and_return():
     tz = find_zero(table.matrices, table.exponentials, table.steps, 0, za.copy(), zb, 0.0, b,
                    1.0, table.guard, np.empty(3), np.empty(3), np.empty(3))
     assert tz == pytest.approx(0.25 * period, rel=1e-12)
+
+
+@pytest.mark.parametrize("level, ramp", [(0.0, 0.0), (3.3, 0.0), (3.4, 2e5)])
+def test_taylor_finish_matches_brentq(level, ramp):
+    """Bisection finished by Newton on the 4th-order series (taylor_gap > 0) lands on
+    the same zero as brentq on scipy's expm, to 1e-12 of the period; with a ramp,
+    the event is a peak-current comparator iL + ramp t = level."""
+    L, C = 4.7e-6, 47e-6
+    M = np.array([[-0.01 / L, -1 / L, 5.0 / L], [1 / C, -1 / (0.825 * C), 0], [0, 0, 0]])
+    if level == 0.0:
+        M[0, 2] = -0.5 / L     # falling current through a diode-like state
+        za, sign0 = np.array([0.8, 3.3, 1.0]), 1.0
+    else:
+        za, sign0 = np.array([3.0, 3.3, 1.0]), -1.0
+    table = build_table(M[None], T)
+    assert table.taylor_gap > 0
+    zb = expm(M * T) @ za
+
+    def g(t):
+        return (expm(M * t) @ za)[0] + ramp * t - level
+
+    ref = brentq(g, 0, T, xtol=1e-22, rtol=1e-15)
+    z = za.copy()
+    tz = find_zero(table.matrices, table.exponentials, table.steps, 0, z, zb, 0.0, T, sign0,
+                   table.guard, np.empty(3), np.empty(3), np.empty(3), level, ramp, 0.0,
+                   level == 0.0, table.taylor_gap)
+    assert abs(tz - ref) < 1e-12 * T
+    assert np.allclose(z, expm(M * ref) @ za, rtol=1e-12, atol=1e-12)

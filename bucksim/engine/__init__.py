@@ -167,7 +167,7 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
         nseg, level, status, t = run_open_loop(
             table.matrices, table.exponentials, table.steps, P, nominal, on_times,
             float(tf), float(tr), T, strategy, c, c_stop, level_times, level, z,
-            float(t_end), table.guard, t0, dt, cond, sysid, xs)
+            float(t_end), table.guard, t0, dt, cond, sysid, xs, table.taylor_gap)
         if status == STATUS_FULL:  # cannot happen with the bound above; keep it loud
             raise RuntimeError("segment buffer overflow in the engine (bug)")
         piece = (t0[:nseg], dt[:nseg], cond[:nseg], sysid[:nseg], xs[:nseg])

@@ -61,7 +61,8 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
                     level, z, t_end, guard, td_fall, td_rise,
                     reference, soft_start, sense_gain, Ad, Bd, Cd, Dd, w, queue,
                     ramp_v, ri, se, i_limit, max_duty, min_on, skip, duty_bits,
-                    seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, log_duty, log_u):
+                    seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, log_duty, log_u,
+                    taylor_gap=0.0):
     """Simulate cycles ``c_start .. c_stop-1`` under closed-loop control.
 
     ``w`` (compensator state) and ``queue`` (delayed duties, voltage mode)
@@ -121,7 +122,7 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
                 nseg, level, t, status, _ = run_phase(
                     Ms, E, h, P, 0, False, GATE_HIGH, strategy, tc, t_blank_end, level,
                     level_times, z, t_end, guard, np.inf, 0.0, tc, seg_t0, seg_dt, seg_cond,
-                    seg_sys, seg_x0, nseg, tmp, trial, work, zs)
+                    seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
             # the tighter of the two thresholds; they swap where the falling
@@ -141,14 +142,14 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
                 nseg, level, t, status, tripped = run_phase(
                     Ms, E, h, P, 0, False, GATE_HIGH, strategy, t_a, t_swap, level,
                     level_times, z, t_end, guard, first_level, first_ramp, tc, seg_t0,
-                    seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs)
+                    seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
             if not tripped and t_swap < t_hi_end:
                 nseg, level, t, status, tripped = run_phase(
                     Ms, E, h, P, 0, False, GATE_HIGH, strategy, t_swap, t_hi_end, level,
                     level_times, z, t_end, guard, level_pk, se / ri, tc, seg_t0, seg_dt,
-                    seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs)
+                    seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
             t_off = t
@@ -169,7 +170,7 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
                 nseg, level, t, status, _ = run_phase(
                     Ms, E, h, P, 0, False, gates[p], strategy, t_start, ends[p], level,
                     level_times, z, t_end, guard, np.inf, 0.0, tc, seg_t0, seg_dt, seg_cond,
-                    seg_sys, seg_x0, nseg, tmp, trial, work, zs)
+                    seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
                 t_start = ends[p]

@@ -74,7 +74,8 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
             float(ctl.soft_start), float(ctl.sense_gain), compensator.Ad, compensator.Bd,
             compensator.Cd, compensator.Dd, state.w, state.queue, float(ctl.ramp), float(ri),
             float(ctl.slope_compensation), i_limit, float(ctl.max_duty),
-            float(ctl.min_on_time), bool(ctl.pulse_skipping), int(ctl.duty_bits), *bufs, dl, ul)
+            float(ctl.min_on_time), bool(ctl.pulse_skipping), int(ctl.duty_bits), *bufs, dl, ul,
+            table.taylor_gap)
         if status == STATUS_FULL:
             raise RuntimeError("segment buffer overflow in the closed-loop engine (bug)")
         piece = tuple(b[:nseg] for b in bufs)

@@ -90,7 +90,8 @@ def crossing_value(z, t, level, ramp, t_ref):
 
 
 @njit(cache=True)
-def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref, snap):
+def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref, snap,
+                taylor_gap=0.0):
     """First zero of the event function in (t, t + width]; it has sign ``sign0`` at t.
 
     Binary descent over the transition table keeps the state on the
@@ -102,6 +103,8 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref,
     m = z.shape[0]
     gap = width
     for k in range(K):
+        if gap <= taylor_gap:
+            return taylor_zero(Ms, s, z, t, gap, level, ramp, t_ref, snap, tmp)
         if h[k] > gap:
             continue
         for i in range(m):
@@ -129,8 +132,48 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref,
 
 
 @njit(cache=True)
+def taylor_zero(Ms, s, z, t, gap, level, ramp, t_ref, snap, tmp):
+    """Zero of the event function in (t, t + gap] from a short Taylor series.
+
+    Used once the bracket is below ``taylor_gap = 1e-3 / max ||A||``: there
+    the series ``z(t + u) = sum_j M^j z u^j / j!`` truncated after the
+    fourth power is exact to rounding (the next term is below 1e-17
+    relative), so Newton steps on it replace the remaining bisection levels.
+    """
+    m = z.shape[0]
+    v = np.empty((5, m))
+    for i in range(m):
+        v[0, i] = z[i]
+    for j in range(1, 5):
+        for i in range(m):
+            acc = 0.0
+            for q in range(m):
+                acc += Ms[s, i, q] * v[j - 1, q]
+            v[j, i] = acc
+    c1, c2, c3, c4 = v[1, 0] + ramp, v[2, 0] / 2.0, v[3, 0] / 6.0, v[4, 0] / 24.0
+    f0 = crossing_value(z, t, level, ramp, t_ref)
+    u = 0.5 * gap
+    if c1 != 0.0:
+        u = min(max(-f0 / c1, 0.0), gap)
+    for _ in range(6):
+        f = f0 + u * (c1 + u * (c2 + u * (c3 + u * c4)))
+        df = c1 + u * (2.0 * c2 + u * (3.0 * c3 + u * 4.0 * c4))
+        if df == 0.0:
+            break
+        u = min(max(u - f / df, 0.0), gap)
+    for i in range(m):
+        tmp[i] = v[0, i] + u * (v[1, i] + u * (v[2, i] / 2.0 + u * (v[3, i] / 6.0
+                                                                      + u * v[4, i] / 24.0)))
+    for i in range(m):
+        z[i] = tmp[i]
+    if snap:
+        z[0] = level
+    return t + u
+
+
+@njit(cache=True)
 def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work,
-              level=0.0, ramp=0.0, t_ref=0.0, snap=True):
+              level=0.0, ramp=0.0, t_ref=0.0, snap=True, taylor_gap=0.0):
     """Locate the first zero of the event function in (a, b] given the states at both ends.
 
     Returns the zero's time (``za`` then holds the state there) or -1.0 when
@@ -156,7 +199,7 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work,
             advance(Ms, E, h, s, work, t1 - t0, tmp)
         if sign0 * crossing_value(work, t1, level, ramp, t_ref) <= 0.0:
             return refine_zero(Ms, E, h, s, za, t0, t1 - t0, sign0, tmp, trial,
-                               level, ramp, t_ref, snap)
+                               level, ramp, t_ref, snap, taylor_gap)
         da = sign0 * (derivative(Ms, s, za, 0) + ramp)
         db = sign0 * (derivative(Ms, s, work, 0) + ramp)
         if da < 0.0 and db > 0.0:
@@ -166,7 +209,7 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work,
             advance(Ms, E, h, s, trial, te - t0, tmp)
             if sign0 * crossing_value(trial, te, level, ramp, t_ref) <= 0.0:
                 return refine_zero(Ms, E, h, s, za, t0, te - t0, sign0, tmp, trial,
-                                   level, ramp, t_ref, snap)
+                                   level, ramp, t_ref, snap, taylor_gap)
         for i in range(m):
             za[i] = work[i]
         t0 = t1
@@ -193,7 +236,8 @@ def conduction_for(gate, strategy, il):
 @njit(cache=True)
 def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, level,
               level_times, z, t_end, guard, thr_level, thr_ramp, thr_tref,
-              seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs):
+              seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs,
+              taylor_gap=0.0):
     """Propagate one gate phase ``[t_phase, t_phase_end)`` from state ``z``.
 
     Splits the phase at operating-level changes and at ``t_end``, ends a
@@ -240,10 +284,11 @@ def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, leve
         tz = -1.0
         if evented:
             sign0 = -1.0 if cond == HIGH_DIODE else 1.0
-            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp, trial, work)
+            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp, trial, work,
+                           0.0, 0.0, 0.0, True, taylor_gap)
         elif threshold:
             tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp, trial, work,
-                           thr_level, thr_ramp, thr_tref, False)
+                           thr_level, thr_ramp, thr_tref, False, taylor_gap)
         if tz >= 0.0:
             for i in range(m):
                 z[i] = zs[i]
@@ -268,7 +313,7 @@ def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, leve
 @njit(cache=True)
 def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
                   c_start, c_stop, level_times, level, z, t_end, guard,
-                  seg_t0, seg_dt, seg_cond, seg_sys, seg_x0):
+                  seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, taylor_gap=0.0):
     """Simulate switching cycles ``c_start .. c_stop-1`` from state ``z``.
 
     Segments are written to the ``seg_*`` arrays from index 0. Returns
@@ -358,7 +403,7 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
                             or (sign0 * derivative(Ms, s, zs, 0) < 0.0
                                 and sign0 * derivative(Ms, s, z, 0) > 0.0)):
                         tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard,
-                                       tmp, trial, work)
+                                       tmp, trial, work, 0.0, 0.0, 0.0, True, taylor_gap)
                     if tz >= 0.0:
                         for i in range(m):
                             z[i] = zs[i]

@@ -39,12 +39,16 @@ class TransitionTable:
     guard : float
         Longest interval [s] searched for a zero crossing in one piece:
         a quarter of the fastest time constant ``1/max|eig(M_s)|``.
+    taylor_gap : float
+        Bracket width [s] below which a zero is finished by Newton steps on
+        a fourth-order Taylor series: ``1e-3 / max_s ||A_s||_inf``.
     """
 
     matrices: np.ndarray
     exponentials: np.ndarray
     steps: np.ndarray
     guard: float
+    taylor_gap: float = 0.0
 
 
 def build_table(matrices: np.ndarray, period: float, depth: int = TABLE_DEPTH) -> TransitionTable:
@@ -60,7 +64,9 @@ def build_table(matrices: np.ndarray, period: float, depth: int = TABLE_DEPTH) -
         rho = max(rho, float(np.max(np.abs(np.linalg.eigvals(matrices[s])))))
     _exact_constant_row(exps)
     guard = 0.25 / rho if rho > 0 else np.inf
-    return TransitionTable(matrices, exps, steps, float(min(guard, 1e300)))
+    norm = max(float(np.max(np.sum(np.abs(M[:-1, :-1]), axis=1))) for M in matrices)
+    taylor_gap = 1e-3 / norm if norm > 0 else 0.0
+    return TransitionTable(matrices, exps, steps, float(min(guard, 1e300)), float(taylor_gap))
 
 
 def phase_exponentials(matrices: np.ndarray, durations) -> np.ndarray:
