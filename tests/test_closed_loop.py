@@ -217,3 +217,49 @@ def test_unstable_loop_is_reported_and_kept():
     assert run.t_end == pytest.approx(sc.duration) and len(run.segments) > 2000
     with pytest.raises(bucksim.SimulationError):
         bucksim.simulate(sc, check=True)
+
+
+def test_pre_biased_start_in_diode_emulation_does_not_sink():
+    """Common practice: a controller starting into a pre-charged output ramps its
+    reference from 0 but must not discharge the output; diode emulation never lets
+    the inductor current go negative, so the output cannot be pulled down."""
+    sc = rail(Control(mode="voltage-mode", reference=3.3, compensator=PI, soft_start=1e-3),
+              strategy="diode-emulation", R=10.0, cycles=1000)
+    sc = dataclasses.replace(sc, run=dataclasses.replace(sc.run, initial_voltage=2.0))
+    run = bucksim.simulate(sc)
+    t = np.linspace(0, sc.duration, 20001)
+    assert run.at(t)[:, 0].min() >= 0.0
+    # only the load drains it while the ramp is below the pre-bias (RC decay bound)
+    vo = run.at(t, "vo")
+    assert vo.min() > 2.0 * np.exp(-sc.duration / (10.0 * sc.output_capacitor.capacitance)) - 1e-3
+    # forced PWM, by contrast, sinks current from the pre-charged output
+    fpwm = bucksim.simulate(dataclasses.replace(sc, switching=Switching(FS, "forced-pwm",
+                                                                        (20e-9, 20e-9))))
+    assert fpwm.at(t)[:, 0].min() < -0.1
+
+
+def test_cycle_by_cycle_current_limit_caps_the_inrush():
+    """Without soft-start the loop demands full duty at start-up; the limit turns the
+    high side off where iL reaches it (located on the analytic solution), so the
+    peak current is the limit (common practice)."""
+    limit = 4.0
+    sc = rail(Control(mode="voltage-mode", reference=3.3, compensator=PI,
+                      current_limit=limit), R=1.0, C=220e-6, cycles=800)
+    run = bucksim.simulate(sc)
+    peak = max(e["il_peak"] for e in run.summary().to_dict()["transients"])
+    assert peak == pytest.approx(limit, rel=1e-9)
+    free = bucksim.simulate(dataclasses.replace(sc, control=dataclasses.replace(
+        sc.control, current_limit=None)))
+    assert max(e["il_peak"] for e in free.summary().to_dict()["transients"]) > 1.5 * limit
+
+
+def test_pulse_skipping_below_the_minimum_on_time():
+    """At light load in diode emulation the loop asks for on-times below the minimum;
+    with pulse skipping those periods carry no pulse at all, and regulation holds."""
+    ctl = Control(mode="voltage-mode", reference=3.3, compensator=PI, min_on_time=400e-9,
+                  pulse_skipping=True)
+    sc = rail(ctl, strategy="diode-emulation", R=330.0, cycles=4000)
+    run = bucksim.simulate(sc)
+    d = run.duty[-400:]
+    assert np.any(d == 0.0) and np.all((d == 0.0) | (d * sc.period >= 400e-9 - 1e-15))
+    assert abs(run.summary().to_dict()["output_voltage"]["mean"] - 3.3) < 0.05
