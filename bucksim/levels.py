@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .errors import ScenarioError, SimulationError
+from .errors import ScenarioError
 from .units import format_si, parse_quantity
 
 #: Load keys a level can set, and their units.
@@ -127,7 +127,8 @@ def require_open_loop(scenario):
 # ----------------------------------------------------------------------------- one period
 
 def periodic_run(scenario):
-    """The periodic steady state and one exact period of waveforms from it.
+    """The periodic steady state and one exact period of waveforms from it
+    (:func:`bucksim.simulation.simulate_settled` with one cycle).
 
     Returns
     -------
@@ -139,18 +140,10 @@ def periodic_run(scenario):
     SimulationError
         When the steady-state solver does not converge.
     """
-    from .simulation import simulate
-    from .steady import steady_state
+    from .simulation import simulate_settled
 
-    ss = steady_state(scenario)
-    if not ss.success:
-        raise SimulationError(f"{scenario.title}: no periodic steady state "
-                              f"({ss.message})")
-    rep = dataclasses.replace
-    one = rep(scenario, run=rep(scenario.run, cycles=1, duration=None, start="rest",
-                                summary_cycles=1, initial_current=float(ss.x[0]),
-                                initial_voltage=float(ss.x[1])))
-    return ss, simulate(one)
+    run = simulate_settled(scenario, cycles=1)
+    return run.steady_state, run
 
 
 def _states(run, index, tau):

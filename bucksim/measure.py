@@ -86,6 +86,36 @@ def window_pieces(run, t_start: float):
     return idx, tau_a, tau_b, z_a
 
 
+def signal_mean(run, name: str, t_start: float | None = None,
+                t_stop: float | None = None) -> float:
+    """Exact mean of a signal over ``[t_start, t_stop]`` [the signal's unit].
+
+    Per piece ``int z dt = G(d) z_a`` with ``G(d) = int_0^d expm(M t) dt``,
+    the upper-right block of ``expm([[M, I], [0, 0]] d)`` (Van Loan).
+    """
+    seg = run.segments
+    t_start = float(seg.t0[0]) if t_start is None else float(t_start)
+    t_stop = run.t_end if t_stop is None else float(t_stop)
+    idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
+    end = seg.t0[idx] + tau_b
+    tau_b = np.where(end > t_stop, t_stop - seg.t0[idx], tau_b)
+    sig = run.signal_table(name)
+    m = run.stage.n + 1
+    total, cache = 0.0, {}
+    for k, a, b, za in zip(idx, tau_a, tau_b, z_a):
+        if b <= a:
+            continue
+        s = int(seg.system[k])
+        key = (s, float(b - a))
+        if key not in cache:
+            big = np.zeros((2 * m, 2 * m))
+            big[:m, :m] = run.table.matrices[s]
+            big[:m, m:] = np.eye(m)
+            cache[key] = expm(big * (b - a))[:m, m:]
+        total += float(sig[s] @ (cache[key] @ za))
+    return total / (t_stop - t_start)
+
+
 def _extrema(run, name, idx, tau_a, tau_b):
     """Exact min and max of a signal over the window pieces."""
     lo, hi = piece_extrema(run, name, idx, tau_a, tau_b)

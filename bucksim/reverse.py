@@ -156,10 +156,9 @@ def _gauss_integral(run, pieces, integrand):
 
 
 def cycle_mean(run, signal) -> float:
-    """Mean of ``signal`` over the whole run [signal's unit] (exact to ~1e-14)."""
-    seg = run.segments
-    pieces = [(k, 0.0, float(seg.dt[k])) for k in range(len(seg)) if seg.dt[k] > 0]
-    return _gauss_integral(run, pieces, lambda get: get(signal)) / float(np.sum(seg.dt))
+    """Mean of ``signal`` over the whole run [signal's unit], exact."""
+    from .measure import signal_mean
+    return signal_mean(run, signal)
 
 
 # ----------------------------------------------------------------------------- results

@@ -36,11 +36,7 @@ def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> "Run":
         return _simulate_closed_loop(scenario, x0, check, progress)
     steady = None
     if x0 is None and scenario.run.start == "steady-state":
-        from .steady import steady_state
-        steady = steady_state(scenario)
-        if not steady.success:
-            raise SimulationError(f"{scenario.source or scenario.title}: run.start = "
-                                  f"'steady-state': {steady.message}")
+        steady = _steady(scenario, "run.start = 'steady-state'")
         x0 = steady.x
     stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
@@ -62,12 +58,9 @@ def simulate_settled(scenario, cycles: int | None = None) -> "Run":
     """
     import dataclasses
 
-    from .steady import periodic_scenario, steady_state
+    from .steady import periodic_scenario
 
-    ss = steady_state(scenario)
-    if not ss.success:
-        raise SimulationError(f"{scenario.source or scenario.title}: no periodic steady "
-                              f"state: {ss.message}")
+    ss = _steady(scenario, "no periodic steady state")
     base = periodic_scenario(scenario)
     n = int(cycles or scenario.run.summary_cycles)
     sc = dataclasses.replace(base, run=dataclasses.replace(
@@ -81,6 +74,16 @@ def simulate_settled(scenario, cycles: int | None = None) -> "Run":
     return run
 
 
+def _steady(scenario, context):
+    """Periodic steady state (open or closed loop), or a SimulationError saying why not."""
+    from .steady import steady_state
+
+    ss = steady_state(scenario)
+    if not ss.success:
+        raise SimulationError(f"{scenario.source or scenario.title}: {context}: {ss.message}")
+    return ss
+
+
 def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
     from .control import design
     from .engine.controlled import integrate_closed_loop
@@ -90,11 +93,7 @@ def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
     comp = design(scenario.control.compensator, scenario.period)
     steady = None
     if x0 is None and scenario.run.start == "steady-state":
-        from .steady_loop import closed_loop_steady_state
-        steady = closed_loop_steady_state(scenario)
-        if not steady.success:
-            raise SimulationError(f"{scenario.source or scenario.title}: run.start = "
-                                  f"'steady-state': {steady.message}")
+        steady = _steady(scenario, "run.start = 'steady-state'")
         x0, state = steady.x, steady.controller
     result, end_state, duty, u = integrate_closed_loop(stage, comp, x0, state, table=table,
                                                        progress=progress)

@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.optimize import brentq
 
-from .measure import piece_extrema
+from .measure import piece_extrema, signal_mean
 
 DEFAULT_BAND = 0.01
 
@@ -37,13 +37,11 @@ def _events(run):
 
 
 def _target(run, ta, tb):
-    """Settled value: the reference in closed loop, else the last period's mean."""
+    """Settled value: the reference in closed loop, else the last period's exact mean."""
     sc = run.scenario
     if sc.control.mode != "open-loop":
         return sc.control.reference
-    t0 = max(ta, tb - sc.period)
-    ts = np.linspace(t0, tb, 257)
-    return float(np.trapezoid(run.at(ts, "vo"), ts) / (tb - t0))
+    return signal_mean(run, "vo", max(ta, tb - sc.period), tb)
 
 
 def _settle_time(run, idx, tau_a, tau_b, lo_b, hi_b, lo, hi):

@@ -159,11 +159,7 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
     while c < n_cycles and status == STATUS_OK:
         c_stop = min(n_cycles, c + chunk_cycles)
         cap = (c_stop - c) * 2 * n_phase + 2 * len(level_times) + 8
-        t0 = np.empty(cap)
-        dt = np.empty(cap)
-        cond = np.empty(cap, np.int8)
-        sysid = np.empty(cap, np.int32)
-        xs = np.empty((cap, n))
+        t0, dt, cond, sysid, xs = segment_buffers(cap, n)
         nseg, level, status, t = run_open_loop(
             table.matrices, table.exponentials, table.steps, P, nominal, on_times,
             float(tf), float(tr), T, strategy, c, c_stop, level_times, level, z,
@@ -180,10 +176,18 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
             progress(c, n_cycles)
         if t >= t_end:
             break
+    return EngineResult(*join_segments(pieces, n), x_end=z[:n].copy(), t_end=float(t),
+                        status=int(status), message=STATUS_MESSAGES[int(status)])
+
+
+def segment_buffers(cap: int, n: int):
+    """Empty segment columns (t0, dt, conduction, system, x0) for ``cap`` rows."""
+    return (np.empty(cap), np.empty(cap), np.empty(cap, np.int8), np.empty(cap, np.int32),
+            np.empty((cap, n)))
+
+
+def join_segments(pieces, n: int):
+    """Concatenate chunks of segment columns (empty columns when there are none)."""
     if pieces:
-        cols = [np.concatenate(col) for col in zip(*pieces)]
-    else:
-        cols = [np.empty(0), np.empty(0), np.empty(0, np.int8), np.empty(0, np.int32),
-                np.empty((0, n))]
-    return EngineResult(*cols, x_end=z[:n].copy(), t_end=float(t), status=int(status),
-                        message=STATUS_MESSAGES[int(status)])
+        return [np.concatenate(col) for col in zip(*pieces)]
+    return list(segment_buffers(0, n))

@@ -6,7 +6,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import CHUNK_CYCLES, STATUS_MESSAGES, EngineResult, run_span
+from . import (CHUNK_CYCLES, STATUS_MESSAGES, EngineResult, join_segments, run_span,
+               segment_buffers)
 from .closed_loop import PEAK_CURRENT, VOLTAGE_MODE, run_closed_loop
 from .kernels import STATUS_FULL, STATUS_OK
 from .tables import build_table
@@ -64,8 +65,7 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
         c_stop = min(n_cycles, c + chunk_cycles)
         k = c_stop - c
         cap = k * 12 + 2 * len(level_times) + 8
-        bufs = (np.empty(cap), np.empty(cap), np.empty(cap, np.int8), np.empty(cap, np.int32),
-                np.empty((cap, n)))
+        bufs = segment_buffers(cap, n)
         dl, ul = np.full(k, np.nan), np.full(k, np.nan)
         nseg, level, status, t = run_closed_loop(
             table.matrices, table.exponentials, table.steps, P, cvo, T,
@@ -90,9 +90,6 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
             progress(c, n_cycles)
         if t >= t_end:
             break
-    cols = ([np.concatenate(col) for col in zip(*pieces)] if pieces else
-            [np.empty(0), np.empty(0), np.empty(0, np.int8), np.empty(0, np.int32),
-             np.empty((0, n))])
-    res = EngineResult(*cols, x_end=z[:n].copy(), t_end=float(t), status=int(status),
+    res = EngineResult(*join_segments(pieces, n), x_end=z[:n].copy(), t_end=float(t), status=int(status),
                        message=STATUS_MESSAGES[int(status)])
     return res, state, np.concatenate(duty_log), np.concatenate(u_log)
