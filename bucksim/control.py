@@ -98,3 +98,81 @@ def design(spec: dict, period: float) -> Compensator:
     Ad, Bd, Cd, Dd, _ = signal.cont2discrete((A, B, C, D), period, method="bilinear")
     return Compensator(num, den, np.ascontiguousarray(Ad), np.ascontiguousarray(Bd[:, 0]),
                        np.ascontiguousarray(Cd[0]), float(Dd[0, 0]))
+
+
+@dataclass(frozen=True)
+class AnalogCompensator:
+    """Continuous-time state space of the compensator, ``w' = A w + B e``, ``u = C w + D e``.
+
+    Realised as a cascade of first-order sections (integrator, then one
+    section per pole with its paired zero), so every state is a voltage of
+    the order of the compensator output [V] and the realisation stays well
+    scaled for poles and zeros decades apart (the controllable canonical form
+    of ``tf2ss`` carries coefficients like ``(2 pi 300 kHz)^2`` instead).
+    """
+
+    num: np.ndarray
+    den: np.ndarray
+    A: np.ndarray
+    B: np.ndarray
+    C: np.ndarray
+    D: float
+
+    @property
+    def order(self) -> int:
+        return self.A.shape[0]
+
+
+def analog_realization(spec: dict) -> AnalogCompensator:
+    """Cascade state space of the compensator table ``spec`` (see :func:`compensator_tf`).
+
+    Notes
+    -----
+    Sections, each with input ``x_in`` and output ``y`` (``wz = 2 pi fz``,
+    ``wp = 2 pi fp``):
+
+    * integrator with gain ``g`` [1/s]: ``w' = g x_in``, ``y = w``; when there
+      is one zero more than there are poles, that zero joins the integrator:
+      ``g (1 + s/wz) / s`` gives ``y = w + (g / wz) x_in``;
+    * without the integrator, a plain gain ``y = g x_in``;
+    * a pole with its paired zero, ``(1 + s/wz) / (1 + s/wp)``:
+      ``w' = wp (x_in - w)``, ``y = (wp / wz) x_in + (1 - wp / wz) w``;
+    * a pole alone: ``w' = wp (x_in - w)``, ``y = w``.
+
+    The sections are chained in series; zeros pair with poles in the order
+    written.
+    """
+    num, den = compensator_tf(spec)
+    gain = float(spec["gain"])
+    integrator = spec.get("integrator", True)
+    wz = [2 * np.pi * float(f) for f in spec.get("zeros", [])]
+    wp = [2 * np.pi * float(f) for f in spec.get("poles", [])]
+    sections = []          # (a, b, c, d) per state, or (None, None, None, d) for a gain
+    if integrator:
+        extra = len(wz) > len(wp)
+        sections.append((0.0, gain, 1.0, gain / wz[0] if extra else 0.0))
+        if extra:
+            wz = wz[1:]
+    else:
+        sections.append((None, None, None, gain))
+    for i, p in enumerate(wp):
+        if i < len(wz):
+            sections.append((-p, p, 1.0 - p / wz[i], p / wz[i]))
+        else:
+            sections.append((-p, p, 1.0, 0.0))
+    A = np.zeros((0, 0))
+    B = np.zeros(0)
+    C = np.zeros(0)
+    D = 1.0
+    for a, b, c, d in sections:   # series connection: the section after (A, B, C, D)
+        if a is None:
+            C, D = d * C, d * D
+            continue
+        k = A.shape[0]
+        A2 = np.zeros((k + 1, k + 1))
+        A2[:k, :k] = A
+        A2[k, :k] = b * C
+        A2[k, k] = a
+        A, B = A2, np.append(B, b * D)
+        C, D = np.append(d * C, c), d * D
+    return AnalogCompensator(num, den, A, B, C, float(D))

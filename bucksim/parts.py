@@ -15,6 +15,7 @@ from .errors import ScenarioError
 
 STRATEGIES = ("asynchronous", "forced-pwm", "diode-emulation")
 CONTROL_MODES = ("open-loop", "voltage-mode", "peak-current")
+IMPLEMENTATIONS = ("digital", "analog")
 START_MODES = ("rest", "steady-state")
 
 
@@ -259,6 +260,11 @@ class Control:
     ``current_limit`` [A] (cycle by cycle), ``max_duty``, ``min_on_time`` [s],
     ``pulse_skipping``, ``delay`` (computation delay, periods) and
     ``duty_bits`` (duty resolution; 0 = exact).
+
+    ``implementation`` is ``"digital"`` (the compensator sampled once per
+    period, Tustin-discretised) or ``"analog"`` (the compensator as extra
+    linear states of the stage, the PWM or peak-current comparator crossing
+    located on the exact solution; ``delay`` and ``duty_bits`` must be 0).
     """
 
     mode: str = "open-loop"
@@ -276,9 +282,11 @@ class Control:
     pulse_skipping: bool = False
     delay: int = 0
     duty_bits: int = 0
+    implementation: str = "digital"
 
     def __post_init__(self):
         _choice("control.mode", self.mode, CONTROL_MODES)
+        _choice("control.implementation", self.implementation, IMPLEMENTATIONS)
         _non_negative("control.soft_start", self.soft_start, "s")
         _positive("control.sense_gain", self.sense_gain, "V/V")
         _positive("control.ramp", self.ramp, "V")
@@ -295,7 +303,13 @@ class Control:
         for key, v, hi in (("delay", self.delay, 8), ("duty_bits", self.duty_bits, 24)):
             if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= hi:
                 raise ScenarioError(f"control.{key}", f"must be an integer in [0, {hi}]", v)
+            if v and self.implementation == "analog":
+                raise ScenarioError(f"control.{key}", "must be 0 with implementation = "
+                                    "'analog' (it describes a sampled controller)", v)
         if self.mode == "open-loop":
+            if self.implementation != "digital":
+                raise ScenarioError("control.implementation", "applies to closed-loop modes "
+                                    "only; leave it out in open loop", self.implementation)
             if self.duty is None:
                 raise ScenarioError("control.duty", "is required in open-loop mode (0 < duty < 1)")
             _finite("control.duty", self.duty, "(fraction of the period)")

@@ -67,7 +67,7 @@ LOAD_KEYS = ("resistance", "current", "steps", "profile")
 LOAD_STEP_KEYS = ("time", "resistance", "current")
 CONTROL_KEYS = ("mode", "duty", "soft_start", "reference", "compensator", "slope_compensation",
                 "sense_gain", "ramp", "current_sense", "current_limit", "max_duty",
-                "min_on_time", "pulse_skipping", "delay", "duty_bits")
+                "min_on_time", "pulse_skipping", "delay", "duty_bits", "implementation")
 RUN_KEYS = ("duration", "cycles", "start", "summary_cycles", "initial_current",
             "initial_voltage")
 
@@ -313,7 +313,8 @@ def _control(t):
                    min_on_time=t.quantity("min_on_time", "s", 0.0),
                    pulse_skipping=t._get("pulse_skipping", False, "true or false"),
                    delay=t.integer("delay", 0),
-                   duty_bits=t.integer("duty_bits", 0))
+                   duty_bits=t.integer("duty_bits", 0),
+                   implementation=t.string("implementation", "digital"))
 
 
 def _run(t):
@@ -377,7 +378,8 @@ def scenario_to_dict(scenario):
                               "current_limit": ctl.current_limit, "max_duty": ctl.max_duty,
                               "min_on_time": ctl.min_on_time,
                               "pulse_skipping": ctl.pulse_skipping, "delay": ctl.delay,
-                              "duty_bits": ctl.duty_bits})})
+                              "duty_bits": ctl.duty_bits,
+                              "implementation": ctl.implementation})})
     r = s.run
     run = _drop_none({"duration": r.duration, "cycles": r.cycles, "start": r.start,
                       "summary_cycles": r.summary_cycles,

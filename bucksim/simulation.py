@@ -90,7 +90,7 @@ def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
 
     stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
-    comp = design(scenario.control.compensator, scenario.period)
+    comp = None if stage.analog else design(scenario.control.compensator, scenario.period)
     steady = None
     if x0 is None and scenario.run.start == "steady-state":
         steady = _steady(scenario, "run.start = 'steady-state'")

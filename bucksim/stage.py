@@ -30,6 +30,14 @@ LOW_DIODE    -Vf_ls - r_ls iL      (iL > 0)     low-side diode: iL
 HIGH_DIODE   Vin + Vf_hs - (Rs + r_hs) iL (iL<0) high-side body diode: -iL
 IDLE         vo (iL = 0, held)                  none
 ===========  =================================  ==========================
+
+Analog closed loop (``control.implementation = "analog"``): the compensator
+``w' = Ac w + Bc e``, ``u = Cc w + Dc e`` (:func:`bucksim.control.analog_realization`)
+with ``e = H (vref - vo)`` joins the state, and so does the reference ``vref``
+(it rises at ``reference / soft_start`` until ``soft_start``, then holds):
+``x = [iL, vC, w_1 .. w_k, vref]``. The plant rows do not depend on the
+controller's states, so within a segment the plant evolves as in open loop;
+the controller acts only through the switching instants.
 """
 
 from __future__ import annotations
@@ -51,6 +59,8 @@ STRATEGY_CODES = {"asynchronous": 0, "forced-pwm": 1, "diode-emulation": 2}
 
 N_STATES = 2
 STATE_NAMES = ("iL", "vC")
+#: Units of the controller states appended in an analog loop.
+CONTROLLER_UNIT = "V"
 
 
 @dataclass(frozen=True)
@@ -61,18 +71,34 @@ class Level:
     vin: float
     conductance: float
     current: float
+    ref_slope: float = 0.0
+
+
+def is_analog_loop(scenario: Scenario) -> bool:
+    """True when the scenario's compensator runs as analog states of the stage."""
+    ctl = scenario.control
+    return ctl.mode != "open-loop" and ctl.implementation == "analog"
 
 
 def operating_levels(scenario: Scenario) -> list[Level]:
-    """Merge supply and load steps into one list of piecewise-constant levels."""
+    """Merge supply and load steps into one list of piecewise-constant levels.
+
+    In an analog loop the end of the soft-start ramp is a level change too:
+    before it the reference state rises at ``reference / soft_start`` [V/s].
+    """
     supply = [(0.0, scenario.supply.voltage)] + [(s.time, s.voltage) for s in scenario.supply.steps]
     load = scenario.load.levels()
-    times = sorted({t for t, _ in supply} | {t for t, _, _ in load})
+    times = {t for t, _ in supply} | {t for t, _, _ in load}
+    ctl = scenario.control
+    ramp_end = ctl.soft_start if is_analog_loop(scenario) else 0.0
+    if ramp_end > 0:
+        times.add(ramp_end)
     out = []
-    for t in times:
+    for t in sorted(times):
         vin = [v for ts, v in supply if ts <= t][-1]
         g, i = [(g, i) for ts, g, i in load if ts <= t][-1]
-        out.append(Level(float(t), float(vin), float(g), float(i)))
+        slope = ctl.reference / ramp_end if t < ramp_end else 0.0
+        out.append(Level(float(t), float(vin), float(g), float(i), float(slope)))
     return out
 
 
@@ -80,14 +106,37 @@ class Stage:
     """Linear systems and output maps for every (level, conduction state).
 
     System id ``s = level * N_CONDUCTION + conduction``. ``matrices[s]`` is the
-    augmented ``M`` (3 x 3). :meth:`signal` returns a row vector ``c`` such that
-    a signal equals ``c @ z`` in that system.
+    augmented ``M`` (``m x m``, ``m = n + 1``; 3 x 3 without an analog loop).
+    :meth:`signal` returns a row vector ``c`` such that a signal equals
+    ``c @ z`` in that system.
+
+    Attributes
+    ----------
+    n : int
+        Number of states: 2, plus ``k + 1`` in an analog loop.
+    state_names : tuple of str
+        ``("iL", "vC")``, then ``"w1" .. "wk"`` and ``"vref"`` in an analog loop.
+    plant_index : ndarray of int
+        Positions of ``iL``, ``vC`` and the constant 1 in ``z``; every power
+        signal lives there, so measurements may work on that block alone.
+    loop : AnalogCompensator or None
     """
 
     def __init__(self, scenario: Scenario):
         self.scenario = scenario
         self.levels = operating_levels(scenario)
-        self.n = N_STATES
+        self.analog = is_analog_loop(scenario)
+        self.loop = None
+        k = 0
+        if self.analog:
+            from .control import analog_realization
+            self.loop = analog_realization(scenario.control.compensator)
+            k = self.loop.order
+        self.n_controller = k
+        self.n = N_STATES + (k + 1 if self.analog else 0)
+        self.state_names = STATE_NAMES + (tuple(f"w{i + 1}" for i in range(k)) + ("vref",)
+                                          if self.analog else ())
+        self.plant_index = np.array([0, 1, self.n])
         ind, cap = scenario.inductor, scenario.output_capacitor
         self.L, self.dcr = ind.inductance, ind.dcr
         self.C, self.esr = cap.capacitance, cap.esr
@@ -117,6 +166,43 @@ class Stage:
         den = 1.0 + self.esr * lev.conductance
         return np.array([self.esr, 1.0, -self.esr * lev.current]) / den
 
+    def _embed(self, row3: np.ndarray) -> np.ndarray:
+        """A row over ``[iL, vC, 1]`` as a row over the whole augmented state."""
+        if not self.analog:
+            return row3
+        out = np.zeros(self.n + 1)
+        out[self.plant_index] = row3
+        return out
+
+    def initial_state(self, x0) -> np.ndarray:
+        """Full state at t = 0 from ``[iL, vC]`` (controller at rest) or a full state.
+
+        At rest the compensator states are zero and the reference is 0 with a
+        soft-start ramp, else ``control.reference``.
+        """
+        x0 = np.asarray(x0, dtype=float).ravel()
+        if x0.shape[0] == self.n:
+            return x0.copy()
+        if x0.shape[0] != N_STATES:
+            raise ValueError(f"initial state must have {N_STATES} or {self.n} entries "
+                             f"({', '.join(self.state_names)}), got {x0.shape[0]}")
+        out = np.zeros(self.n)
+        out[:N_STATES] = x0
+        if self.analog:
+            ctl = self.scenario.control
+            out[-1] = 0.0 if ctl.soft_start > 0 else ctl.reference
+        return out
+
+    def control_output(self, level: int) -> np.ndarray:
+        """Row ``c_u`` with the analog compensator output ``u = c_u @ z`` at ``level`` [V]."""
+        lev = self.levels[level]
+        k = self.n_controller
+        gain = self.scenario.control.sense_gain
+        row = -self.loop.D * gain * self._embed(self._vo(lev))
+        row[2:2 + k] += self.loop.C
+        row[2 + k] += self.loop.D * gain
+        return row
+
     def _vsw(self, lev: Level, k: int, vo: np.ndarray):
         if k == HIGH:
             return np.array([-(self.rs + self.rds_hs), 0.0, lev.vin])
@@ -137,7 +223,21 @@ class Stage:
         else:
             di = (self._vsw(lev, k, vo) - vo - np.array([self.dcr, 0.0, 0.0])) / self.L
         dv = ic / self.C
-        return np.array([di, dv, [0.0, 0.0, 0.0]])
+        if not self.analog:
+            return np.array([di, dv, [0.0, 0.0, 0.0]])
+        m = self.n + 1
+        q = self.n_controller
+        M = np.zeros((m, m))
+        M[0], M[1] = self._embed(di), self._embed(dv)
+        # compensator: w' = Ac w + Bc H (vref - vo)
+        gain = self.scenario.control.sense_gain
+        vo_row = self._embed(vo)
+        for i in range(q):
+            M[2 + i] = -self.loop.B[i] * gain * vo_row
+            M[2 + i, 2:2 + q] += self.loop.A[i]
+            M[2 + i, 2 + q] += self.loop.B[i] * gain
+        M[2 + q, m - 1] = lev.ref_slope
+        return M
 
     def signal(self, name: str, system: int) -> np.ndarray:
         """Row vector ``c`` with ``signal = c @ z`` in ``system``.
@@ -146,8 +246,23 @@ class Stage:
         from the ideal source), ``vsw``, ``vin``, and the device currents
         ``high_side``, ``low_side``, ``high_side_body_diode``,
         ``low_side_body_diode`` (each positive in its conducting direction:
-        channels carry iL, the high-side body diode carries -iL).
+        channels carry iL, the high-side body diode carries -iL). In an
+        analog loop also ``u`` (compensator output [V]) and ``vref`` [V].
         """
+        return self._embed(self._signal3(name, system)) if name not in ("u", "vref") \
+            else self._controller_signal(name, system)
+
+    def _controller_signal(self, name: str, system: int) -> np.ndarray:
+        if not self.analog:
+            raise KeyError(f"signal {name!r} exists only in an analog closed loop")
+        level, _ = self.split_id(system)
+        if name == "u":
+            return self.control_output(level)
+        row = np.zeros(self.n + 1)
+        row[self.n - 1] = 1.0
+        return row
+
+    def _signal3(self, name: str, system: int) -> np.ndarray:
         level, k = self.split_id(system)
         lev = self.levels[level]
         il = np.array([1.0, 0.0, 0.0])
@@ -199,5 +314,5 @@ class Stage:
         return out
 
     def stored_energy(self, x: np.ndarray) -> float:
-        """Energy in L and C [J] for state ``x = [iL, vC]``."""
+        """Energy in L and C [J] for state ``x = [iL, vC, ...]``."""
         return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2

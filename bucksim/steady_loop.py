@@ -1,6 +1,9 @@
 """Periodic steady state of a closed loop: shooting on plant and controller states.
 
-The one-period map now acts on ``y = [iL, vC, w..., delayed duties...]``.
+The one-period map now acts on ``y = [iL, vC, w..., delayed duties...]``
+(digital controller) or ``y = [iL, vC, w...]`` (analog controller, whose
+states are part of the stage; its reference state is held at
+``control.reference``).
 The controller's update is a discrete map and the comparator instant is a
 state-dependent event, so the Jacobian is taken by central differences of
 the exact map (each column costs two one-period simulations); Newton's
@@ -37,21 +40,33 @@ class LoopMap:
                                                                             soft_start=0.0))
         self.stage = Stage(self.scenario)
         self.table = build_table(self.stage.matrices, self.scenario.period)
-        self.comp = design(self.scenario.control.compensator, self.scenario.period)
-        self.k = self.comp.order
+        self.analog = self.stage.analog
+        if self.analog:
+            self.comp = self.stage.loop
+            self.k = 0                       # no discrete controller state
+            self.n_plant = self.stage.n - 1  # every state but the reference
+        else:
+            self.comp = design(self.scenario.control.compensator, self.scenario.period)
+            self.k = self.comp.order
+            self.n_plant = 2
         self.delay = self.scenario.control.delay
         self.evaluations = 0
 
     def split(self, y):
+        """``(stage state, ControllerState)`` of a shooting vector ``y``."""
         y = np.asarray(y, dtype=float)
-        return y[:2], ControllerState(y[2:2 + self.k].copy(), y[2 + self.k:].copy())
+        p = self.n_plant
+        x = y[:p]
+        if self.analog:
+            x = np.append(x, self.scenario.control.reference)
+        return x, ControllerState(y[p:p + self.k].copy(), y[p + self.k:].copy())
 
     def __call__(self, y):
         x, st = self.split(y)
         res, end, _, _ = integrate_closed_loop(self.stage, self.comp, x, st, table=self.table,
                                                n_cycles=1, t_end=self.scenario.period)
         self.evaluations += 1
-        return np.concatenate([res.x_end, end.vector()]), res
+        return np.concatenate([res.x_end[:self.n_plant], end.vector()]), res
 
     def jacobian(self, y, scale):
         n = y.shape[0]
@@ -97,6 +112,13 @@ def _averaged_guess(lm):
         u = ctl.current_sense * op["peak"] + ctl.slope_compensation * op["duty"] * sc.period
     else:
         u = op["duty"] * ctl.ramp
+    if lm.analog:
+        # continuous equilibrium: w' = A w = 0 at zero error, C w = u
+        q = lm.comp.order
+        lhs = np.vstack([lm.comp.A, lm.comp.C[None, :]])
+        rhs = np.concatenate([np.zeros(q), [u]])
+        w = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
+        return np.concatenate([[op["valley"], op["vo"]], w])
     k = lm.k
     lhs = np.vstack([lm.comp.Ad - np.eye(k), lm.comp.Cd[None, :]])
     rhs = np.concatenate([np.zeros(k), [u]])
@@ -144,7 +166,7 @@ def _solve(lm, y0, tol, max_iter, max_brute_cycles=0):
         msg = (f"Newton did not converge; brute-force settling "
                f"{'converged' if done else 'did not converge'} (residual {resid:.2e})")
     J = lm.jacobian(y, scale)
-    x, ctl = lm.split(y)
+    x, ctl = lm.split(y)   # x: the stage's full state (analog: with the reference)
     out = SteadyState(x=x, iterations=it, residual=resid, floquet=np.linalg.eigvals(J),
                       monodromy=J, method=method, cycles=lm.evaluations, status=status,
                       message=msg)
@@ -153,7 +175,7 @@ def _solve(lm, y0, tol, max_iter, max_brute_cycles=0):
 
 
 def _scale(res, y, y1):
-    mags = np.abs(res.x0).max(axis=0) if res.x0.shape[0] else np.zeros(2)
+    mags = np.abs(res.x0[:, :2]).max(axis=0) if res.x0.shape[0] else np.zeros(2)
     s = np.maximum(np.abs(y), np.abs(y1))
     s[:2] = np.maximum(s[:2], mags)
     return np.maximum(s, 1e-9)
@@ -165,7 +187,7 @@ def _settle_guess(lm, cycles=400):
     res, st, _, _ = integrate_closed_loop(lm.stage, lm.comp, [0.0, 0.0], None, table=lm.table,
                                           n_cycles=cycles, t_end=cycles * sc.period)
     lm.evaluations += cycles
-    return np.concatenate([res.x_end, st.vector()])
+    return np.concatenate([res.x_end[:lm.n_plant], st.vector()])
 
 
 def _brute_force(lm, y, tol, scale, max_cycles):

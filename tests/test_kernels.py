@@ -13,6 +13,7 @@ from bucksim.engine.kernels import advance, find_zero
 from bucksim.engine.tables import build_table
 
 T = 2e-6
+E_IL = np.array([1.0, 0.0, 0.0])   # event on iL
 
 
 def lc_matrix(L=4.7e-6, C=47e-6, R=1.0, r=0.01, vin=12.0):
@@ -55,7 +56,7 @@ def test_find_zero_locates_first_crossing_to_1e12_of_period():
     za = np.array([0.8, 3.3, 1.0])
     zb = expm(M * T) @ za
     tz = find_zero(table.matrices, table.exponentials, table.steps, 0, za.copy(), zb, 0.0, T,
-                   1.0, table.guard, np.empty(3), np.empty(3), np.empty(3))
+                   1.0, table.guard, np.empty(3), np.empty(3), np.empty(3), E_IL)
     ref = brentq(lambda t: (expm(M * t) @ za)[0], 0, T, xtol=1e-22, rtol=1e-15)
     assert abs(tz - ref) < 1e-12 * T
 
@@ -76,7 +77,7 @@ def test_find_zero_catches_touch_and_return():
     zb = expm(M * b) @ za
     assert zb[0] > 0
     tz = find_zero(table.matrices, table.exponentials, table.steps, 0, za.copy(), zb, 0.0, b,
-                   1.0, table.guard, np.empty(3), np.empty(3), np.empty(3))
+                   1.0, table.guard, np.empty(3), np.empty(3), np.empty(3), E_IL)
     assert tz == pytest.approx(0.25 * period, rel=1e-12)
 
 
@@ -102,7 +103,33 @@ def test_taylor_finish_matches_brentq(level, ramp):
     ref = brentq(g, 0, T, xtol=1e-22, rtol=1e-15)
     z = za.copy()
     tz = find_zero(table.matrices, table.exponentials, table.steps, 0, z, zb, 0.0, T, sign0,
-                   table.guard, np.empty(3), np.empty(3), np.empty(3), level, ramp, 0.0,
+                   table.guard, np.empty(3), np.empty(3), np.empty(3), E_IL, level, ramp, 0.0,
                    level == 0.0, table.taylor_gap)
+    assert abs(tz - ref) < 1e-12 * T
+    assert np.allclose(z, expm(M * ref) @ za, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("taylor", [False, True])
+def test_general_event_row_matches_brentq(taylor):
+    """An event on a combination of states (an analog comparator: a ramp crossing
+    a weighted sum of the states, here 2 vC - 0.5 iL) lands on brentq's zero on
+    scipy's expm to 1e-12 of the period, with and without the Taylor finish."""
+    L, C = 4.7e-6, 47e-6
+    M = np.array([[-0.01 / L, -1 / L, 5.0 / L], [1 / C, -1 / (0.825 * C), 0], [0, 0, 0]])
+    za = np.array([1.0, 3.0, 1.0])
+    c = np.array([-0.5, 2.0, 0.0])
+    ramp, level = 4e6, 6.0
+    table = build_table(M[None], T)
+    zb = expm(M * T) @ za
+
+    def g(t):
+        return c @ (expm(M * t) @ za) + ramp * t - level
+
+    assert g(0.0) < 0 < g(T)
+    ref = brentq(g, 0, T, xtol=1e-22, rtol=1e-15)
+    z = za.copy()
+    tz = find_zero(table.matrices, table.exponentials, table.steps, 0, z, zb, 0.0, T, -1.0,
+                   table.guard, np.empty(3), np.empty(3), np.empty(3), c, level, ramp, 0.0,
+                   False, table.taylor_gap if taylor else 0.0)
     assert abs(tz - ref) < 1e-12 * T
     assert np.allclose(z, expm(M * ref) @ za, rtol=1e-12, atol=1e-12)

@@ -76,6 +76,9 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
     trial = np.empty(m)
     work = np.empty(m)
     zs = np.empty(m)
+    zs2 = np.empty(m)
+    e_il = np.zeros(m)
+    e_il[0] = 1.0
     wnew = np.empty(w.shape[0])
     nseg = 0
     t = c_start * T
@@ -121,8 +124,8 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
             if t_blank_end > tc:
                 nseg, level, t, status, _ = run_phase(
                     Ms, E, h, P, 0, False, GATE_HIGH, strategy, tc, t_blank_end, level,
-                    level_times, z, t_end, guard, np.inf, 0.0, tc, seg_t0, seg_dt, seg_cond,
-                    seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
+                    level_times, z, t_end, guard, e_il, np.inf, 0.0, tc, seg_t0, seg_dt, seg_cond,
+                    seg_sys, seg_x0, nseg, tmp, trial, work, zs, zs2, e_il, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
             # the tighter of the two thresholds; they swap where the falling
@@ -141,15 +144,15 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
             if t_swap > t_a:
                 nseg, level, t, status, tripped = run_phase(
                     Ms, E, h, P, 0, False, GATE_HIGH, strategy, t_a, t_swap, level,
-                    level_times, z, t_end, guard, first_level, first_ramp, tc, seg_t0,
-                    seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
+                    level_times, z, t_end, guard, e_il, first_level, first_ramp, tc, seg_t0,
+                    seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs, zs2, e_il, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
             if not tripped and t_swap < t_hi_end:
                 nseg, level, t, status, tripped = run_phase(
                     Ms, E, h, P, 0, False, GATE_HIGH, strategy, t_swap, t_hi_end, level,
-                    level_times, z, t_end, guard, level_pk, se / ri, tc, seg_t0, seg_dt,
-                    seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
+                    level_times, z, t_end, guard, e_il, level_pk, se / ri, tc, seg_t0, seg_dt,
+                    seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs, zs2, e_il, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
             t_off = t
@@ -169,8 +172,8 @@ def run_closed_loop(Ms, E, h, P, Cvo, T, strategy, mode, c_start, c_stop, level_
             if ends[p] > t_start:
                 nseg, level, t, status, _ = run_phase(
                     Ms, E, h, P, 0, False, gates[p], strategy, t_start, ends[p], level,
-                    level_times, z, t_end, guard, np.inf, 0.0, tc, seg_t0, seg_dt, seg_cond,
-                    seg_sys, seg_x0, nseg, tmp, trial, work, zs, taylor_gap)
+                    level_times, z, t_end, guard, e_il, np.inf, 0.0, tc, seg_t0, seg_dt, seg_cond,
+                    seg_sys, seg_x0, nseg, tmp, trial, work, zs, zs2, e_il, taylor_gap)
                 if status != STATUS_OK or t >= t_end:
                     return nseg, level, status, t
                 t_start = ends[p]

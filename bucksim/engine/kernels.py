@@ -80,17 +80,34 @@ def advance(Ms, E, h, s, z, d, tmp):
 
 
 @njit(cache=True)
-def crossing_value(z, t, level, ramp, t_ref):
-    """Event function ``g = iL + ramp (t - t_ref) - level``.
+def crossing_value(c, z, t, level, ramp, t_ref):
+    """Event function ``g = c . z + ramp (t - t_ref) - level``.
 
-    ``level = ramp = 0`` is the zero-current event; a peak-current comparator
-    with slope compensation is ``level = vc / Ri``, ``ramp = Se / Ri``.
+    ``c = e_iL``, ``level = ramp = 0`` is the zero-current event; a digital
+    peak-current comparator with slope compensation is ``c = e_iL``,
+    ``level = vc / Ri``, ``ramp = Se / Ri``; an analog comparator has ``c``
+    with entries on the compensator states (its output is a state
+    combination) and ``level = 0``.
     """
-    return z[0] + ramp * (t - t_ref) - level
+    acc = ramp * (t - t_ref) - level
+    for i in range(z.shape[0]):
+        if c[i] != 0.0:
+            acc += c[i] * z[i]
+    return acc
 
 
 @njit(cache=True)
-def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref, snap,
+def crossing_slope(Ms, s, c, z, ramp):
+    """Time derivative of the event function: ``c . (M_s z) + ramp``."""
+    acc = ramp
+    for i in range(z.shape[0]):
+        if c[i] != 0.0:
+            acc += c[i] * derivative(Ms, s, z, i)
+    return acc
+
+
+@njit(cache=True)
+def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_ref, snap,
                 taylor_gap=0.0):
     """First zero of the event function in (t, t + width]; it has sign ``sign0`` at t.
 
@@ -104,22 +121,22 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref,
     gap = width
     for k in range(K):
         if gap <= taylor_gap:
-            return taylor_zero(Ms, s, z, t, gap, level, ramp, t_ref, snap, tmp)
+            return taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp)
         if h[k] > gap:
             continue
         for i in range(m):
             trial[i] = z[i]
         apply(E, s, k, trial, tmp)
-        if sign0 * crossing_value(trial, t + h[k], level, ramp, t_ref) > 0.0:
+        if sign0 * crossing_value(c, trial, t + h[k], level, ramp, t_ref) > 0.0:
             for i in range(m):
                 z[i] = trial[i]
             t += h[k]
             gap -= h[k]
         else:
             gap = h[k]
-    slope = derivative(Ms, s, z, 0) + ramp
+    slope = crossing_slope(Ms, s, c, z, ramp)
     if slope != 0.0:
-        step = -crossing_value(z, t, level, ramp, t_ref) / slope
+        step = -crossing_value(c, z, t, level, ramp, t_ref) / slope
         if 0.0 < step <= 2.0 * h[K - 1]:
             for i in range(m):
                 tmp[i] = z[i] + step * derivative(Ms, s, z, i)
@@ -132,7 +149,7 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, level, ramp, t_ref,
 
 
 @njit(cache=True)
-def taylor_zero(Ms, s, z, t, gap, level, ramp, t_ref, snap, tmp):
+def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp):
     """Zero of the event function in (t, t + gap] from a short Taylor series.
 
     Used once the bracket is below ``taylor_gap = 1e-3 / max ||A||``: there
@@ -150,8 +167,12 @@ def taylor_zero(Ms, s, z, t, gap, level, ramp, t_ref, snap, tmp):
             for q in range(m):
                 acc += Ms[s, i, q] * v[j - 1, q]
             v[j, i] = acc
-    c1, c2, c3, c4 = v[1, 0] + ramp, v[2, 0] / 2.0, v[3, 0] / 6.0, v[4, 0] / 24.0
-    f0 = crossing_value(z, t, level, ramp, t_ref)
+    g = np.zeros(5)
+    for j in range(1, 5):
+        for i in range(m):
+            g[j] += c[i] * v[j, i]
+    c1, c2, c3, c4 = g[1] + ramp, g[2] / 2.0, g[3] / 6.0, g[4] / 24.0
+    f0 = crossing_value(c, z, t, level, ramp, t_ref)
     u = 0.5 * gap
     if c1 != 0.0:
         u = min(max(-f0 / c1, 0.0), gap)
@@ -172,7 +193,7 @@ def taylor_zero(Ms, s, z, t, gap, level, ramp, t_ref, snap, tmp):
 
 
 @njit(cache=True)
-def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work,
+def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
               level=0.0, ramp=0.0, t_ref=0.0, snap=True, taylor_gap=0.0):
     """Locate the first zero of the event function in (a, b] given the states at both ends.
 
@@ -197,19 +218,19 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work,
                 work[i] = zb[i]
         else:
             advance(Ms, E, h, s, work, t1 - t0, tmp)
-        if sign0 * crossing_value(work, t1, level, ramp, t_ref) <= 0.0:
+        if sign0 * crossing_value(c, work, t1, level, ramp, t_ref) <= 0.0:
             return refine_zero(Ms, E, h, s, za, t0, t1 - t0, sign0, tmp, trial,
-                               level, ramp, t_ref, snap, taylor_gap)
-        da = sign0 * (derivative(Ms, s, za, 0) + ramp)
-        db = sign0 * (derivative(Ms, s, work, 0) + ramp)
+                               c, level, ramp, t_ref, snap, taylor_gap)
+        da = sign0 * crossing_slope(Ms, s, c, za, ramp)
+        db = sign0 * crossing_slope(Ms, s, c, work, ramp)
         if da < 0.0 and db > 0.0:
             te = t0 + (t1 - t0) * da / (da - db)
             for i in range(m):
                 trial[i] = za[i]
             advance(Ms, E, h, s, trial, te - t0, tmp)
-            if sign0 * crossing_value(trial, te, level, ramp, t_ref) <= 0.0:
+            if sign0 * crossing_value(c, trial, te, level, ramp, t_ref) <= 0.0:
                 return refine_zero(Ms, E, h, s, za, t0, te - t0, sign0, tmp, trial,
-                                   level, ramp, t_ref, snap, taylor_gap)
+                                   c, level, ramp, t_ref, snap, taylor_gap)
         for i in range(m):
             za[i] = work[i]
         t0 = t1
@@ -235,17 +256,22 @@ def conduction_for(gate, strategy, il):
 
 @njit(cache=True)
 def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, level,
-              level_times, z, t_end, guard, thr_level, thr_ramp, thr_tref,
-              seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs,
-              taylor_gap=0.0):
+              level_times, z, t_end, guard, thr_c, thr_level, thr_ramp, thr_tref,
+              seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, nseg, tmp, trial, work, zs, zs2,
+              e_il, taylor_gap=0.0, lim_level=np.inf):
     """Propagate one gate phase ``[t_phase, t_phase_end)`` from state ``z``.
 
     Splits the phase at operating-level changes and at ``t_end``, ends a
     diode-like conduction at its zero-current event (then idles), and, when
     ``thr_level`` is finite in a high-side phase, ends the phase early where
-    ``iL + thr_ramp (t - thr_tref)`` reaches ``thr_level`` (peak-current
-    comparator with slope compensation, current limit). ``P[:, p]`` is used when ``cached`` and the
-    phase runs whole. Returns ``(nseg, level, t, status, tripped)``.
+    ``thr_c . z + thr_ramp (t - thr_tref)`` reaches ``thr_level`` (a
+    comparator: peak current with slope compensation, or an analog PWM
+    comparator). A finite ``lim_level`` adds a second threshold,
+    ``iL >= lim_level`` (cycle-by-cycle current limit), and the earlier of
+    the two ends the phase. ``e_il`` is the unit row selecting ``iL``;
+    ``tmp`` to ``zs2`` are work buffers of the state's length. ``P[:, p]`` is used
+    when ``cached`` and the phase runs whole. Returns
+    ``(nseg, level, t, status, tripped)``.
     """
     n = seg_x0.shape[1]
     m = z.shape[0]
@@ -254,6 +280,7 @@ def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, leve
     t = t_phase
     cond = conduction_for(gate, strategy, z[0])
     threshold = gate == GATE_HIGH and np.isfinite(thr_level)
+    limit = gate == GATE_HIGH and np.isfinite(lim_level)
     while t < t_phase_end:
         while level + 1 < n_levels and level_times[level + 1] <= t:
             level += 1
@@ -265,7 +292,9 @@ def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, leve
         s = level * N_CONDUCTION + cond
         if nseg >= cap:
             return nseg, level, t, STATUS_FULL, False
-        if threshold and crossing_value(z, t, thr_level, thr_ramp, thr_tref) >= 0.0:
+        if threshold and crossing_value(thr_c, z, t, thr_level, thr_ramp, thr_tref) >= 0.0:
+            return nseg, level, t, STATUS_OK, True
+        if limit and z[0] >= lim_level:
             return nseg, level, t, STATUS_OK, True
         seg_t0[nseg] = t
         seg_cond[nseg] = cond
@@ -285,17 +314,32 @@ def run_phase(Ms, E, h, P, p, cached, gate, strategy, t_phase, t_phase_end, leve
         if evented:
             sign0 = -1.0 if cond == HIGH_DIODE else 1.0
             tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp, trial, work,
-                           0.0, 0.0, 0.0, True, taylor_gap)
-        elif threshold:
-            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp, trial, work,
-                           thr_level, thr_ramp, thr_tref, False, taylor_gap)
+                           e_il, 0.0, 0.0, 0.0, True, taylor_gap)
+        elif threshold or limit:
+            if limit:
+                for i in range(m):
+                    zs2[i] = zs[i]
+            if threshold:
+                tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp, trial, work,
+                               thr_c, thr_level, thr_ramp, thr_tref, False, taylor_gap)
+            if limit:
+                # the limit counts only if it comes first: search up to the
+                # comparator's instant (zs holds the state there) or the stop
+                zb = zs if tz >= 0.0 else z
+                t_lim_stop = tz if tz >= 0.0 else t_stop
+                t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim_stop, -1.0, guard, tmp, trial,
+                               work, e_il, lim_level, 0.0, thr_tref, False, taylor_gap)
+                if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
+                    tz = t2
+                    for i in range(m):
+                        zs[i] = zs2[i]
         if tz >= 0.0:
             for i in range(m):
                 z[i] = zs[i]
             seg_dt[nseg] = tz - t
             nseg += 1
             t = tz
-            if threshold:
+            if threshold or limit:
                 return nseg, level, t, STATUS_OK, True
             cond = IDLE
             continue
@@ -330,6 +374,8 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
     trial = np.empty(m)
     work = np.empty(m)
     zs = np.empty(m)
+    e_il = np.zeros(m)
+    e_il[0] = 1.0
     gates = np.empty(4, np.int64)
     durs = np.empty(4)
     n_levels = level_times.shape[0]
@@ -403,7 +449,7 @@ def run_open_loop(Ms, E, h, P, nominal, t_on, td_fall, td_rise, T, strategy,
                             or (sign0 * derivative(Ms, s, zs, 0) < 0.0
                                 and sign0 * derivative(Ms, s, z, 0) > 0.0)):
                         tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard,
-                                       tmp, trial, work, 0.0, 0.0, 0.0, True, taylor_gap)
+                                       tmp, trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap)
                     if tz >= 0.0:
                         for i in range(m):
                             z[i] = zs[i]
