@@ -230,21 +230,24 @@ def summarize(run, cycles: int | None = None) -> Summary:
         n_cyc = int(round(n_cyc))
     idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
 
-    mom = SecondMoments(run.table.matrices)
-    m = stage.n + 1
+    # every power signal lives on [iL, vC, 1], a block the controller states of an
+    # analog loop do not feed within a segment: integrate that block alone
+    keep = stage.plant_index
+    mom = SecondMoments(run.table.matrices[:, keep][:, :, keep])
+    m = keep.shape[0]
     n_sys = run.table.matrices.shape[0]
     S = np.zeros((n_sys, m, m))
     systems = run.segments.system[idx]
-    for s, z0, d in zip(systems, z_a, tau_b - tau_a):
+    for s, z0, d in zip(systems, z_a[:, keep], tau_b - tau_a):
         S[s] += mom.moments(s, z0, d)
     used = np.unique(systems)
 
     def integral(a: str, b: str | None = None) -> float:
         """int a(t) b(t) dt over the window (b = 1 when omitted)."""
-        ca = run.signal_table(a)
+        ca = run.signal_table(a)[:, keep]
         if b is None:
             return float(sum(ca[s] @ S[s][:, -1] for s in used))
-        cb = run.signal_table(b)
+        cb = run.signal_table(b)[:, keep]
         return float(sum(ca[s] @ S[s] @ cb[s] for s in used))
 
     def rms(name):

@@ -36,7 +36,8 @@ SIGNAL_NAMES = {"iL": "inductor current iL", "vsw": "switch node vsw", "vo": "ou
                 "vin": "supply voltage vin", "high_side": "high-side current",
                 "low_side": "low-side current",
                 "high_side_body_diode": "high-side body-diode current",
-                "low_side_body_diode": "low-side body-diode current"}
+                "low_side_body_diode": "low-side body-diode current",
+                "u": "compensator output u", "vref": "reference vref"}
 _SHORT_NAMES = {"asynchronous": "async.\n", "forced-pwm": "forced\nPWM",
                 "diode-emulation": "diode\nemulation"}
 _MAX_POINTS = 1_000_000  # per signal
@@ -124,7 +125,8 @@ def waveform_figure(run, signals=("iL", "vsw", "vo"), window=None, *, size=(8.0,
     ----------
     run : Run
     signals : sequence of str
-        Names from :data:`bucksim.waveforms.SIGNALS`, one axes each, top to bottom.
+        Names from ``run.signals`` (:data:`bucksim.waveforms.SIGNALS`, plus ``u``
+        and ``vref`` in an analog loop), one axes each, top to bottom.
     window : (float, float), optional
         ``(start, stop)`` [s]; default the whole run.
     size : (float, float)
@@ -142,9 +144,8 @@ def waveform_figure(run, signals=("iL", "vsw", "vo"), window=None, *, size=(8.0,
     if not signals:
         raise ValueError("signals must name at least one signal")
     for name in signals:
-        if name not in UNITS or name == "t":
-            raise ValueError(f"unknown signal {name!r}; known: "
-                             + ", ".join(n for n in UNITS if n != "t"))
+        if name not in run.signals:
+            raise ValueError(f"unknown signal {name!r}; known: " + ", ".join(run.signals))
     pts = waveform_points(run, signals, window)
     fig = _figure(size)
     ratios = [3] * len(signals) + [0.35]

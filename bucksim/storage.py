@@ -11,15 +11,18 @@ Layout, ``layout_version = 1`` (all values SI base units)::
         message          str: the engine's status message
         x_end_iL         float [A]: inductor current at t_end
         x_end_vC         float [V]: capacitor voltage at t_end
+        x_end_<name>     float [V]: each further state at t_end (analog loop: w1 .. wk, vref)
         complete         bool: set last; absent or False means an unfinished writer
     /segments            one 1-D dataset per column of the segment table, all of one
                          length, chunked (up to 65536 rows), resizable; attribute ``units``
         t0 [s] float64   dt [s] float64   conduction int8 (attribute ``names``)
         system int32     x0_iL [A] float64   x0_vC [V] float64
+        x0_<name> [V] float64: each further state (analog loop: x0_w1 .. x0_wk, x0_vref)
     /systems             the engine's transition table, stored rather than recomputed
                          so evaluating a stored run is bit-identical to the run in memory
-        matrices         (n_sys, 3, 3): augmented M_s, z' = M_s z, z = [iL, vC, 1]
-        exponentials     (n_sys, K, 3, 3): expm(M_s steps[k])
+        matrices         (n_sys, m, m): augmented M_s, z' = M_s z, z = [iL, vC, ..., 1]
+                         (m = 3, or 4 + k with an analog compensator of order k)
+        exponentials     (n_sys, K, m, m): expm(M_s steps[k])
         steps            (K,) [s]: steps[k] = period 2**-k
         attribute guard  [s]: longest interval searched for a crossing in one piece
     /scenario
@@ -50,7 +53,7 @@ import numpy as np
 
 from .engine import EngineResult, TransitionTable, build_table, integrate
 from .errors import ScenarioError, StorageError
-from .stage import CONDUCTION_NAMES, N_CONDUCTION, STATE_NAMES, Stage
+from .stage import CONDUCTION_NAMES, CONTROLLER_UNIT, N_CONDUCTION, Stage
 from .waveforms import UNITS, Run
 
 __all__ = ["LAYOUT_VERSION", "open_run", "save_run", "simulate_to_file"]
@@ -68,11 +71,16 @@ _WRITE_ROWS = 16 * CHUNK_ROWS
 
 COMPRESSIONS = (None, "gzip", "lzf")
 
-_COLUMNS = (("t0", np.float64, "s"), ("dt", np.float64, "s"),
-            ("conduction", np.int8, "1"), ("system", np.int32, "1")) + tuple(
-    (f"x0_{name}", np.float64, UNITS[name]) for name in STATE_NAMES)
+_FIXED_COLUMNS = (("t0", np.float64, "s"), ("dt", np.float64, "s"),
+                  ("conduction", np.int8, "1"), ("system", np.int32, "1"))
 
-_RUN_ATTRS = ("t_end", "status", "message") + tuple(f"x_end_{n}" for n in STATE_NAMES)
+_RUN_ATTRS = ("t_end", "status", "message")
+
+
+def _columns(state_names):
+    """Segment-table columns ``(name, dtype, unit)`` for a stage with these states."""
+    return _FIXED_COLUMNS + tuple((f"x0_{name}", np.float64, UNITS.get(name, CONTROLLER_UNIT))
+                                  for name in state_names)
 
 
 # ----------------------------------------------------------------------------- writing
@@ -156,7 +164,7 @@ class _RunWriter:
     """Lays out an open, empty HDF5 file and appends segment chunks to it."""
 
     def __init__(self, f, scenario, table: TransitionTable, compression, expected_rows,
-                 latch: _InterruptLatch):
+                 latch: _InterruptLatch, state_names):
         import h5py
 
         from . import __version__
@@ -171,15 +179,18 @@ class _RunWriter:
         filters = _filters(compression)
         chunk = int(min(CHUNK_ROWS, max(MIN_CHUNK_ROWS, expected_rows)))
         self.columns = []
-        for name, dtype, unit in _COLUMNS:
+        self.state_names = tuple(state_names)
+        for name, dtype, unit in _columns(self.state_names):
             ds = seg.create_dataset(name, shape=(0,), maxshape=(None,), dtype=dtype,
                                     chunks=(chunk,), **filters)
             ds.attrs["units"] = unit
             self.columns.append(ds)
         seg["conduction"].attrs["names"] = list(CONDUCTION_NAMES)
         sysg = f.create_group("systems")
-        for name, data, unit in (("matrices", table.matrices, "SI (z = [iL A, vC V, 1])"),
-                                 ("exponentials", table.exponentials, "SI (z = [iL A, vC V, 1])"),
+        z_units = "SI (z = [" + ", ".join(f"{n} {UNITS.get(n, CONTROLLER_UNIT)}"
+                                         for n in self.state_names) + ", 1])"
+        for name, data, unit in (("matrices", table.matrices, z_units),
+                                 ("exponentials", table.exponentials, z_units),
                                  ("steps", table.steps, "s")):
             sysg.create_dataset(name, data=np.asarray(data, dtype=np.float64))
             sysg[name].attrs["units"] = unit
@@ -199,8 +210,9 @@ class _RunWriter:
         k = len(t0)
         if k == 0:
             return
-        if x0.shape != (k, len(STATE_NAMES)):
-            raise ValueError(f"x0 must have shape ({k}, {len(STATE_NAMES)}), got {x0.shape}")
+        n = len(self.state_names)
+        if x0.shape != (k, n):
+            raise ValueError(f"x0 must have shape ({k}, {n}), got {x0.shape}")
         cols = (t0, dt, conduction, system) + tuple(x0[:, j] for j in range(x0.shape[1]))
         for ds, col in zip(self.columns, cols):
             ds.resize((self.n + k,))
@@ -213,7 +225,7 @@ class _RunWriter:
         attrs["t_end"] = float(t_end)
         attrs["status"] = int(status)
         attrs["message"] = str(message)
-        for j, name in enumerate(STATE_NAMES):
+        for j, name in enumerate(self.state_names):
             attrs[f"x_end_{name}"] = float(x_end[j])
         self.latch.check()
         attrs["complete"] = True
@@ -246,7 +258,8 @@ def save_run(run: Run, path, compression=None) -> dict:
     _filters(compression)
     seg = run.segments
     with _InterruptLatch() as latch, _atomic_target(path) as tmp, h5py.File(tmp, "x") as f:
-        writer = _RunWriter(f, run.scenario, run.table, compression, len(seg), latch)
+        writer = _RunWriter(f, run.scenario, run.table, compression, len(seg), latch,
+                            run.stage.state_names)
         for a in range(0, len(seg), _WRITE_ROWS):
             b = a + _WRITE_ROWS
             writer.append(seg.t0[a:b], seg.dt[a:b], seg.conduction[a:b], seg.system[a:b],
@@ -280,16 +293,17 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
     # nominal segments per cycle: 2 phases (asynchronous) or 4 (with dead times)
     rows = scenario.n_cycles * (2 if scenario.switching.strategy == "asynchronous" else 4)
     with _InterruptLatch() as latch, _atomic_target(path) as tmp, h5py.File(tmp, "x") as f:
-        writer = _RunWriter(f, scenario, table, compression, rows, latch)
+        writer = _RunWriter(f, scenario, table, compression, rows, latch, stage.state_names)
         if scenario.control.mode == "open-loop":
             res = integrate(stage, table=table, sink=writer.append, progress=progress,
                             **options)
         else:
             from .control import design
             from .engine.controlled import integrate_closed_loop
-            res, _, _, _ = integrate_closed_loop(
-                stage, design(scenario.control.compensator, scenario.period), table=table,
-                sink=writer.append, progress=progress, **options)
+            comp = None if stage.analog else design(scenario.control.compensator,
+                                                    scenario.period)
+            res, _, _, _ = integrate_closed_loop(stage, comp, table=table, sink=writer.append,
+                                                 progress=progress, **options)
         writer.finish(res.t_end, res.x_end, res.status, res.message)
     return _report(path, writer.n, res.t_end, res.status, res.message)
 
@@ -368,7 +382,10 @@ def _read(f, path) -> Run:
     stage = Stage(scenario)
     _check_table(path, attrs.get("bucksim_version", "an unknown version"), scenario, stage,
                  table)
-    cols = _read_segments(f, path)
+    missing = [f"x_end_{n}" for n in stage.state_names if f"x_end_{n}" not in attrs]
+    if missing:
+        raise _corrupt(path, "missing file attribute(s) " + ", ".join(missing))
+    cols = _read_segments(f, path, stage.state_names)
     if len(cols["t0"]):
         cond, system, n_sys = cols["conduction"], cols["system"], len(table.matrices)
         if cond.min() < 0 or cond.max() >= N_CONDUCTION:
@@ -376,7 +393,8 @@ def _read(f, path) -> Run:
         if system.min() < 0 or system.max() >= n_sys:
             raise _corrupt(path, f"system ids outside 0..{n_sys - 1}")
     result = EngineResult(cols["t0"], cols["dt"], cols["conduction"], cols["system"], cols["x0"],
-                          x_end=np.array([float(attrs[f"x_end_{n}"]) for n in STATE_NAMES]),
+                          x_end=np.array([float(attrs[f"x_end_{n}"])
+                                          for n in stage.state_names]),
                           t_end=float(attrs["t_end"]), status=int(attrs["status"]),
                           message=str(attrs["message"]))
     return Run(scenario, stage, table, result)
@@ -393,10 +411,10 @@ def _dataset(f, path, key, ndim=None):
     return ds
 
 
-def _read_segments(f, path):
+def _read_segments(f, path, state_names):
     """Segment columns by name, plus ``x0`` (n_seg, n_states) read in place."""
     sets = {}
-    for name, dtype, _unit in _COLUMNS:
+    for name, dtype, _unit in _columns(state_names):
         ds = _dataset(f, path, f"segments/{name}", 1)
         if ds.dtype != dtype:
             raise _corrupt(path, f"/segments/{name} has type {ds.dtype}, "
@@ -410,8 +428,8 @@ def _read_segments(f, path):
     cols = {name: sets[name][()] for name in ("t0", "dt", "conduction", "system")}
     # block by block into one array: the states are never held twice (HDF5's own
     # strided read into a column is far slower and not leaner)
-    x0 = np.empty((n, len(STATE_NAMES)))
-    for j, name in enumerate(STATE_NAMES):
+    x0 = np.empty((n, len(state_names)))
+    for j, name in enumerate(state_names):
         ds = sets[f"x0_{name}"]
         for a in range(0, n, _WRITE_ROWS):
             x0[a:a + _WRITE_ROWS, j] = ds[a:a + _WRITE_ROWS]
@@ -420,7 +438,6 @@ def _read_segments(f, path):
 
 
 def _read_table(f, path) -> TransitionTable:
-    m = len(STATE_NAMES) + 1
     arrays = {}
     for name, ndim in (("matrices", 3), ("exponentials", 4), ("steps", 1)):
         ds = _dataset(f, path, f"systems/{name}", ndim)
@@ -428,7 +445,8 @@ def _read_table(f, path) -> TransitionTable:
             raise _corrupt(path, f"/systems/{name} has type {ds.dtype}, expected float64")
         arrays[name] = ds[()]
     mats, exps, steps = arrays["matrices"], arrays["exponentials"], arrays["steps"]
-    n_sys = mats.shape[0]
+    n_sys, m = mats.shape[0], mats.shape[1]
+    # the state size itself is checked against the scenario's stage later
     if mats.shape[1:] != (m, m) or exps.shape != (n_sys, len(steps), m, m):
         raise _corrupt(path, f"/systems shapes do not fit: matrices {mats.shape}, "
                        f"exponentials {exps.shape}, steps {steps.shape}")

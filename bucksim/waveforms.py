@@ -20,9 +20,12 @@ from .stage import CONDUCTION_NAMES, STATE_NAMES, Stage
 SIGNALS = ("iL", "vC", "vo", "io", "ic", "iin", "vsw", "vin",
            "high_side", "low_side", "high_side_body_diode", "low_side_body_diode")
 
+#: Further signals of an analog closed loop: compensator output and reference [V].
+LOOP_SIGNALS = ("u", "vref")
+
 UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw": "V",
          "vin": "V", "high_side": "A", "low_side": "A", "high_side_body_diode": "A",
-         "low_side_body_diode": "A", "t": "s"}
+         "low_side_body_diode": "A", "t": "s", "u": "V", "vref": "V"}
 
 
 @dataclass(frozen=True)
@@ -35,7 +38,8 @@ class SegmentTable:
     dt : ndarray [s]   duration
     conduction : ndarray of int8   conduction state code
     system : ndarray of int32      system id (operating level and conduction)
-    x0 : ndarray, shape (n_seg, n)   state ``[iL [A], vC [V]]`` at ``t0``
+    x0 : ndarray, shape (n_seg, n)   state ``[iL [A], vC [V], ...]`` at ``t0``
+        (an analog loop appends its compensator states and reference [V])
     """
 
     t0: np.ndarray
@@ -84,6 +88,11 @@ class Run:
         return self.status == 0
 
     @property
+    def signals(self) -> tuple:
+        """Names this run can evaluate: :data:`SIGNALS`, plus ``u`` and ``vref`` in an analog loop."""
+        return SIGNALS + (LOOP_SIGNALS if self.stage.analog else ())
+
+    @property
     def period(self) -> float:
         return self.scenario.period
 
@@ -95,8 +104,9 @@ class Run:
     def signal_table(self, name: str) -> np.ndarray:
         """Row vectors ``c_s`` (n_sys, n+1) with ``signal = c_s @ z`` in system s."""
         if name not in self._signal_tables:
-            if name not in SIGNALS:
-                raise KeyError(f"unknown signal {name!r}; known: {', '.join(SIGNALS)}")
+            known = self.signals
+            if name not in known:
+                raise KeyError(f"unknown signal {name!r}; known: {', '.join(known)}")
             n_sys = self.table.matrices.shape[0]
             self._signal_tables[name] = np.array([self.stage.signal(name, s) for s in range(n_sys)])
         return self._signal_tables[name]
@@ -113,7 +123,7 @@ class Run:
         return np.clip(idx, 0, len(seg) - 1), times
 
     def augmented_at(self, times):
-        """Augmented states ``z = [iL, vC, 1]`` at ``times`` and their segment indices."""
+        """Augmented states ``z = [iL, vC, ..., 1]`` at ``times`` and their segment indices."""
         idx, times = self.locate(times)
         tau = times - self.segments.t0[idx]
         out = np.empty((times.shape[0], self.stage.n + 1))
@@ -123,9 +133,12 @@ class Run:
         return out, idx
 
     def at(self, times, signal: str | None = None):
-        """State ``[iL [A], vC [V]]`` at ``times`` (shape (len, 2)), or one signal's values.
+        """State ``[iL [A], vC [V], ...]`` at ``times`` (shape (len, n)), or one signal's values.
 
-        ``signal`` is one of :data:`SIGNALS` (e.g. ``"vo"``, ``"vsw"``). At a
+        The columns are ``stage.state_names``: ``iL``, ``vC``, and in an analog
+        loop the compensator states ``w1 .. wk`` and the reference ``vref`` [V].
+
+        ``signal`` is one of :attr:`signals` (e.g. ``"vo"``, ``"vsw"``). At a
         segment boundary the later segment is used (matters for ``vsw`` only;
         states are continuous).
         """
@@ -165,4 +178,4 @@ class Run:
         return save_run(self, path, compression)
 
 
-__all__ = ["Run", "SegmentTable", "SIGNALS", "UNITS", "STATE_NAMES"]
+__all__ = ["Run", "SegmentTable", "SIGNALS", "LOOP_SIGNALS", "UNITS", "STATE_NAMES"]

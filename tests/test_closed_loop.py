@@ -177,7 +177,7 @@ def test_open_loop_start_without_soft_start_matches_rlc_step():
 
 
 CLOSED_LOOP_DEMOS = ["startup_5v_softstart.toml", "core_rail_0v9_load_step.toml",
-                     "pcm_rail_3v3_high_duty.toml"]
+                     "pcm_rail_3v3_high_duty.toml", "telemetry_rail_1v8_analog.toml"]
 
 
 @pytest.mark.parametrize("name", CLOSED_LOOP_DEMOS)
