@@ -264,7 +264,9 @@ def summarize(run, cycles: int | None = None) -> Summary:
     devices = {}
     loss_total = 0.0
     for name, r, vf in stage.device_models():
-        e = r * integral(name, name) + vf * integral(name)
+        # the integral of a square is >= 0; a rounding-level negative value of a
+        # device that carries ~nothing must not read as a device that supplies power
+        e = r * max(integral(name, name), 0.0) + vf * integral(name)
         devices[name] = {"rms": rms(name), "mean": mean(name),
                          "conduction_loss": e / width, "switching_loss": 0.0}
         loss_total += e

@@ -26,6 +26,10 @@ ASYNC, FORCED, EMULATION = 0, 1, 2
 
 STATUS_OK, STATUS_DIVERGED, STATUS_FULL = 0, 1, 2
 
+#: Order of the Taylor series for remainders below the table's last step
+#: (mirrors tables.TAYLOR_ORDER; the table is built so it is exact to rounding).
+TAYLOR_ORDER = 8
+
 
 @njit(cache=True)
 def apply(E, s, k, z, tmp):
@@ -56,8 +60,45 @@ def derivative(Ms, s, z, row):
 
 
 @njit(cache=True)
+def taylor_step(Ms, s, z, u, tmp, acc):
+    """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER (Horner), for short ``u``."""
+    m = z.shape[0]
+    for i in range(m):
+        acc[i] = z[i]
+    for j in range(TAYLOR_ORDER, 0, -1):
+        c = u / j
+        for i in range(m):
+            v = 0.0
+            for q in range(m):
+                v += Ms[s, i, q] * acc[q]
+            tmp[i] = z[i] + c * v
+        for i in range(m):
+            acc[i] = tmp[i]
+    for i in range(m):
+        z[i] = acc[i]
+
+
+@njit(cache=True)
+def taylor_step3(Ms, s, z, u):
+    """:func:`taylor_step` for the two-state stage (``m = 3``), in registers."""
+    z0, z1, z2 = z[0], z[1], z[2]
+    a0, a1, a2 = z0, z1, z2
+    m00, m01, m02 = Ms[s, 0, 0], Ms[s, 0, 1], Ms[s, 0, 2]
+    m10, m11, m12 = Ms[s, 1, 0], Ms[s, 1, 1], Ms[s, 1, 2]
+    m20, m21, m22 = Ms[s, 2, 0], Ms[s, 2, 1], Ms[s, 2, 2]
+    for j in range(TAYLOR_ORDER, 0, -1):
+        c = u / j
+        b0 = z0 + c * (m00 * a0 + m01 * a1 + m02 * a2)
+        b1 = z1 + c * (m10 * a0 + m11 * a1 + m12 * a2)
+        b2 = z2 + c * (m20 * a0 + m21 * a1 + m22 * a2)
+        a0, a1, a2 = b0, b1, b2
+    z[0], z[1], z[2] = a0, a1, a2
+
+
+@njit(cache=True)
 def advance(Ms, E, h, s, z, d, tmp):
-    """z <- expm(M_s d) @ z for any d >= 0, by binary decomposition of d."""
+    """z <- expm(M_s d) @ z for any d >= 0: binary digits of d over the table,
+    then the Taylor series for the remainder below its last step."""
     K = h.shape[0]
     r = d
     while r >= h[0]:
@@ -68,15 +109,11 @@ def advance(Ms, E, h, s, z, d, tmp):
             apply(E, s, k, z, tmp)
             r -= h[k]
     if r > 0.0:
-        # r < h[K-1] ~ 1e-14 T: the first-order term is exact to rounding
-        m = z.shape[0]
-        for i in range(m):
-            acc = 0.0
-            for j in range(m):
-                acc += Ms[s, i, j] * z[j]
-            tmp[i] = z[i] + r * acc
-        for i in range(m):
-            z[i] = tmp[i]
+        if z.shape[0] == 3:
+            taylor_step3(Ms, s, z, r)
+        else:
+            acc = np.empty(z.shape[0])
+            taylor_step(Ms, s, z, r, tmp, acc)
 
 
 @njit(cache=True)
@@ -112,16 +149,17 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_r
     """First zero of the event function in (t, t + width]; it has sign ``sign0`` at t.
 
     Binary descent over the transition table keeps the state on the
-    ``sign0`` side until the gap is below h[K-1]; one Newton step on the
-    analytic derivative then lands on the zero. Returns the zero's time;
-    ``z`` holds the state there (with ``z[0] = level`` exactly when ``snap``).
+    ``sign0`` side until the bracket is below the table's last step, where
+    :func:`taylor_zero` finishes on the Taylor series. Returns the zero's
+    time; ``z`` holds the state there (with ``z[0] = level`` exactly when
+    ``snap``).
     """
     K = h.shape[0]
     m = z.shape[0]
     gap = width
     for k in range(K):
         if gap <= taylor_gap:
-            return taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp)
+            break
         if h[k] > gap:
             continue
         for i in range(m):
@@ -134,57 +172,77 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_r
             gap -= h[k]
         else:
             gap = h[k]
-    slope = crossing_slope(Ms, s, c, z, ramp)
-    if slope != 0.0:
-        step = -crossing_value(c, z, t, level, ramp, t_ref) / slope
-        if 0.0 < step <= 2.0 * h[K - 1]:
-            for i in range(m):
-                tmp[i] = z[i] + step * derivative(Ms, s, z, i)
-            for i in range(m):
-                z[i] = tmp[i]
-            t += step
-    if snap:
-        z[0] = level
-    return t
+    return taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp)
 
 
 @njit(cache=True)
 def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp):
-    """Zero of the event function in (t, t + gap] from a short Taylor series.
+    """Zero of the event function in (t, t + gap] from its Taylor series.
 
-    Used once the bracket is below ``taylor_gap = 1e-3 / max ||A||``: there
-    the series ``z(t + u) = sum_j M^j z u^j / j!`` truncated after the
-    fourth power is exact to rounding (the next term is below 1e-17
-    relative), so Newton steps on it replace the remaining bisection levels.
+    Used once the bracket is below the table's last step, where the series
+    ``z(t + u) = sum_j M^j z u^j / j!`` truncated after :data:`TAYLOR_ORDER`
+    is exact to rounding: the event function is then a polynomial in ``u``,
+    solved by Newton steps kept inside the bracket (bisection when a step
+    leaves it).
     """
     m = z.shape[0]
-    v = np.empty((5, m))
+    n = TAYLOR_ORDER
+    v = np.empty((n + 1, m))
     for i in range(m):
         v[0, i] = z[i]
-    for j in range(1, 5):
+    fact = 1.0
+    for j in range(1, n + 1):
+        fact *= j
         for i in range(m):
             acc = 0.0
             for q in range(m):
                 acc += Ms[s, i, q] * v[j - 1, q]
             v[j, i] = acc
-    g = np.zeros(5)
-    for j in range(1, 5):
+    # polynomial coefficients of g(t + u) and of the state (v[j] / j!)
+    g = np.zeros(n + 1)
+    fact = 1.0
+    for j in range(1, n + 1):
+        fact *= j
         for i in range(m):
+            v[j, i] /= fact
             g[j] += c[i] * v[j, i]
-    c1, c2, c3, c4 = g[1] + ramp, g[2] / 2.0, g[3] / 6.0, g[4] / 24.0
-    f0 = crossing_value(c, z, t, level, ramp, t_ref)
+    g[0] = crossing_value(c, z, t, level, ramp, t_ref)
+    g[1] += ramp
+    lo, hi = 0.0, gap          # g keeps sign0's sign at lo, the other at hi
+    sign_lo = 1.0 if g[0] > 0.0 else -1.0
     u = 0.5 * gap
-    if c1 != 0.0:
-        u = min(max(-f0 / c1, 0.0), gap)
-    for _ in range(6):
-        f = f0 + u * (c1 + u * (c2 + u * (c3 + u * c4)))
-        df = c1 + u * (2.0 * c2 + u * (3.0 * c3 + u * 4.0 * c4))
-        if df == 0.0:
+    if g[1] != 0.0:
+        u = min(max(-g[0] / g[1], 0.0), gap)
+    for _ in range(80):
+        f = g[n]
+        df = n * g[n]
+        for j in range(n - 1, 0, -1):
+            f = f * u + g[j]
+            df = df * u + j * g[j]
+        f = f * u + g[0]
+        if f == 0.0:
             break
-        u = min(max(u - f / df, 0.0), gap)
+        if (f > 0.0) == (sign_lo > 0.0):
+            lo = u
+        else:
+            hi = u
+        if df != 0.0:
+            step = f / df
+            if abs(step) <= 1e-16 * gap:
+                u -= step      # converged: the step is at rounding level
+                break
+            un = u - step
+            if lo < un < hi:
+                u = un
+                continue
+        if hi - lo <= 1e-16 * gap:
+            break
+        u = 0.5 * (lo + hi)    # Newton left the bracket: bisect
     for i in range(m):
-        tmp[i] = v[0, i] + u * (v[1, i] + u * (v[2, i] / 2.0 + u * (v[3, i] / 6.0
-                                                                      + u * v[4, i] / 24.0)))
+        acc = v[n, i]
+        for j in range(n - 1, -1, -1):
+            acc = acc * u + v[j, i]
+        tmp[i] = acc
     for i in range(m):
         z[i] = tmp[i]
     if snap:
