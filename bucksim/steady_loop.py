@@ -51,6 +51,7 @@ class LoopMap:
             self.n_plant = 2
         self.delay = self.scenario.control.delay
         self.evaluations = 0
+        self._phases = {}
 
     def split(self, y):
         """``(stage state, ControllerState)`` of a shooting vector ``y``."""
@@ -64,7 +65,8 @@ class LoopMap:
     def __call__(self, y):
         x, st = self.split(y)
         res, end, _, _ = integrate_closed_loop(self.stage, self.comp, x, st, table=self.table,
-                                               n_cycles=1, t_end=self.scenario.period)
+                                               n_cycles=1, t_end=self.scenario.period,
+                                               phase_cache=self._phases)
         self.evaluations += 1
         return np.concatenate([res.x_end[:self.n_plant], end.vector()]), res
 

@@ -7,11 +7,12 @@ a caller can stream segments to disk as they come.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
-from .kernels import STATUS_DIVERGED, STATUS_FULL, STATUS_OK, run_open_loop
+from .cycles import CONTROL_OPEN, N_PHASES, run_cycles
+from .kernels import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
 from .tables import TransitionTable, build_table, phase_exponentials
 
 __all__ = ["EngineResult", "integrate", "build_table", "TransitionTable", "duty_schedule"]
@@ -111,6 +112,8 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
     stage : bucksim.stage.Stage
     x0 : array_like, shape (2,), optional
         ``[iL [A], vC [V]]`` at t = 0; default from ``scenario.run``.
+        The stage runs in open loop (a closed-loop scenario's controller is
+        not applied here: see :mod:`bucksim.engine.controlled`).
     on_times : ndarray, optional
         High-side on-time per cycle [s]; default :func:`duty_schedule`.
     table : TransitionTable, optional
@@ -126,8 +129,6 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
     progress : callable, optional
         Called as ``progress(cycles_done, n_cycles)`` after each chunk.
     """
-    from ..stage import STRATEGY_CODES
-
     sc = stage.scenario
     T = sc.period
     n_cycles, t_end, x0 = run_span(sc, n_cycles, t_end, x0)
@@ -136,7 +137,7 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
     on_times = np.ascontiguousarray(on_times, dtype=float)
     if table is None:
         table = build_table(stage.matrices, T)
-    nominal = np.array(phase_durations(sc, float(on_times[-1])) + [0.0] * 4)[:4]
+    nominal = nominal_phases(sc, float(on_times[-1]))
     key = tuple(nominal)
     if phase_cache is not None and key in phase_cache:
         P = phase_cache[key]
@@ -144,40 +145,123 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
         P = phase_exponentials(table.matrices, nominal)
         if phase_cache is not None:
             phase_cache[key] = P
-    tf, tr = sc.switching.dead_time
-    strategy = STRATEGY_CODES[sc.switching.strategy]
-    level_times = np.array([lev.time for lev in stage.levels])
-    z = np.array([float(x0[0]), float(x0[1]), 1.0])
-    n = stage.n
-    n_phase = 2 if strategy == 0 else 4
+    m = stage.n + 1
+    controller = LoopArgs(control=CONTROL_OPEN, on_times=on_times, Cvo=np.zeros((1, m)),
+                          Cu=np.zeros((1, m)), Cthr=np.zeros((1, m)))
+    result, _, _ = run_chunks(stage, table, P, nominal, x0, controller, n_cycles, t_end,
+                              sink, chunk_cycles, progress)
+    return result
 
-    pieces = []
-    level = 0
-    status = STATUS_OK
-    t = 0.0
-    c = 0
+
+def nominal_phases(scenario, on_time: float | None) -> np.ndarray:
+    """Nominal duration [s] of each phase of :mod:`~bucksim.engine.cycles`' program.
+
+    ``on_time=None`` (closed loop): only the dead times are fixed. A phase
+    whose nominal duration is not positive is never taken from the cache.
+    """
+    out = np.full(N_PHASES, -1.0)
+    T = scenario.period
+    if scenario.switching.strategy == "asynchronous":
+        if on_time is not None:
+            out[0], out[2] = on_time, T - on_time
+        return out
+    tf, tr = scenario.switching.dead_time
+    out[2], out[4] = tf, tr
+    if on_time is not None:
+        out[0], out[3] = on_time, max(0.0, T - on_time - tf - tr)
+    return out
+
+
+@dataclass
+class LoopArgs:
+    """Controller arguments of :func:`~bucksim.engine.cycles.run_cycles` (see there)."""
+
+    control: int
+    peak: bool = False
+    on_times: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    Cvo: np.ndarray | None = None
+    reference: float = 0.0
+    soft_start: float = 0.0
+    sense_gain: float = 1.0
+    Ad: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    Bd: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    Cd: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    Dd: float = 0.0
+    w: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    queue: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    duty_bits: int = 0
+    Cu: np.ndarray | None = None
+    Cthr: np.ndarray | None = None
+    thr_ramp: float = 0.0
+    ramp_v: float = 1.0
+    ri: float = 1.0
+    se: float = 0.0
+    i_limit: float = np.inf
+    max_duty: float = 1.0
+    min_on: float = 0.0
+    skip: bool = False
+
+    def kernel_args(self):
+        return (self.control, self.peak, self.on_times, self.Cvo, float(self.reference),
+                float(self.soft_start), float(self.sense_gain), self.Ad, self.Bd, self.Cd,
+                float(self.Dd), self.w, self.queue, int(self.duty_bits), self.Cu, self.Cthr,
+                float(self.thr_ramp), float(self.ramp_v), float(self.ri), float(self.se),
+                float(self.i_limit), float(self.max_duty), float(self.min_on), bool(self.skip))
+
+
+def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_end, sink=None,
+               chunk_cycles=CHUNK_CYCLES, progress=None):
+    """Run :func:`~bucksim.engine.cycles.run_cycles` in chunks of ``chunk_cycles`` periods.
+
+    Returns ``(EngineResult, duty per period, control value per period)``;
+    with ``sink`` the segments go there chunk by chunk instead. The two logs
+    are kept for a closed loop run in memory only (empty otherwise).
+    """
+    from ..stage import STRATEGY_CODES
+
+    sc = stage.scenario
+    T = sc.period
+    strategy = STRATEGY_CODES[sc.switching.strategy]
+    tf, tr = sc.switching.dead_time if strategy != 0 else (0.0, 0.0)
+    level_times = np.array([lev.time for lev in stage.levels])
+    z = np.append(stage.initial_state(x0), 1.0)
+    n = stage.n
+    args = controller.kernel_args()
+    # the per-period logs serve a closed-loop Run in memory; streamed or open-loop
+    # runs drop them so memory stays bounded by one chunk
+    keep_logs = sink is None and controller.control != CONTROL_OPEN
+    pieces, duty_log, u_log = [], [np.zeros(0)], [np.zeros(0)]
+    level, status, t, c = 0, STATUS_OK, 0.0, 0
     while c < n_cycles and status == STATUS_OK:
         c_stop = min(n_cycles, c + chunk_cycles)
-        cap = (c_stop - c) * 2 * n_phase + 2 * len(level_times) + 8
-        t0, dt, cond, sysid, xs = segment_buffers(cap, n)
-        nseg, level, status, t = run_open_loop(
-            table.matrices, table.exponentials, table.steps, P, nominal, on_times,
-            float(tf), float(tr), T, strategy, c, c_stop, level_times, level, z,
-            float(t_end), table.guard, t0, dt, cond, sysid, xs, table.taylor_gap)
+        k = c_stop - c
+        # per period: two high-side pieces (blanked, live) and each off phase split
+        # at most once by a zero-current event (8 rows; asynchronous 4), plus
+        # the splits at level changes
+        bufs = segment_buffers(k * (8 if strategy != 0 else 4) + 2 * len(level_times) + 8, n)
+        dl, ul = np.full(k, np.nan), np.full(k, np.nan)
+        nseg, level, status, t = run_cycles(
+            table.matrices, table.exponentials, table.steps, P, nominal, table.guard,
+            table.taylor_gap, T, strategy, float(tf), float(tr), level_times, level, z, c,
+            c_stop, float(t_end), *args, *bufs, dl, ul)
         if status == STATUS_FULL:  # cannot happen with the bound above; keep it loud
             raise RuntimeError("segment buffer overflow in the engine (bug)")
-        piece = (t0[:nseg], dt[:nseg], cond[:nseg], sysid[:nseg], xs[:nseg])
+        piece = tuple(b[:nseg] for b in bufs)
         if sink is not None:
             sink(*piece)
         else:
             pieces.append(piece)
+        if keep_logs:
+            duty_log.append(dl)
+            u_log.append(ul)
         c = c_stop
         if progress is not None:
             progress(c, n_cycles)
         if t >= t_end:
             break
-    return EngineResult(*join_segments(pieces, n), x_end=z[:n].copy(), t_end=float(t),
-                        status=int(status), message=STATUS_MESSAGES[int(status)])
+    res = EngineResult(*join_segments(pieces, n), x_end=z[:n].copy(), t_end=float(t),
+                       status=int(status), message=STATUS_MESSAGES[int(status)])
+    return res, np.concatenate(duty_log), np.concatenate(u_log)
 
 
 def segment_buffers(cap: int, n: int):

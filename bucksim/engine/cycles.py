@@ -1,0 +1,307 @@
+"""The engine's one cycle loop: gate phases, events, and each period's control decision.
+
+Every period runs the same phase program; only the decision at its start
+differs between controllers:
+
+====  =========  ===========================================================
+ p    gate       span
+====  =========  ===========================================================
+ 0    high       ``[t_k, t_k + blank)``: comparator blanked
+ 1    high       ``[t_k + blank, t_k + t_on_max)``: comparator and current
+                 limit live; the phase ends where either trips
+ 2    off        falling dead time (synchronous) or the rest of the period
+                 (asynchronous: freewheel diode)
+ 3    low        low-side gate until ``t_{k+1} - rising dead time``
+ 4    off        rising dead time
+====  =========  ===========================================================
+
+Controllers (``control``):
+
+* open loop: the on-time comes from a schedule; no comparator, no limit;
+* digital: at ``t_k`` the exact output voltage is sampled and a discrete
+  compensator stepped (voltage mode: a duty with delay and quantisation;
+  peak-current mode: a comparator level ``iL + (Se/Ri)(t - t_k) = u/Ri``);
+* analog: the compensator is part of the state; the comparator is the
+  event ``Cthr[level] . z + ramp (t - t_k) = 0`` (see :mod:`bucksim.stage`).
+
+The phase logic is written once, inline: calling a per-phase function with
+its dozen array arguments cost more than the propagation itself (measured
+with benchmarks/bench_engine.py). A phase that runs whole with its nominal
+duration applies the cached ``P[s, p] = expm(M_s d_p)``; any other interval
+goes through :func:`~bucksim.engine.kernels.advance`; events are located by
+:func:`~bucksim.engine.kernels.find_zero` on the analytic solution, after a
+cheap test that rules out a crossing in most segments (the sign holds at the
+end, the segment is shorter than the guard and the event function has no
+extremum turning toward zero inside).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from .kernels import (ASYNC, EMULATION, GATE_HIGH, GATE_LOW, GATE_OFF, HIGH_DIODE, IDLE, LOW,
+                      LOW_DIODE, N_CONDUCTION, STATUS_DIVERGED, STATUS_FULL, STATUS_OK, advance,
+                      apply, conduction_for, crossing_slope, crossing_value, find_zero)
+
+CONTROL_OPEN, CONTROL_DIGITAL, CONTROL_ANALOG = 0, 1, 2
+N_PHASES = 5
+
+#: Cached phases match their nominal duration to this many units of the
+#: absolute time's rounding (durations are differences of absolute times).
+_NOMINAL_ULPS = 8.0
+
+
+@njit(cache=True)
+def _dot(c, z):
+    acc = 0.0
+    for j in range(z.shape[0]):
+        acc += c[j] * z[j]
+    return acc
+
+
+@njit(cache=True)
+def _compensate(Ad, Bd, Cd, Dd, w, e, lo, hi, wnew):
+    """One digital compensator step with conditional integration; returns the output."""
+    k = w.shape[0]
+    u = Dd * e
+    for i in range(k):
+        u += Cd[i] * w[i]
+    for i in range(k):
+        acc = Bd[i] * e
+        for j in range(k):
+            acc += Ad[i, j] * w[j]
+        wnew[i] = acc
+    if (u >= hi and e > 0.0) or (u <= lo and e < 0.0):
+        return u  # saturated and pushing further: hold the state
+    for i in range(k):
+        w[i] = wnew[i]
+    return u
+
+
+@njit(cache=True)
+def _needs_search(Ms, s, row, zs, z, t_end_seg, d, guard, sign0, level, ramp, t_ref):
+    """False when the event function provably keeps ``sign0`` over the segment."""
+    if d > guard:
+        return True
+    if sign0 * crossing_value(row, z, t_end_seg, level, ramp, t_ref) <= 0.0:
+        return True
+    return (sign0 * crossing_slope(Ms, s, row, zs, ramp) < 0.0
+            and sign0 * crossing_slope(Ms, s, row, z, ramp) > 0.0)
+
+
+@njit(cache=True)
+def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td_rise,
+               level_times, level, z, c_start, c_stop, t_end, control, peak, on_times,
+               Cvo, reference, soft_start, sense_gain, Ad, Bd, Cd, Dd, w, queue, duty_bits,
+               Cu, Cthr, thr_ramp, ramp_v, ri, se, i_limit, max_duty, min_on, skip,
+               seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, log_duty, log_u):
+    """Simulate periods ``c_start .. c_stop-1`` from state ``z`` (updated in place).
+
+    Segments are written to the ``seg_*`` arrays from index 0; ``log_duty``
+    and ``log_u`` receive each period's on-time / T and control value
+    (``nan`` in open loop). ``w`` and ``queue`` (digital controller) are
+    updated in place so a caller can continue in the next chunk. Returns
+    ``(n_segments, level, status, t)``.
+    """
+    n = seg_x0.shape[1]
+    m = z.shape[0]
+    tmp = np.empty(m)
+    trial = np.empty(m)
+    work = np.empty(m)
+    zs = np.empty(m)
+    zs2 = np.empty(m)
+    e_il = np.zeros(m)
+    e_il[0] = 1.0
+    wnew = np.empty(w.shape[0])
+    n_levels = level_times.shape[0]
+    n_delay = queue.shape[0]
+    cap = seg_t0.shape[0]
+    sync = strategy != ASYNC
+    e2 = e3 = 0.0
+    nseg = 0
+    t = c_start * T
+    for c in range(c_start, c_stop):
+        tc = c * T
+        t_next = (c + 1) * T
+        tol = _NOMINAL_ULPS * 2.220446049250313e-16 * t_next
+        while level + 1 < n_levels and level_times[level + 1] <= tc:
+            level += 1
+        # -- the period's decision: on-time bound, blanking, comparator, limit
+        cmp_on = False
+        cmp_level = 0.0
+        cmp_ramp = 0.0
+        lim_blank = np.inf
+        lim_live = i_limit
+        u = np.nan
+        if control == CONTROL_OPEN:
+            t_on_max = on_times[c] if on_times.shape[0] > 1 else on_times[0]
+            blank = t_on_max
+            lim_live = np.inf
+        elif control == CONTROL_DIGITAL:
+            vref = reference
+            if soft_start > 0.0 and tc < soft_start:
+                vref = reference * tc / soft_start
+            e = sense_gain * (vref - _dot(Cvo[level * N_CONDUCTION], z))
+            if not peak:
+                u = _compensate(Ad, Bd, Cd, Dd, w, e, 0.0, max_duty * ramp_v, wnew)
+                dty = min(max(u / ramp_v, 0.0), max_duty)
+                if duty_bits > 0:
+                    q = 2.0 ** duty_bits
+                    dty = np.floor(dty * q + 0.5) / q
+                if n_delay > 0:
+                    d_now = queue[0]
+                    for i in range(n_delay - 1):
+                        queue[i] = queue[i + 1]
+                    queue[n_delay - 1] = dty
+                    dty = d_now
+                if dty * T < min_on:
+                    dty = 0.0 if skip else min_on / T
+                t_on_max = dty * T
+                blank = 0.0
+            else:
+                u = _compensate(Ad, Bd, Cd, Dd, w, e, 0.0, np.inf, wnew)
+                t_on_max = max_duty * T
+                if skip and u / ri <= z[0]:
+                    t_on_max = 0.0
+                blank = min(min_on, t_on_max)
+                cmp_on = True
+                cmp_level = u / ri
+                cmp_ramp = se / ri
+        else:
+            u = _dot(Cu[level], z)
+            t_on_max = max_duty * T
+            if skip:
+                low = u <= ri * z[0] if peak else u <= ramp_v * min_on / T
+                if low:
+                    t_on_max = 0.0
+            blank = min(min_on, t_on_max)
+            cmp_on = True
+            cmp_ramp = thr_ramp
+            lim_blank = i_limit
+        log_u[c - c_start] = u
+        # -- the phase program
+        t_off = tc
+        tripped = False
+        p = 0
+        while p < N_PHASES:
+            # span, gate and rules of phase p
+            ph_cmp = False
+            ph_lim = np.inf
+            if p == 0:
+                gate, t_ph, t_ph_end = GATE_HIGH, tc, tc + min(blank, t_on_max)
+                ph_lim = lim_blank
+            elif p == 1:
+                gate, t_ph, t_ph_end = GATE_HIGH, tc + blank, tc + t_on_max
+                ph_cmp = cmp_on
+                ph_lim = lim_live
+            elif p == 2:
+                if not tripped:
+                    t_off = tc + t_on_max
+                e2 = min(t_off + td_fall, t_next) if sync else t_next
+                e3 = max(e2, t_next - td_rise) if sync else t_next
+                gate, t_ph, t_ph_end = GATE_OFF, t_off, e2
+            elif p == 3:
+                gate, t_ph, t_ph_end = GATE_LOW, e2, e3
+            else:
+                gate, t_ph, t_ph_end = GATE_OFF, e3, t_next
+            if t_ph_end <= t_ph:
+                p += 1
+                continue
+            t = t_ph
+            cond = conduction_for(gate, strategy, z[0])
+            ph_dur = t_ph_end - t_ph
+            whole_ok = nominal[p] > 0.0 and abs(ph_dur - nominal[p]) <= tol
+            while t < t_ph_end:
+                while level + 1 < n_levels and level_times[level + 1] <= t:
+                    level += 1
+                t_stop = t_ph_end
+                if level + 1 < n_levels and level_times[level + 1] < t_stop:
+                    t_stop = level_times[level + 1]
+                if t_end < t_stop:
+                    t_stop = t_end
+                s = level * N_CONDUCTION + cond
+                if nseg >= cap:
+                    return nseg, level, STATUS_FULL, t
+                # the analog comparator's row follows the level: a load step moves vo
+                row = Cthr[level] if ph_cmp and control == CONTROL_ANALOG else e_il
+                if ph_cmp and crossing_value(row, z, t, cmp_level, cmp_ramp, tc) >= 0.0:
+                    tripped = True
+                    break
+                if z[0] >= ph_lim:
+                    tripped = True
+                    break
+                seg_t0[nseg] = t
+                seg_cond[nseg] = cond
+                seg_sys[nseg] = s
+                for i in range(n):
+                    seg_x0[nseg, i] = z[i]
+                for i in range(m):
+                    zs[i] = z[i]
+                d = t_stop - t
+                if whole_ok and t == t_ph and t_stop == t_ph_end:
+                    apply(P, s, p, z, tmp)
+                else:
+                    advance(Ms, E, h, s, z, d, tmp)
+                tz = -1.0
+                if cond == LOW_DIODE or cond == HIGH_DIODE or (cond == LOW and
+                                                               strategy == EMULATION):
+                    sign0 = -1.0 if cond == HIGH_DIODE else 1.0
+                    if _needs_search(Ms, s, e_il, zs, z, t_stop, d, guard, sign0, 0.0, 0.0,
+                                     0.0):
+                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp,
+                                       trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap)
+                    if tz >= 0.0:
+                        for i in range(m):
+                            z[i] = zs[i]
+                        seg_dt[nseg] = tz - t
+                        nseg += 1
+                        t = tz
+                        cond = IDLE
+                        continue
+                elif ph_cmp or np.isfinite(ph_lim):
+                    for i in range(m):
+                        zs2[i] = zs[i]
+                    if ph_cmp and _needs_search(Ms, s, row, zs, z, t_stop, d, guard, -1.0,
+                                                cmp_level, cmp_ramp, tc):
+                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp,
+                                       trial, work, row, cmp_level, cmp_ramp, tc, False,
+                                       taylor_gap)
+                    if np.isfinite(ph_lim):
+                        # the limit counts only if it comes first: search up to the
+                        # comparator's instant (zs holds the state there) or the stop
+                        zb = zs if tz >= 0.0 else z
+                        t_lim = tz if tz >= 0.0 else t_stop
+                        if _needs_search(Ms, s, e_il, zs2, zb, t_lim, t_lim - t, guard, -1.0,
+                                         ph_lim, 0.0, tc):
+                            t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, -1.0, guard, tmp,
+                                           trial, work, e_il, ph_lim, 0.0, tc, False,
+                                           taylor_gap)
+                            if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
+                                tz = t2
+                                for i in range(m):
+                                    zs[i] = zs2[i]
+                    if tz >= 0.0:
+                        for i in range(m):
+                            z[i] = zs[i]
+                        seg_dt[nseg] = tz - t
+                        nseg += 1
+                        t = tz
+                        tripped = True
+                        break
+                seg_dt[nseg] = d
+                nseg += 1
+                t = t_stop
+                for i in range(m):
+                    if not np.isfinite(z[i]):
+                        return nseg, level, STATUS_DIVERGED, t
+                if t >= t_end:
+                    log_duty[c - c_start] = ((t if p <= 1 else t_off) - tc) / T
+                    return nseg, level, STATUS_OK, t
+            if tripped and p <= 1:
+                t_off = t
+                p = 2
+                continue
+            p += 1
+        log_duty[c - c_start] = (t_off - tc) / T
+    return nseg, level, STATUS_OK, t
