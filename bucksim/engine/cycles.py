@@ -41,8 +41,9 @@ import numpy as np
 from numba import njit
 
 from .kernels import (ASYNC, EMULATION, GATE_HIGH, GATE_LOW, GATE_OFF, HIGH_DIODE, IDLE, LOW,
-                      LOW_DIODE, N_CONDUCTION, STATUS_DIVERGED, STATUS_FULL, STATUS_OK, advance,
-                      apply, conduction_for, crossing_slope, crossing_value, find_zero)
+                      LOW_DIODE, N_CONDUCTION, STATUS_DIVERGED, STATUS_FULL, STATUS_OK, advance, derivative,
+                      TAYLOR_ORDER, apply, conduction_for, crossing_slope, crossing_value,
+                      find_zero)
 
 CONTROL_OPEN, CONTROL_DIGITAL, CONTROL_ANALOG = 0, 1, 2
 N_PHASES = 5
@@ -113,6 +114,7 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     zs2 = np.empty(m)
     e_il = np.zeros(m)
     e_il[0] = 1.0
+    poly = np.empty((TAYLOR_ORDER + 1, m + 1))
     wnew = np.empty(w.shape[0])
     n_levels = level_times.shape[0]
     n_delay = queue.shape[0]
@@ -247,10 +249,11 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                 if cond == LOW_DIODE or cond == HIGH_DIODE or (cond == LOW and
                                                                strategy == EMULATION):
                     sign0 = -1.0 if cond == HIGH_DIODE else 1.0
-                    if _needs_search(Ms, s, e_il, zs, z, t_stop, d, guard, sign0, 0.0, 0.0,
-                                     0.0):
+                    if (d > guard or sign0 * z[0] <= 0.0
+                            or (sign0 * derivative(Ms, s, zs, 0) < 0.0
+                                and sign0 * derivative(Ms, s, z, 0) > 0.0)):
                         tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp,
-                                       trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap)
+                                       trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly)
                     if tz >= 0.0:
                         for i in range(m):
                             z[i] = zs[i]
@@ -266,7 +269,7 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                                                 cmp_level, cmp_ramp, tc):
                         tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp,
                                        trial, work, row, cmp_level, cmp_ramp, tc, False,
-                                       taylor_gap)
+                                       taylor_gap, poly)
                     if np.isfinite(ph_lim):
                         # the limit counts only if it comes first: search up to the
                         # comparator's instant (zs holds the state there) or the stop
@@ -276,7 +279,7 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                                          ph_lim, 0.0, tc):
                             t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, -1.0, guard, tmp,
                                            trial, work, e_il, ph_lim, 0.0, tc, False,
-                                           taylor_gap)
+                                           taylor_gap, poly)
                             if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
                                 tz = t2
                                 for i in range(m):

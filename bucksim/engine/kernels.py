@@ -29,9 +29,10 @@ STATUS_OK, STATUS_DIVERGED, STATUS_FULL = 0, 1, 2
 #: Order of the Taylor series for remainders below the table's last step
 #: (mirrors tables.TAYLOR_ORDER; the table is built so it is exact to rounding).
 TAYLOR_ORDER = 8
+_INV_FACTORIAL = (1.0, 1.0, 1 / 2, 1 / 6, 1 / 24, 1 / 120, 1 / 720, 1 / 5040, 1 / 40320)
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def apply(E, s, k, z, tmp):
     """z <- E[s, k] @ z (in place, via tmp)."""
     m = z.shape[0]
@@ -78,7 +79,7 @@ def taylor_step(Ms, s, z, u, tmp, acc):
         z[i] = acc[i]
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def taylor_step3(Ms, s, z, u):
     """:func:`taylor_step` for the two-state stage (``m = 3``), in registers."""
     z0, z1, z2 = z[0], z[1], z[2]
@@ -143,9 +144,9 @@ def crossing_slope(Ms, s, c, z, ramp):
     return acc
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_ref, snap,
-                taylor_gap=0.0):
+                taylor_gap=0.0, poly=None):
     """First zero of the event function in (t, t + width]; it has sign ``sign0`` at t.
 
     Binary descent over the transition table keeps the state on the
@@ -172,42 +173,44 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_r
             gap -= h[k]
         else:
             gap = h[k]
-    return taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp)
+    return taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly)
 
 
-@njit(cache=True)
-def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp):
+@njit(cache=True, inline="always")
+def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None):
     """Zero of the event function in (t, t + gap] from its Taylor series.
 
     Used once the bracket is below the table's last step, where the series
     ``z(t + u) = sum_j M^j z u^j / j!`` truncated after :data:`TAYLOR_ORDER`
     is exact to rounding: the event function is then a polynomial in ``u``,
     solved by Newton steps kept inside the bracket (bisection when a step
-    leaves it).
+    leaves it). ``poly`` is an optional work array of shape
+    ``(TAYLOR_ORDER + 1, m + 1)`` (allocated when omitted).
     """
     m = z.shape[0]
     n = TAYLOR_ORDER
-    v = np.empty((n + 1, m))
+    if poly is None:
+        poly = np.empty((n + 1, m + 1))
+    v = poly    # columns 0..m-1: the state's coefficients; column m: g's
     for i in range(m):
         v[0, i] = z[i]
-    fact = 1.0
     for j in range(1, n + 1):
-        fact *= j
         for i in range(m):
             acc = 0.0
             for q in range(m):
                 acc += Ms[s, i, q] * v[j - 1, q]
             v[j, i] = acc
     # polynomial coefficients of g(t + u) and of the state (v[j] / j!)
-    g = np.zeros(n + 1)
-    fact = 1.0
     for j in range(1, n + 1):
-        fact *= j
+        r = _INV_FACTORIAL[j]
+        acc = 0.0
         for i in range(m):
-            v[j, i] /= fact
-            g[j] += c[i] * v[j, i]
-    g[0] = crossing_value(c, z, t, level, ramp, t_ref)
-    g[1] += ramp
+            v[j, i] *= r
+            acc += c[i] * v[j, i]
+        v[j, m] = acc
+    v[0, m] = crossing_value(c, z, t, level, ramp, t_ref)
+    v[1, m] += ramp
+    g = v[:, m]
     lo, hi = 0.0, gap          # g keeps sign0's sign at lo, the other at hi
     sign_lo = 1.0 if g[0] > 0.0 else -1.0
     u = 0.5 * gap
@@ -228,8 +231,10 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp):
             hi = u
         if df != 0.0:
             step = f / df
-            if abs(step) <= 1e-16 * gap:
-                u -= step      # converged: the step is at rounding level
+            # converged once the step is at the rounding of u (f itself is then
+            # rounding noise, and further steps would only wander)
+            if abs(step) <= 1e-15 * (abs(u) + 1e-3 * gap):
+                u -= step
                 break
             un = u - step
             if lo < un < hi:
@@ -252,7 +257,7 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp):
 
 @njit(cache=True)
 def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
-              level=0.0, ramp=0.0, t_ref=0.0, snap=True, taylor_gap=0.0):
+              level=0.0, ramp=0.0, t_ref=0.0, snap=True, taylor_gap=0.0, poly=None):
     """Locate the first zero of the event function in (a, b] given the states at both ends.
 
     Returns the zero's time (``za`` then holds the state there) or -1.0 when
@@ -267,6 +272,7 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
     if b - a > guard:
         n_sub = int(np.ceil((b - a) / guard))
     t0 = a
+    width = -1.0     # set to the bracket (t0, t0 + width] once a crossing is seen
     for q in range(n_sub):
         t1 = b if q == n_sub - 1 else a + (b - a) * (q + 1) / n_sub
         for i in range(m):
@@ -277,8 +283,8 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
         else:
             advance(Ms, E, h, s, work, t1 - t0, tmp)
         if sign0 * crossing_value(c, work, t1, level, ramp, t_ref) <= 0.0:
-            return refine_zero(Ms, E, h, s, za, t0, t1 - t0, sign0, tmp, trial,
-                               c, level, ramp, t_ref, snap, taylor_gap)
+            width = t1 - t0
+            break
         da = sign0 * crossing_slope(Ms, s, c, za, ramp)
         db = sign0 * crossing_slope(Ms, s, c, work, ramp)
         if da < 0.0 and db > 0.0:
@@ -287,12 +293,15 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
                 trial[i] = za[i]
             advance(Ms, E, h, s, trial, te - t0, tmp)
             if sign0 * crossing_value(c, trial, te, level, ramp, t_ref) <= 0.0:
-                return refine_zero(Ms, E, h, s, za, t0, te - t0, sign0, tmp, trial,
-                                   c, level, ramp, t_ref, snap, taylor_gap)
+                width = te - t0
+                break
         for i in range(m):
             za[i] = work[i]
         t0 = t1
-    return -1.0
+    if width < 0.0:
+        return -1.0
+    return refine_zero(Ms, E, h, s, za, t0, width, sign0, tmp, trial, c, level, ramp, t_ref,
+                       snap, taylor_gap, poly)
 
 
 @njit(cache=True)
