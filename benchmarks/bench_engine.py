@@ -4,7 +4,10 @@ Measures, in one run on this machine:
 
 1. forced PWM with dead time on both edges (CCM), segments kept;
 2. diode emulation in DCM (a zero-current event every cycle);
-3. the same forced-PWM circuit integrated by ``scipy.integrate.solve_ivp``
+3. voltage-mode closed loops in DCM (a controller decision and a zero-current
+   event every cycle): digital (sampled) and analog (compensator states in the
+   stage, comparator instant located on the exact solution);
+4. the same forced-PWM circuit integrated by ``scipy.integrate.solve_ivp``
    (RK45, rtol 1e-9, atol 1e-12), restarted at every switching instant, and the
    agreement of the final state with the engine's.
 
@@ -15,19 +18,25 @@ Figures are printed as a Markdown table for the README.
 
 from __future__ import annotations
 
-import argparse
-import json
-import platform
-import time
+import os
 
-import numpy as np
-from scipy.integrate import solve_ivp
+# small-matrix expm calls in the set-up slow down many times when OpenBLAS
+# spreads them over threads on a busy machine
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
-import bucksim
-from bucksim.engine import build_table, integrate
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
-                           Scenario, Supply, Switching)
-from bucksim.stage import Stage
+import argparse  # noqa: E402
+import json  # noqa: E402
+import platform  # noqa: E402
+import time  # noqa: E402
+
+import numpy as np  # noqa: E402
+from scipy.integrate import solve_ivp  # noqa: E402
+
+import bucksim  # noqa: E402
+from bucksim.engine import build_table, integrate  # noqa: E402
+from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet,  # noqa: E402
+                           RunSettings, Scenario, Supply, Switching)
+from bucksim.stage import Stage  # noqa: E402
 
 
 def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9)) -> Scenario:
@@ -51,17 +60,18 @@ def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9)) -> Sc
 def engine_rate(scenario: Scenario, repeats: int = 3) -> tuple[float, object]:
     stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
-    integrate(stage, table=table)  # warm-up (compile or load cache)
+    cache = {}
+    integrate(stage, table=table, phase_cache=cache)  # warm-up (compile or load cache)
     best = np.inf
     for _ in range(repeats):
         t = time.perf_counter()
-        res = integrate(stage, table=table)
+        res = integrate(stage, table=table, phase_cache=cache)
         best = min(best, time.perf_counter() - t)
     return scenario.n_cycles / best, res
 
 
-def closed_loop_rate(cycles: int, repeats: int = 3) -> float:
-    """Voltage mode, diode emulation in DCM: a controller update and a
+def closed_loop_rate(cycles: int, repeats: int = 3, implementation: str = "digital") -> float:
+    """Voltage mode, diode emulation in DCM: a controller decision and a
     zero-current event every period."""
     import dataclasses
 
@@ -70,15 +80,17 @@ def closed_loop_rate(cycles: int, repeats: int = 3) -> float:
 
     sc = rail("diode-emulation", 30.0, cycles)
     sc = dataclasses.replace(sc, control=Control(mode="voltage-mode", reference=3.3,
-                                                 compensator={"gain": 1000.0}))
+                                                 compensator={"gain": 1000.0},
+                                                 implementation=implementation))
     stage = Stage(sc)
     table = build_table(stage.matrices, sc.period)
-    comp = design(sc.control.compensator, sc.period)
-    integrate_closed_loop(stage, comp, table=table)
+    comp = None if stage.analog else design(sc.control.compensator, sc.period)
+    cache = {}
+    integrate_closed_loop(stage, comp, table=table, phase_cache=cache)
     best = np.inf
     for _ in range(repeats):
         t = time.perf_counter()
-        integrate_closed_loop(stage, comp, table=table)
+        integrate_closed_loop(stage, comp, table=table, phase_cache=cache)
         best = min(best, time.perf_counter() - t)
     return cycles / best
 
@@ -121,6 +133,7 @@ def main(argv=None):
     de, _ = engine_rate(rail("diode-emulation", 30.0, a.cycles))
 
     closed = closed_loop_rate(a.cycles)
+    analog = closed_loop_rate(a.cycles, implementation="analog")
 
     short = rail("forced-pwm", 0.66, a.ode_cycles)
     t = time.perf_counter()
@@ -136,6 +149,7 @@ def main(argv=None):
         "forced_pwm_cycles_per_s": fpwm,
         "diode_emulation_dcm_cycles_per_s": de,
         "closed_loop_dcm_cycles_per_s": closed,
+        "analog_loop_dcm_cycles_per_s": analog,
         "solve_ivp_cycles_per_s": ode_rate,
         "speed_ratio_vs_solve_ivp": fpwm / ode_rate,
         "final_state_difference_vs_solve_ivp_rel": err,
@@ -144,7 +158,9 @@ def main(argv=None):
     print("| measurement | figure |\n| --- | --- |")
     print(f"| engine, forced PWM + dead time, CCM, segments kept | {fpwm:.3g} cycles/s |")
     print(f"| engine, diode emulation, DCM (zero-current event each cycle) | {de:.3g} cycles/s |")
-    print(f"| engine, voltage-mode loop, diode emulation in DCM | {closed:.3g} cycles/s |")
+    print(f"| engine, digital voltage-mode loop, diode emulation in DCM | {closed:.3g} cycles/s |")
+    print(f"| engine, analog voltage-mode loop (PI, 4 states), diode emulation in DCM "
+          f"| {analog:.3g} cycles/s |")
     print(f"| solve_ivp RK45 rtol 1e-9, restarted per switching instant | {ode_rate:.3g} cycles/s |")
     print(f"| speed ratio engine / solve_ivp | {fpwm / ode_rate:.3g}x |")
     print(f"| final-state difference after {a.ode_cycles} cycles (relative) | {err:.2e} |")

@@ -107,7 +107,7 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     """
     n = seg_x0.shape[1]
     m = z.shape[0]
-    tmp = np.empty(m)
+    tmp = np.empty(2 * m)
     trial = np.empty(m)
     work = np.empty(m)
     zs = np.empty(m)

@@ -61,22 +61,24 @@ def derivative(Ms, s, z, row):
 
 
 @njit(cache=True)
-def taylor_step(Ms, s, z, u, tmp, acc):
-    """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER (Horner), for short ``u``."""
+def taylor_step(Ms, s, z, u, tmp):
+    """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER, for short ``u``.
+
+    ``tmp`` holds at least ``2 m`` entries: the current term and the product.
+    """
     m = z.shape[0]
     for i in range(m):
-        acc[i] = z[i]
-    for j in range(TAYLOR_ORDER, 0, -1):
+        tmp[i] = z[i]                      # term_0 = z
+    for j in range(1, TAYLOR_ORDER + 1):
         c = u / j
         for i in range(m):
             v = 0.0
             for q in range(m):
-                v += Ms[s, i, q] * acc[q]
-            tmp[i] = z[i] + c * v
+                v += Ms[s, i, q] * tmp[q]
+            tmp[m + i] = c * v             # term_j = (u / j) M term_{j-1}
         for i in range(m):
-            acc[i] = tmp[i]
-    for i in range(m):
-        z[i] = acc[i]
+            tmp[i] = tmp[m + i]
+            z[i] += tmp[i]
 
 
 @njit(cache=True, inline="always")
@@ -99,7 +101,8 @@ def taylor_step3(Ms, s, z, u):
 @njit(cache=True)
 def advance(Ms, E, h, s, z, d, tmp):
     """z <- expm(M_s d) @ z for any d >= 0: binary digits of d over the table,
-    then the Taylor series for the remainder below its last step."""
+    then the Taylor series for the remainder below its last step. ``tmp``:
+    work space, ``2 m`` entries (fewer makes stages beyond two states allocate)."""
     K = h.shape[0]
     r = d
     while r >= h[0]:
@@ -112,9 +115,10 @@ def advance(Ms, E, h, s, z, d, tmp):
     if r > 0.0:
         if z.shape[0] == 3:
             taylor_step3(Ms, s, z, r)
+        elif tmp.shape[0] >= 2 * z.shape[0]:
+            taylor_step(Ms, s, z, r, tmp)
         else:
-            acc = np.empty(z.shape[0])
-            taylor_step(Ms, s, z, r, tmp, acc)
+            taylor_step(Ms, s, z, r, np.empty(2 * z.shape[0]))
 
 
 @njit(cache=True)
@@ -327,7 +331,7 @@ def evaluate(Ms, E, h, seg_sys, seg_x0, index, tau, out):
     n = seg_x0.shape[1]
     m = out.shape[1]
     z = np.empty(m)
-    tmp = np.empty(m)
+    tmp = np.empty(2 * m)
     for j in range(index.shape[0]):
         k = index[j]
         for i in range(n):
