@@ -246,22 +246,15 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                 else:
                     advance(Ms, E, h, s, z, d, tmp)
                 tz = -1.0
-                if cond == LOW_DIODE or cond == HIGH_DIODE or (cond == LOW and
-                                                               strategy == EMULATION):
+                evented = cond == LOW_DIODE or cond == HIGH_DIODE or (
+                    cond == LOW and strategy == EMULATION)
+                if evented:
                     sign0 = -1.0 if cond == HIGH_DIODE else 1.0
                     if (d > guard or sign0 * z[0] <= 0.0
                             or (sign0 * derivative(Ms, s, zs, 0) < 0.0
                                 and sign0 * derivative(Ms, s, z, 0) > 0.0)):
                         tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp,
                                        trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly)
-                    if tz >= 0.0:
-                        for i in range(m):
-                            z[i] = zs[i]
-                        seg_dt[nseg] = tz - t
-                        nseg += 1
-                        t = tz
-                        cond = IDLE
-                        continue
                 elif ph_cmp or np.isfinite(ph_lim):
                     for i in range(m):
                         zs2[i] = zs[i]
@@ -284,14 +277,18 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                                 tz = t2
                                 for i in range(m):
                                     zs[i] = zs2[i]
-                    if tz >= 0.0:
-                        for i in range(m):
-                            z[i] = zs[i]
-                        seg_dt[nseg] = tz - t
-                        nseg += 1
-                        t = tz
-                        tripped = True
-                        break
+                if tz >= 0.0:
+                    # the segment ends at the event; zs holds the state there
+                    for i in range(m):
+                        z[i] = zs[i]
+                    seg_dt[nseg] = tz - t
+                    nseg += 1
+                    t = tz
+                    if evented:        # zero current: idle for the rest of the phase
+                        cond = IDLE
+                        continue
+                    tripped = True     # comparator or limit: the on-time ends
+                    break
                 seg_dt[nseg] = d
                 nseg += 1
                 t = t_stop
