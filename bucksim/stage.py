@@ -37,7 +37,10 @@ with ``e = H (vref - vo)`` joins the state, and so does the reference ``vref``
 (it rises at ``reference / soft_start`` until ``soft_start``, then holds):
 ``x = [iL, vC, w_1 .. w_k, vref]``. The plant rows do not depend on the
 controller's states, so within a segment the plant evolves as in open loop;
-the controller acts only through the switching instants.
+the controller acts only through the switching instants. With an integrator,
+every system has a second copy with the integrator held (anti-windup, see
+:meth:`Stage.integrator_limits`): system id
+``s = (level * n_modes + held) * N_CONDUCTION + conduction``.
 """
 
 from __future__ import annotations
@@ -105,7 +108,8 @@ def operating_levels(scenario: Scenario) -> list[Level]:
 class Stage:
     """Linear systems and output maps for every (level, conduction state).
 
-    System id ``s = level * N_CONDUCTION + conduction``. ``matrices[s]`` is the
+    System id ``s = (level * n_modes + held) * N_CONDUCTION + conduction``
+    (``n_modes = 1`` but for an analog integrator). ``matrices[s]`` is the
     augmented ``M`` (``m x m``, ``m = n + 1``; 3 x 3 without an analog loop).
     :meth:`signal` returns a row vector ``c`` such that a signal equals
     ``c @ z`` in that system.
@@ -137,6 +141,10 @@ class Stage:
         self.state_names = STATE_NAMES + (tuple(f"w{i + 1}" for i in range(k)) + ("vref",)
                                           if self.analog else ())
         self.plant_index = np.array([0, 1, self.n])
+        # anti-windup of an analog integrator: a second copy of every system
+        # with the integrator held (its row zeroed), see integrator_limits
+        self.n_modes = 2 if self.analog and scenario.control.compensator.get(
+            "integrator", True) else 1
         ind, cap = scenario.inductor, scenario.output_capacitor
         self.L, self.dcr = ind.inductance, ind.dcr
         self.C, self.esr = cap.capacitance, cap.esr
@@ -151,16 +159,45 @@ class Stage:
             assert isinstance(ls, Diode)
             self.rds_ls = 0.0  # no channel: the LOW state is never entered
             self.vf_ls, self.r_ls = ls.vf, ls.r
-        self.matrices = np.array([self._matrix(lev, k) for lev in self.levels
+        self.matrices = np.array([self._matrix(lev, k, held) for lev in self.levels
+                                  for held in range(self.n_modes)
                                   for k in range(N_CONDUCTION)])
 
     # -- maps ----------------------------------------------------------------
-    def system_id(self, level: int, conduction: int) -> int:
-        return level * N_CONDUCTION + conduction
+    def system_id(self, level: int, conduction: int, held: int = 0) -> int:
+        """System id of a level, a conduction state and (analog loop) the integrator hold."""
+        return (level * self.n_modes + held) * N_CONDUCTION + conduction
 
     def split_id(self, system: int) -> tuple[int, int]:
         """Return ``(level, conduction)`` of a system id."""
-        return divmod(int(system), N_CONDUCTION)
+        group, conduction = divmod(int(system), N_CONDUCTION)
+        return group // self.n_modes, conduction
+
+    @property
+    def integrator_index(self) -> int:
+        """Position of the analog compensator's integrator in ``z`` (-1: none)."""
+        return 2 if self.n_modes == 2 else -1
+
+    def integrator_limits(self) -> tuple[float, float]:
+        """Range [V] of the analog integrator state (anti-windup).
+
+        The integrator holds at a limit while the error pushes it further:
+        ``[0, max_duty * ramp]`` in voltage mode and ``[0, inf)`` in
+        peak-current mode, the range the compensator output spans at a steady
+        state (each further section has unity gain at DC), as the digital
+        controller's conditional integration does.
+        """
+        ctl = self.scenario.control
+        if ctl.mode == "peak-current":
+            return 0.0, np.inf
+        return 0.0, ctl.max_duty * ctl.ramp
+
+    def error_row(self, level: int) -> np.ndarray:
+        """Row with the loop error ``e = H (vref - vo) = row @ z`` at ``level`` [V]."""
+        gain = self.scenario.control.sense_gain
+        row = -gain * self._embed(self._vo(self.levels[level]))
+        row[self.n - 1] += gain
+        return row
 
     def _vo(self, lev: Level):
         den = 1.0 + self.esr * lev.conductance
@@ -214,7 +251,7 @@ class Stage:
             return np.array([-(self.rs + self.r_hs), 0.0, lev.vin + self.vf_hs])
         return vo.copy()  # idle: inductor voltage is zero
 
-    def _matrix(self, lev: Level, k: int) -> np.ndarray:
+    def _matrix(self, lev: Level, k: int, held: int = 0) -> np.ndarray:
         vo = self._vo(lev)
         io = lev.conductance * vo + np.array([0.0, 0.0, lev.current])
         ic = np.array([1.0, 0.0, 0.0]) - io
@@ -237,6 +274,8 @@ class Stage:
             M[2 + i, 2:2 + q] += self.loop.A[i]
             M[2 + i, 2 + q] += self.loop.B[i] * gain
         M[2 + q, m - 1] = lev.ref_slope
+        if held:
+            M[2] = 0.0      # the integrator (first section) holds its value
         return M
 
     def signal(self, name: str, system: int) -> np.ndarray:

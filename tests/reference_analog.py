@@ -11,15 +11,16 @@ comparator as a state-dependent event, and integrates the whole thing with
 Notes
 -----
 Full state ``z = [iL, vC, w]``: plant states of :mod:`reference_sim`
-([A], [V]) and the compensator states ``w`` of our own realisation of
+([A], [V]) and the compensator states ``w = [x_I, w_rest]`` of our own
+realisation of
 
     Gc(s) = gain / s * prod_i (1 + s / (2 pi fz_i)) / prod_j (1 + s / (2 pi fp_j))
 
-(no ``1/s`` when ``integrator = false``). The polynomials are built here with
-``numpy.polymul``; ``scipy.signal.tf2ss`` gives ``(Ac, Bc, Cc, Dc)`` in
-controllable canonical form, rescaled by ``w -> diag(Cc) w`` so that each state
-is its volt contribution to ``u`` (atol then means the same thing in every
-component; Gc is unchanged by a similarity transform).
+(no ``1/s`` and no ``x_I`` when ``integrator = false``), built in
+:mod:`reference_compensator`: the integrator state ``x_I`` [V] explicit
+(``x_I' = gain e``; the first zero joins it when there is one zero more than
+poles), the remaining factors as first-order sections whose states are their
+low-passed inputs [V] (atol then means the same thing in every component).
 
 Output node (Erickson & Maksimovic 2020, ch. 2; :mod:`reference_sim`)::
 
@@ -34,6 +35,15 @@ Loop, continuous in time::
 so in conduction state ``s`` the full system is affine with a ramp input::
 
     z' = [[A_s, 0], [-Hs Bc cv, Ac]] z + [b_s; -Hs Bc dv] + [0; Hs Bc] vref(t)
+
+Integrator hold (anti-windup, :mod:`reference_compensator`): the row of
+``x_I`` is zero (``x_I' = 0``) while ``(x_I >= w_hi and e > 0)`` or
+``(x_I <= w_lo and e < 0)``; ``[w_lo, w_hi] = [0, Dmax Vm]`` in voltage mode,
+``[0, inf)`` in peak-current mode. Free, ``x_I`` rising to ``w_hi`` (falling
+to ``w_lo``) is a terminal event that starts the hold with ``x_I`` set to the
+limit exactly; held, ``e`` falling (rising) to 0 is a terminal event that
+ends it. At every restart that is not such an event (gate changes, the end of
+the blanking time, ``t_ss``) the hold is re-evaluated from the rule.
 
 Switching (cycle k starts at ``t_k = k T``):
 
@@ -56,18 +66,22 @@ Switching (cycle k starts at ``t_k = k T``):
 Events are solve_ivp terminal events (a root of the event function on the
 DOP853 dense output, located by brentq); each piece is integrated in local
 time ``(t - t_start) / T`` so that brentq's absolute tolerance (4 eps) is a
-fraction of the period; while an event is searched, steps are at most T/16,
-so a pair of roots hides inside one step only if closer than that. A condition already met where a
+fraction of the period; while an event is searched (always, with an
+integrator: its hold events), steps are at most T/16, so a pair of roots hides
+inside one step only if closer than that. A condition already met where a
 search window opens ends the on-time there. Integration restarts at every
-gate change and at ``t_ss`` (the kink of the reference ramp).
+gate change, at every hold event and at ``t_ss`` (the kink of the reference
+ramp).
 
 References
 ----------
 R. W. Erickson and D. Maksimovic, Fundamentals of Power Electronics, 3rd ed.,
 Springer 2020: ch. 2 (buck stage), 7 (averaged models, PWM modulator gain
 1/Vm), 9 (compensators), 12 (current-programmed control).
+K. J. Astrom and T. Hagglund, Advanced PID Control, ISA 2006, ch. 3
+(integrator windup, conditional integration).
 SciPy (general reference library): ``integrate.solve_ivp`` (DOP853, events),
-``signal.tf2ss``, ``linalg.expm`` (second integrator in :meth:`AnalogLoop.replay_expm`).
+``linalg.expm`` (second integrator in :meth:`AnalogLoop.replay_expm`).
 C. F. Van Loan, "Computing integrals involving the matrix exponential", IEEE
 Trans. Automatic Control 23(3), 1978 (augmented exponential).
 T. J. Aprille and T. N. Trick, "Steady-state analysis of nonlinear circuits with
@@ -83,31 +97,13 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.integrate import solve_ivp
 from scipy.linalg import expm
-from scipy.signal import tf2ss
 
+from reference_compensator import (FREE, HELD_HIGH, HELD_LOW, compensator_polynomials,
+                                   compensator_ss, hold_rule, integrator_limits)
 from reference_sim import _GATE_LOW, _GATE_OFF, HIGH, IDLE, Circuit
 
-
-def compensator_polynomials(spec):
-    """``(num, den)`` of Gc(s), descending powers of s, built from the table in Hz."""
-    num = np.array([float(spec["gain"])])
-    den = np.array([1.0, 0.0]) if spec.get("integrator", True) else np.array([1.0])
-    for fz in spec.get("zeros", []):
-        num = np.polymul(num, [1.0 / (2 * math.pi * fz), 1.0])
-    for fp in spec.get("poles", []):
-        den = np.polymul(den, [1.0 / (2 * math.pi * fp), 1.0])
-    return num, den
-
-
-def compensator_ss(spec):
-    """Scaled state space ``(Ac, Bc, Cc, Dc)`` of Gc (see module notes)."""
-    A, B, C, D = tf2ss(*compensator_polynomials(spec))
-    c = C[0].copy()
-    s = np.where(c != 0.0, c, 1.0)          # w_new = diag(s) w
-    A = (s[:, None] * A) / s[None, :]
-    B = s * B[:, 0]
-    C = C[0] / s
-    return A, B, C, float(D[0, 0])
+__all__ = ["AnalogLoop", "Loop", "LoopTrace", "circuit_of", "compensator_polynomials",
+           "compensator_ss", "reference_loop"]
 
 
 @dataclass(frozen=True)
@@ -151,7 +147,9 @@ class LoopTrace:
     states there, ``u`` (n,) compensator output at each clock [V], ``duty`` (n,)
     on-time / T, ``skipped`` (n,) bool, ``peak`` (n,) iL at turn-off [A],
     ``zero_events`` instants where a diode state reached iL = 0 [s],
-    ``segments`` ``[(start, stop, conduction code), ...]`` as integrated."""
+    ``segments`` ``[(start, stop, conduction code, hold), ...]`` as integrated
+    (hold: HELD_LOW, FREE or HELD_HIGH), ``holds`` ``[(t, hold), ...]`` every
+    change of the integrator hold [s] (by event or by the rule at a restart)."""
 
     t: np.ndarray
     z: np.ndarray
@@ -161,6 +159,7 @@ class LoopTrace:
     peak: np.ndarray
     zero_events: np.ndarray
     segments: list
+    holds: list
 
     def vo(self, circuit):
         return circuit.output_voltage(self.z[:, :2])
@@ -180,28 +179,51 @@ class AnalogLoop:
         self.dv = -k * esr * circuit.sink
         Hs = loop.sense_gain
         self.Cc, self.Dc, self.Hs = Cc, Dc, Hs
-        self.M, self.q = [], []
+        # x_I is the first compensator state (z[2]); no hold without an integrator
+        self.ix = 2 if loop.spec.get("integrator", True) else None
+        self.lo, self.hi = integrator_limits(loop)
+        self.sys = {}                                      # (code, held) -> (M, q, r)
         for code in range(5):
             A, b = circuit.system(code)
             M = np.zeros((n, n))
             M[:2, :2] = A
             M[2:, :2] = -Hs * np.outer(Bc, self.cv)
             M[2:, 2:] = Ac
-            self.M.append(M)
-            self.q.append(np.concatenate([b, -Hs * Bc * self.dv]))
-        self.r = np.concatenate([[0.0, 0.0], Hs * Bc])     # coefficient of vref(t)
+            q = np.concatenate([b, -Hs * Bc * self.dv])
+            r = np.concatenate([[0.0, 0.0], Hs * Bc])     # coefficient of vref(t)
+            self.sys[code, False] = (M, q, r)
+            if self.ix is not None:
+                M, q, r = M.copy(), q.copy(), r.copy()
+                M[self.ix], q[self.ix], r[self.ix] = 0.0, 0.0, 0.0
+                self.sys[code, True] = (M, q, r)
         self.opts = dict(method="DOP853", rtol=rtol, atol=atol)
-        self.segments = []
+        self.segments, self.holds, self.hold = [], [], FREE
 
     # -- signals ---------------------------------------------------------
     def vref(self, t):
         L = self.loop
         return L.reference if L.soft_start <= 0 else L.reference * min(1.0, t / L.soft_start)
 
+    def e(self, t, z):
+        """Error [V] at the compensator input at time ``t`` for full state ``z``."""
+        return float(self.Hs * (self.vref(t) - self.cv @ z[:2] - self.dv))
+
     def u(self, t, z):
         """Compensator output [V] at time ``t`` for full state ``z``."""
-        e = self.Hs * (self.vref(t) - self.cv @ z[:2] - self.dv)
-        return float(self.Cc @ z[2:] + self.Dc * e)
+        return float(self.Cc @ z[2:] + self.Dc * self.e(t, z))
+
+    def hold_events(self, hold):
+        """Terminal events that end the hold state ``hold``: ``[(fn(t, z), new hold)]``."""
+        ix, lo, hi = self.ix, self.lo, self.hi
+        if ix is None:
+            return []
+        if hold == FREE:
+            out = [(lambda t, y: y[ix] - lo, -1.0, HELD_LOW)]
+            if math.isfinite(hi):
+                out.append((lambda t, y: y[ix] - hi, 1.0, HELD_HIGH))
+        else:    # held high: e falls to 0; held low: e rises to 0
+            out = [(lambda t, y: self.e(t, y), -float(hold), FREE)]
+        return [(_event(fn, d), new) for fn, d, new in out]
 
     def comparator(self, t, z, tk):
         """Event function of the PWM / peak-current comparator (>= 0: turn off)."""
@@ -216,31 +238,58 @@ class AnalogLoop:
 
         Each piece runs in local time s = (t - a) / T: solve_ivp locates event
         roots with an absolute tolerance of 4 eps in its own time variable,
-        which in seconds would be ~4e-10 of a 2 us period.
+        which in seconds would be ~4e-10 of a 2 us period. A hold event ends a
+        piece and the next one starts at once with the new hold state; the
+        caller sees only its own events.
         """
-        M, q, r, T = self.M[code], self.q[code], self.r, self.T
-        ts = self.loop.soft_start
+        T, ts, events = self.T, self.loop.soft_start, list(events or ())
         cuts = [t0, t1] if not t0 < ts < t1 else [t0, ts, t1]
         for a, b in zip(cuts[:-1], cuts[1:]):
-            local = []
-            for ev in events or ():
-                def fn(s, y, ev=ev, a=a):
-                    return ev(a + s * T, y)
-                fn.terminal, fn.direction = True, ev.direction
-                local.append(fn)
-            # steps <= T/16 while searching, so a root pair cannot hide inside one step
-            sol = solve_ivp(lambda s, y: T * (M @ y + q + r * self.vref(a + s * T)),
-                            (0.0, (b - a) / T), z, events=local or None,
-                            max_step=1 / 16 if local else np.inf, **self.opts)
-            if sol.status == 1:
-                for i, se in enumerate(sol.t_events):
-                    if len(se):
-                        te = a + float(se[0]) * T
-                        self.segments.append((a, te, code))
-                        return te, sol.y_events[i][0].copy(), i
-            self.segments.append((a, b, code))
-            z = sol.y[:, -1].copy()
+            z = np.array(z, float)
+            self._set_hold(a, self._rule(a, z))
+            while b > a:
+                held = self.hold != FREE
+                M, q, r = self.sys[code, held]
+                ends = self.hold_events(self.hold)
+                local = []
+                for ev in events + [fn for fn, _ in ends]:
+                    def fn(s, y, ev=ev, a=a):
+                        return ev(a + s * T, y)
+                    fn.terminal, fn.direction = True, ev.direction
+                    local.append(fn)
+                # steps <= T/16 while searching, so a root pair cannot hide inside one step
+                sol = solve_ivp(lambda s, y: T * (M @ y + q + r * self.vref(a + s * T)),
+                                (0.0, (b - a) / T), z, events=local or None,
+                                max_step=1 / 16 if local else np.inf, **self.opts)
+                hit = None
+                if sol.status == 1:
+                    hit = next(i for i, se in enumerate(sol.t_events) if len(se))
+                    te = a + float(sol.t_events[hit][0]) * T
+                    z = sol.y_events[hit][0].copy()
+                else:
+                    te, z = b, sol.y[:, -1].copy()
+                self.segments.append((a, te, code, self.hold))
+                if hit is None:
+                    break
+                if hit < len(events):
+                    return te, z, hit
+                new = ends[hit - len(events)][1]
+                if te <= a and self.segments[-2][:2] == (a, a):
+                    raise RuntimeError(f"integrator hold chatters at t = {te!r} s")
+                if new != FREE:                  # the hold starts exactly on the limit
+                    z[self.ix] = self.lo if new == HELD_LOW else self.hi
+                self._set_hold(te, new)
+                a = te
         return t1, z, None
+
+    def _rule(self, t, z):
+        return FREE if self.ix is None else hold_rule(z[self.ix], self.e(t, z), self.lo,
+                                                      self.hi)
+
+    def _set_hold(self, t, hold):
+        if hold != self.hold:
+            self.holds.append((t, hold))
+            self.hold = hold
 
     def _on_phase(self, z, tk):
         """High side from t_k; return (t_off, z at t_off)."""
@@ -319,7 +368,7 @@ class AnalogLoop:
     def run(self, cycles, z0=None):
         """Simulate ``cycles`` periods from ``z0`` (rest when None)."""
         z = np.zeros(2 + self.m) if z0 is None else np.array(z0, float)
-        self.segments = []
+        self.segments, self.holds, self.hold = [], [], FREE
         zs, us, on, skips, peaks, zero_events = [z.copy()], [], [], [], [], []
         for k in range(cycles):
             us.append(self.u(k * self.T, z))
@@ -330,7 +379,7 @@ class AnalogLoop:
             skips.append(skipped)
         return LoopTrace(np.arange(cycles + 1) * self.T, np.array(zs), np.array(us),
                          np.array(on) / self.T, np.array(skips), np.array(peaks),
-                         np.array(zero_events), list(self.segments))
+                         np.array(zero_events), list(self.segments), list(self.holds))
 
     def replay_expm(self, trace, z0=None):
         """Re-propagate ``trace``'s segments exactly (second integrator).
@@ -338,19 +387,23 @@ class AnalogLoop:
         Each segment is affine with a ramp input; augmenting ``Z = [z, vref, 1]``
         (``vref' = Vref / t_ss`` before ``t_ss``, 0 after) makes it
         ``Z' = Maug Z``, solved by ``scipy.linalg.expm`` (Van Loan 1978). An
-        idle segment starts at ``iL = 0``. Returns ``{segment stop: z}``.
+        idle segment starts at ``iL = 0``, a held one with ``x_I`` on its limit.
+        Returns ``{segment stop: z}``.
         """
         n = 2 + self.m
         z = np.zeros(n) if z0 is None else np.array(z0, float)
         ts, out = self.loop.soft_start, {}
-        for a, b, code in trace.segments:
+        for a, b, code, hold in trace.segments:
+            M, q, r = self.sys[code, hold != FREE]
             Ma = np.zeros((n + 2, n + 2))
-            Ma[:n, :n], Ma[:n, n], Ma[:n, n + 1] = self.M[code], self.r, self.q[code]
+            Ma[:n, :n], Ma[:n, n], Ma[:n, n + 1] = M, r, q
             Ma[n, n + 1] = self.loop.reference / ts if ts > 0 and a < ts else 0.0
             if code == IDLE:
                 z[0] = 0.0
+            if hold != FREE:
+                z[self.ix] = self.lo if hold == HELD_LOW else self.hi
             z = (expm(Ma * (b - a)) @ np.r_[z, self.vref(a), 1.0])[:n]
-            out[b] = z
+            out[b] = z.copy()           # z itself is pinned in place above
         return out
 
     # -- periodic steady state (after the soft start) ----------------------
@@ -360,8 +413,14 @@ class AnalogLoop:
         return self.period(z, k)[0]
 
     def jacobian(self, z, h=1e-5):
-        """Central-difference Jacobian of :meth:`cycle_map` (steps h x state scale)."""
-        scale = np.maximum(np.abs(z), 1e-3)
+        """Central-difference Jacobian of :meth:`cycle_map`.
+
+        Steps are h x state scale, divided by the state's gain to ``u`` where that
+        exceeds 1: a compensator behind a high-frequency gain of hundreds would
+        otherwise move the comparator by ~1e-3 of the ramp, far into the
+        curvature of the duty."""
+        du = np.abs(np.r_[-self.Dc * self.Hs * self.cv, self.Cc])
+        scale = np.maximum(np.abs(z), 1e-3) / np.maximum(du, 1.0)
         J = np.empty((z.size, z.size))
         for j in range(z.size):
             dz = np.zeros(z.size)
@@ -402,6 +461,11 @@ class AnalogLoop:
             z = z - np.linalg.solve(J - np.eye(z.size), F)
         residual = float(np.max(np.abs(self.cycle_map(z) - z) / scale))
         return z, np.linalg.eigvals(self.jacobian(z)), residual
+
+
+def _event(fn, direction):
+    fn.terminal, fn.direction = True, direction
+    return fn
 
 
 def reference_loop(scenario, **opts):

@@ -2,8 +2,10 @@
 
 The reference (tests/reference_analog.py) is written from the circuit and
 control description alone: solve_ivp (DOP853, rtol 1e-12) on the plant plus our
-own state-space realisation of the compensator, restarted at every switching
-instant, with terminal events for the comparator and for iL = 0.
+own state-space realisation of the compensator (tests/reference_compensator.py,
+integrator state explicit), restarted at every switching instant, with terminal
+events for the comparator, for iL = 0 and for the start and end of the
+integrator hold (anti-windup by conditional integration).
 
 Sources: Erickson & Maksimovic, Fundamentals of Power Electronics, 3rd ed.
 2020 (ch. 2 buck stage and ripple, ch. 7 averaged model and PWM gain 1/Vm,
@@ -11,6 +13,8 @@ ch. 9 compensators and loop gain, ch. 12 current-programmed control); Ridley,
 "A new, continuous-time model for current-mode control", IEEE Trans. Power
 Electron. 1991 (period doubling above D = 0.5, slope compensation >= half the
 sensed down-slope); Aprille & Trick, Proc. IEEE 60(1), 1972 (shooting);
+Astrom & Hagglund, Advanced PID Control, ISA 2006, ch. 3 (integrator windup,
+conditional integration);
 general reference libraries: scipy (solve_ivp, expm), python-control (averaged
 loop, stability margins). Circuit values are invented for these tests.
 """
@@ -31,6 +35,7 @@ from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, 
 from bucksim.scenario import loads_scenario
 from bucksim.steady_loop import closed_loop_steady_state
 from reference_analog import compensator_polynomials, compensator_ss, reference_loop
+from reference_compensator import FREE, HELD_HIGH, HELD_LOW, integrator_limits
 from reference_sim import simulate_expm
 
 FS = 500e3
@@ -39,8 +44,13 @@ PI = {"gain": 2000.0, "zeros": [2000.0]}
 TYPE2 = {"gain": 2000.0, "zeros": [2000.0], "poles": [100e3]}
 # type III for the rail below: crossover ~20 kHz (fs/25), phase margin ~61 deg
 TYPE3 = {"gain": 2600.0, "zeros": [5e3, 8e3], "poles": [100e3, 200e3]}
+# two zeros, one pole, for the rail below with 220 uF: crossover ~22 kHz (fs/23), phase
+# margin ~54 deg (averaged model); its integrator is fast: without soft start it winds up
+# to the top during the start-up, and the overshoot then drives it to the bottom
+FAST = {"gain": 20000.0, "zeros": [5000.0, 10000.0], "poles": [100e3]}
 STATE_TOL = 1e-10    # relative to the largest value of the quantity in the run
 DUTY_TOL = 1e-10     # fraction of the period
+EPS = np.finfo(float).eps
 
 
 def rail(control, vin=12.0, R=0.66, L=4.7e-6, C=47e-6, esr=0.005, dcr=0.01, cycles=250,
@@ -89,6 +99,18 @@ CASES = {
         lambda: (rail(analog("peak-current", compensator={"gain": 3000.0, "zeros": [2000.0]},
                              current_sense=0.1, slope_compensation=2e4, min_on_time=100e-9,
                              soft_start=2e-4), low_diode=Diode(0.4, 0.01), cycles=300), 300),
+    "integrator held at the lower limit, light load, diode emulation":
+        lambda: (rail(analog(), R=100.0, strategy="diode-emulation", cycles=1200), 1200),
+    "fast integrator held at both limits, forced PWM":
+        lambda: (rail(analog(compensator=FAST), C=220e-6, cycles=150), 150),
+}
+# the integrator holds each case must show: [(hold, at least this many periods), ...]
+HOLDS = {
+    "current limit, no soft start": [(HELD_HIGH, 100)],
+    "integrator held at the lower limit, light load, diode emulation":
+        [(HELD_LOW, 500), (FREE, 300)],
+    "fast integrator held at both limits, forced PWM":
+        [(HELD_HIGH, 3), (FREE, 10), (HELD_LOW, 10), (FREE, 100)],
 }
 
 
@@ -107,14 +129,16 @@ def worst(a, b):
 
 # -- the reference itself ---------------------------------------------------------------
 
-@pytest.mark.parametrize("spec", [PI, TYPE2, TYPE3,
+@pytest.mark.parametrize("spec", [PI, TYPE2, TYPE3, FAST,
                                   {"gain": 0.5, "zeros": [3e3], "poles": [40e3],
                                    "integrator": False}])
 def test_reference_compensator_is_the_table_transfer_function(spec):
-    """The reference's own realisation of Gc (numpy polynomials, scipy tf2ss,
-    rescaled) has the frequency response of the formula written out term by term
+    """The reference's own realisation of Gc (integrator state, then a cascade of
+    first-order sections) has the frequency response of the formula written out term by term
     (Erickson & Maksimovic ch. 9), evaluated with python-control; its polynomials
-    are those the project reads from the same table (bucksim.control.compensator_tf)."""
+    are those the project reads from the same table (bucksim.control.compensator_tf).
+    With an integrator, the first state is a pure integrator of gain x e (the
+    anti-windup contract's x_I)."""
     Ac, Bc, Cc, Dc = compensator_ss(spec)
     sys = ct.ss(Ac, Bc[:, None], Cc[None, :], [[Dc]])
     for f in np.logspace(1, 6, 11):
@@ -123,25 +147,39 @@ def test_reference_compensator_is_the_table_transfer_function(spec):
         g *= np.prod([1 + s / (2 * math.pi * z) for z in spec.get("zeros", [])])
         g /= np.prod([1 + s / (2 * math.pi * p) for p in spec.get("poles", [])])
         assert complex(ct.evalfr(sys, s)) == pytest.approx(g, rel=1e-12)
+    if spec.get("integrator", True):
+        assert np.all(Ac[0] == 0.0) and Bc[0] == spec["gain"]
     num, den = compensator_polynomials(spec)
     pnum, pden = compensator_tf(spec)
     assert np.allclose(num, pnum, rtol=1e-14, atol=0) and np.allclose(den, pden, rtol=1e-14,
                                                                        atol=0)
 
 
-def test_reference_integrators_agree():
+@pytest.mark.parametrize("name", ["voltage-mode type II, forced PWM, dead time, soft start",
+                                  "fast integrator held at both limits, forced PWM"])
+def test_reference_integrators_agree(name):
     """solve_ivp (DOP853) against the exact augmented exponential (scipy expm, Van Loan
     1978) on the same switching schedule; the comparator is zero on the exact solution
-    at each turn-off it ends; with the on-times found, the plant alone (reference_sim's
-    open-loop expm solver) reproduces every period."""
-    sc, n, ref, tr, _ = case("voltage-mode type II, forced PWM, dead time, soft start")
+    at each turn-off it ends, x_I is on its limit where a hold starts and the error is
+    zero where one ends (the hold rule, Astrom & Hagglund ch. 3); with the on-times
+    found, the plant alone (reference_sim's open-loop expm solver) reproduces every
+    period."""
+    sc, n, ref, tr, _ = case(name)
     exact = ref.replay_expm(tr)
     z = np.array([exact[t] for t in tr.t[1:]])
     assert np.max(np.abs(z - tr.z[1:]) / np.abs(tr.z).max(axis=0)) < 1e-11
-    for k in np.flatnonzero((tr.duty > 0) & (tr.duty < sc.control.max_duty)):
+    # (t_max - t_k) / T may round below max_duty: a pulse ended by max duty is no residual
+    for k in np.flatnonzero((tr.duty > 0) & (tr.duty < sc.control.max_duty * (1 - 1e-12))):
         t_off = tr.t[k] + tr.duty[k] * T
         # ramp slope is ramp / T: the residual over the ramp is the timing error in periods
         assert abs(ref.comparator(t_off, exact[t_off], tr.t[k])) / sc.control.ramp < 1e-11
+    lo, hi = integrator_limits(ref.loop)
+    for t, hold in tr.holds:
+        if hold == FREE:
+            assert abs(ref.e(t, exact[t])) / sc.control.reference < 1e-11
+        else:
+            limit = hi if hold == HELD_HIGH else lo
+            assert abs(exact[t][ref.ix] - limit) < 1e-12 * max(1.0, abs(limit))
     c = ref.c
     for k in range(n):
         if tr.duty[k] > 0:
@@ -153,9 +191,10 @@ def test_reference_integrators_agree():
 
 @pytest.mark.parametrize("name", list(CASES))
 def test_waveforms_match_reference(name):
-    """iL and vo at every clock instant, the duty and the compensator output u(t_k) of
-    every period agree with the independent reference (solve_ivp, scipy) to 1e-10
-    (states and u relative to their largest value, duty in periods)."""
+    """iL, vo and the integrator state x_I (the engine's "w1") at every clock instant,
+    the duty and the compensator output u(t_k) of every period agree with the
+    independent reference (solve_ivp, scipy) to 1e-10 (states and u relative to their
+    largest value, duty in periods)."""
     sc, n, ref, tr, run = case(name)
     assert run.success and len(run.duty) == n and len(run.control_output) == n
     x = run.at(tr.t)
@@ -168,6 +207,8 @@ def test_waveforms_match_reference(name):
     assert d.max() < DUTY_TOL, f"duty differs by {d.max():.2e} T in period {np.argmax(d)}"
     err, k = worst(run.control_output, tr.u)
     assert err < STATE_TOL, f"u(t_k) differs by {err:.2e} (relative) in period {k}"
+    err, k = worst(x[:, run.stage.state_names.index("w1")], tr.z[:, ref.ix])
+    assert err < STATE_TOL, f"x_I differs by {err:.2e} (relative) at t_{k}"
     # a period without a pulse in the reference has none in the engine, and back
     assert np.array_equal(run.duty == 0.0, tr.duty == 0.0)
 
@@ -185,6 +226,41 @@ def test_waveform_cases_cover_their_features():
     assert np.sum(np.isclose(tr.duty, 0.05, rtol=1e-9)) > 0     # blanking ends the pulse
     _, _, _, tr, _ = case("peak-current D > 0.5 with slope compensation, forced PWM")
     assert tr.duty[-20:].min() > 0.5
+
+
+@pytest.mark.parametrize("name", list(CASES))
+def test_engine_integrator_stays_within_its_limits(name):
+    """Anti-windup contract (conditional integration, Astrom & Hagglund ch. 3): the
+    engine's integrator state never leaves [0, Dmax Vm] (voltage mode) or [0, inf)
+    (peak-current mode) by more than rounding, at any segment start nor on a grid of
+    16 points per period."""
+    _, n, ref, _, run = case(name)
+    j = run.stage.state_names.index("w1")
+    lo, hi = integrator_limits(ref.loop)
+    w = np.concatenate([run.segments.x0[:, j],
+                        run.at(np.linspace(0.0, n * T, 16 * n + 1))[:, j]])
+    tol = 8 * EPS * (hi if math.isfinite(hi) else np.abs(w).max())
+    assert w.min() >= lo - tol, f"integrator {w.min():.3e} V below {lo}"
+    assert w.max() <= hi + tol, f"integrator {w.max():.17g} V above {hi}"
+
+
+@pytest.mark.parametrize("name", list(HOLDS))
+def test_integrator_holds_where_the_reference_holds(name):
+    """The reference's integrator goes through the holds the case is built for (so the
+    agreement above covers them), and the engine's integrator state sits on the same
+    limit, to rounding, at every clock instant inside each of the reference's holds."""
+    _, _, ref, tr, run = case(name)
+    lo, hi = integrator_limits(ref.loop)
+    edges = [t for t, _ in tr.holds] + [tr.t[-1]]
+    assert [h for _, h in tr.holds] == [h for h, _ in HOLDS[name]]
+    w1 = run.at(tr.t)[:, run.stage.state_names.index("w1")]
+    for (t0, hold), t1, (_, periods) in zip(tr.holds, edges[1:], HOLDS[name]):
+        assert t1 - t0 > periods * T, (hold, t0 / T, t1 / T)
+        if hold != FREE:
+            inside = (tr.t > t0) & (tr.t < t1)
+            limit = hi if hold == HELD_HIGH else lo
+            assert np.all(tr.z[inside, ref.ix] == limit)
+            assert np.max(np.abs(w1[inside] - limit)) <= 8 * EPS * max(1.0, abs(limit))
 
 
 @pytest.mark.parametrize("name", ["diode emulation, light load, zero-current events",

@@ -64,6 +64,7 @@ def test_stage_rows_are_the_error_amplifier_equations():
     sc = bucksim.load_scenario(DEMO)
     st = Stage(sc)
     assert st.state_names == ("iL", "vC", "w1", "w2", "w3", "vref")
+    assert st.n_modes == 2 and st.matrices.shape[0] == 2 * N_CONDUCTION * len(st.levels)
     plain = Stage(dataclasses.replace(sc, control=Control(duty=0.15)))
     H, ctl = sc.control.sense_gain, sc.control
     r = analog_realization(ctl.compensator)
@@ -80,9 +81,12 @@ def test_stage_rows_are_the_error_amplifier_equations():
         vo = st.signal("vo", s)
         e_row = -H * vo
         e_row[5] += H                               # + H vref
+        held = (s // N_CONDUCTION) % st.n_modes
         for i in range(3):
             want = r.B[i] * e_row
             want[2:5] += r.A[i]
+            if held and i == 0:
+                want[:] = 0.0      # anti-windup: the integrator (first section) holds
             assert np.allclose(M[2 + i], want, rtol=1e-15, atol=0)
         slope = ctl.reference / ctl.soft_start if t < ctl.soft_start else 0.0
         assert M[5, -1] == slope and not np.any(M[5, :-1])
@@ -168,3 +172,39 @@ def test_analog_and_digital_agree_when_the_loop_is_slow():
     assert ss_a.success and ss_d.success
     assert ss_a.x[:2] == pytest.approx(ss_d.x[:2], rel=5e-3)
     assert a.duty[-1] == pytest.approx(d.duty[-1], rel=0.05)
+
+
+def test_integrator_holds_at_its_limits_exactly():
+    """Anti-windup (conditional integration, common practice): a start-up overshoot
+    into a light load drives the integrator to its lower limit, where it holds
+    exactly (its row of the held systems is zero, checked against scipy's expm of
+    those systems) while the error stays negative; it never leaves [0, max_duty ramp]."""
+    from bucksim.parts import (Capacitor, Diode, Inductor, Load, Mosfet, RunSettings,
+                               Scenario, Supply, Switching)
+
+    hs = Mosfet(0.01, Diode(0.7, 0.01, section="high_side.body_diode"), section="high_side")
+    ls = Mosfet(0.005, Diode(0.7, 0.01, section="low_side.body_diode"), section="low_side")
+    ctl = Control(mode="voltage-mode", reference=3.3, compensator={"gain": 2000.0,
+                                                                 "zeros": [2000.0]},
+                  implementation="analog")
+    sc = Scenario("hold test", Supply(12.0), Switching(500e3, "diode-emulation", (20e-9, 20e-9)),
+                  Inductor(4.7e-6, 0.01), Capacitor(47e-6, 0.005), hs, ls, Load(330.0), ctl,
+                  RunSettings(cycles=1500))
+    run = bucksim.simulate(sc)
+    st = run.stage
+    seg = run.segments
+    held = (seg.system // N_CONDUCTION) % st.n_modes == 1
+    assert held.sum() > 100                      # the hold happened, for many segments
+    lo, hi = st.integrator_limits()
+    w = seg.x0[:, 2]
+    assert np.all(w[held] == lo)                 # snapped to the limit and held there
+    assert w.min() >= lo - 1e-12 and w.max() <= hi + 1e-12
+    for k in np.nonzero(held)[0][[0, 50, -1]]:
+        z0 = np.append(seg.x0[k], 1.0)
+        z1 = expm(run.table.matrices[seg.system[k]] * seg.dt[k]) @ z0
+        assert z1[2] == z0[2]
+    # the overshoot that drove it there, and still decaying through 330 ohm
+    t = np.linspace(0.0, sc.duration, 3001)
+    vo = run.at(t, "vo")
+    assert vo.max() > 3.6 and vo[-1] > 3.3
+    assert run.summary().to_dict()["energy_balance_error"] < 1e-9

@@ -200,13 +200,20 @@ class LoopArgs:
     max_duty: float = 1.0
     min_on: float = 0.0
     skip: bool = False
+    n_modes: int = 1
+    i_w: int = -1
+    w_lo: float = -np.inf
+    w_hi: float = np.inf
+    Ce: np.ndarray | None = None
 
     def kernel_args(self):
         return (self.control, self.peak, self.on_times, self.Cvo, float(self.reference),
                 float(self.soft_start), float(self.sense_gain), self.Ad, self.Bd, self.Cd,
                 float(self.Dd), self.w, self.queue, int(self.duty_bits), self.Cu, self.Cthr,
                 float(self.thr_ramp), float(self.ramp_v), float(self.ri), float(self.se),
-                float(self.i_limit), float(self.max_duty), float(self.min_on), bool(self.skip))
+                float(self.i_limit), float(self.max_duty), float(self.min_on), bool(self.skip),
+                int(self.n_modes), int(self.i_w), float(self.w_lo), float(self.w_hi),
+                self.Ce if self.Ce is not None else np.zeros((1, self.Cthr.shape[1])))
 
 
 def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_end, sink=None,
@@ -236,16 +243,25 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
         c_stop = min(n_cycles, c + chunk_cycles)
         k = c_stop - c
         # per period: two high-side pieces (blanked, live) and each off phase split
-        # at most once by a zero-current event (8 rows; asynchronous 4), plus
-        # the splits at level changes
-        bufs = segment_buffers(k * (8 if strategy != 0 else 4) + 2 * len(level_times) + 8, n)
-        dl, ul = np.full(k, np.nan), np.full(k, np.nan)
-        nseg, level, status, t = run_cycles(
-            table.matrices, table.exponentials, table.steps, P, nominal, table.guard,
-            table.taylor_gap, T, strategy, float(tf), float(tr), level_times, level, z, c,
-            c_stop, float(t_end), *args, *bufs, dl, ul)
-        if status == STATUS_FULL:  # cannot happen with the bound above; keep it loud
-            raise RuntimeError("segment buffer overflow in the engine (bug)")
+        # at most once by a zero-current event (8 rows; asynchronous 4), plus the
+        # splits at level changes; an analog integrator's holds add a few more
+        rows = (8 if strategy != 0 else 4) * controller.n_modes
+        saved = (z.copy(), controller.w.copy(), controller.queue.copy(), level)
+        while True:
+            bufs = segment_buffers(k * rows + 2 * len(level_times) + 8, n)
+            dl, ul = np.full(k, np.nan), np.full(k, np.nan)
+            nseg, level_out, status, t = run_cycles(
+                table.matrices, table.exponentials, table.steps, P, nominal, table.guard,
+                table.taylor_gap, T, strategy, float(tf), float(tr), level_times, level, z, c,
+                c_stop, float(t_end), *args, *bufs, dl, ul)
+            if status != STATUS_FULL:
+                level = level_out
+                break
+            # more events than the bound allows (e.g. many integrator holds): run
+            # the chunk again from its start with a larger buffer
+            z[:], controller.w[:], controller.queue[:], level = (saved[0], saved[1], saved[2],
+                                                                  saved[3])
+            rows *= 2
         piece = tuple(b[:nseg] for b in bufs)
         if sink is not None:
             sink(*piece)

@@ -78,9 +78,12 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
         Cthr = -Cu
         if peak:
             Cthr[:, 0] += ctl.current_sense
+        w_lo, w_hi = stage.integrator_limits()
+        Ce = np.array([stage.error_row(lv) for lv in range(len(stage.levels))])
         args = LoopArgs(CONTROL_ANALOG, Cu=Cu, Cthr=np.ascontiguousarray(Cthr),
                         thr_ramp=float(ctl.slope_compensation) if peak else float(ctl.ramp) / T,
-                        ri=float(ctl.current_sense), **common)
+                        ri=float(ctl.current_sense), n_modes=stage.n_modes,
+                        i_w=stage.integrator_index, w_lo=w_lo, w_hi=w_hi, Ce=Ce, **common)
         res, duty, u = run_chunks(stage, table, P, nominal, x0, args, n_cycles, t_end, sink,
                                   chunk_cycles, progress)
         return res, ControllerState(np.zeros(0), np.zeros(0)), duty, u

@@ -96,6 +96,7 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                level_times, level, z, c_start, c_stop, t_end, control, peak, on_times,
                Cvo, reference, soft_start, sense_gain, Ad, Bd, Cd, Dd, w, queue, duty_bits,
                Cu, Cthr, thr_ramp, ramp_v, ri, se, i_limit, max_duty, min_on, skip,
+               n_modes, i_w, w_lo, w_hi, Ce,
                seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, log_duty, log_u):
     """Simulate periods ``c_start .. c_stop-1`` from state ``z`` (updated in place).
 
@@ -104,6 +105,12 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     (``nan`` in open loop). ``w`` and ``queue`` (digital controller) are
     updated in place so a caller can continue in the next chunk. Returns
     ``(n_segments, level, status, t)``.
+
+    Analog anti-windup (``n_modes = 2``): the integrator state ``z[i_w]``
+    holds while it sits at ``w_lo`` or ``w_hi`` and the error ``Ce[level] . z``
+    pushes it further out (the stage's second copy of each system, with the
+    integrator's row zeroed). Reaching a limit and the error changing sign
+    are events located like the others.
     """
     n = seg_x0.shape[1]
     m = z.shape[0]
@@ -112,8 +119,15 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     work = np.empty(m)
     zs = np.empty(m)
     zs2 = np.empty(m)
+    zst = np.empty(m)
+    zh = np.empty(m)
     e_il = np.zeros(m)
     e_il[0] = 1.0
+    e_w = np.zeros(m)
+    if i_w >= 0:
+        e_w[i_w] = 1.0
+    held = 0
+    mode_fixed = False
     poly = np.empty((TAYLOR_ORDER + 1, m + 1))
     wnew = np.empty(w.shape[0])
     n_levels = level_times.shape[0]
@@ -222,7 +236,14 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                     t_stop = level_times[level + 1]
                 if t_end < t_stop:
                     t_stop = t_end
-                s = level * N_CONDUCTION + cond
+                fresh = mode_fixed     # this segment starts at a hold event
+                if n_modes == 2:
+                    if not mode_fixed:
+                        e_now = crossing_value(Ce[level], z, t, 0.0, 0.0, t)
+                        held = 1 if ((z[i_w] >= w_hi and e_now > 0.0)
+                                     or (z[i_w] <= w_lo and e_now < 0.0)) else 0
+                    mode_fixed = False
+                s = (level * n_modes + held) * N_CONDUCTION + cond
                 if nseg >= cap:
                     return nseg, level, STATUS_FULL, t
                 # the analog comparator's row follows the level: a load step moves vo
@@ -240,6 +261,9 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                     seg_x0[nseg, i] = z[i]
                 for i in range(m):
                     zs[i] = z[i]
+                if n_modes == 2:
+                    for i in range(m):
+                        zst[i] = z[i]
                 d = t_stop - t
                 if whole_ok and t == t_ph and t_stop == t_ph_end:
                     apply(P, s, p, z, tmp)
@@ -277,6 +301,66 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                                 tz = t2
                                 for i in range(m):
                                     zs[i] = zs2[i]
+                hold_event = 0
+                if n_modes == 2:
+                    # the integrator's limits and the error's sign compete with the
+                    # events above: search up to the earliest of those
+                    t_h = tz if tz >= 0.0 else t_stop
+                    zb = zs if tz >= 0.0 else z
+                    th = -1.0
+                    wv = zst[i_w]
+                    for kind in range(1, 4):
+                        if held == 0 and kind == 1 and np.isfinite(w_hi) and wv <= w_hi:
+                            hrow, hlev, hsign = e_w, w_hi, -1.0
+                        elif held == 0 and kind == 2 and np.isfinite(w_lo) and wv >= w_lo:
+                            hrow, hlev, hsign = e_w, w_lo, 1.0
+                        elif held == 1 and kind == 3:
+                            hrow, hlev, hsign = Ce[level], 0.0, 1.0 if wv >= w_hi else -1.0
+                        else:
+                            continue
+                        if t_h <= t:
+                            continue
+                        if kind < 3:
+                            # the integrator's own row: the cheap test written out
+                            if not (t_h - t > guard or hsign * (zb[i_w] - hlev) <= 0.0
+                                    or (hsign * derivative(Ms, s, zst, i_w) < 0.0
+                                        and hsign * derivative(Ms, s, zb, i_w) > 0.0)):
+                                continue
+                        elif not _needs_search(Ms, s, hrow, zst, zb, t_h, t_h - t, guard,
+                                               hsign, hlev, 0.0, t):
+                            continue
+                        for i in range(m):
+                            zs2[i] = zst[i]
+                        t3 = find_zero(Ms, E, h, s, zs2, zb, t, t_h, hsign, guard, tmp, trial,
+                                       work, hrow, hlev, 0.0, t, False, taylor_gap, poly)
+                        if t3 >= 0.0 and (th < 0.0 or t3 < th):
+                            th = t3
+                            hold_event = kind
+                            for i in range(m):
+                                zh[i] = zs2[i]
+                    # a switch back at the very instant of the last one would be
+                    # rounding of that event's crossing, not a new one: ignore it
+                    if th >= 0.0 and (tz < 0.0 or th < tz) and (th > t or not fresh):
+                        tz = th
+                        for i in range(m):
+                            zs[i] = zh[i]
+                    else:
+                        hold_event = 0
+                if hold_event > 0:
+                    # the integrator starts or stops holding; the gate phase goes on
+                    for i in range(m):
+                        z[i] = zs[i]
+                    if hold_event == 1:
+                        z[i_w] = w_hi
+                    elif hold_event == 2:
+                        z[i_w] = w_lo
+                    held = 1 if hold_event < 3 else 0
+                    mode_fixed = True
+                    if tz > t:          # (a hold starting at t itself leaves no segment)
+                        seg_dt[nseg] = tz - t
+                        nseg += 1
+                    t = tz
+                    continue
                 if tz >= 0.0:
                     # the segment ends at the event; zs holds the state there
                     for i in range(m):
