@@ -133,3 +133,24 @@ def test_general_event_row_matches_brentq(taylor):
                    False, table.taylor_gap if taylor else 0.0)
     assert abs(tz - ref) < 1e-12 * T
     assert np.allclose(z, expm(M * ref) @ za, rtol=1e-12, atol=1e-12)
+
+
+def test_event_already_at_zero_with_flat_start_is_found_at_the_start():
+    """An event function that starts exactly at zero with zero slope and then
+    leaves its side (here vC of an LC tank released with iL = 0: vC' = 0, vC'' < 0,
+    circuit theory) has its first zero at the start: the search must not run on to
+    the end of the bracket, which is where a stale integrator limit came from."""
+    L, C = 1e-6, 1e-6
+    M = np.array([[0, -1 / L, 0], [1 / C, 0, 0], [0, 0, 0]])
+    table = build_table(M[None], T)
+    za = np.array([0.0, 1.0, 1.0])
+    b = 0.05 * T
+    zb = expm(M * b) @ za
+    assert zb[1] < 1.0
+    c = np.array([0.0, 1.0, 0.0])
+    for gap in (0.0, table.taylor_gap):
+        z = za.copy()
+        tz = find_zero(table.matrices, table.exponentials, table.steps, 0, z, zb, 0.0, b, 1.0,
+                       table.guard, np.empty(6), np.empty(3), np.empty(3), c, 1.0, 0.0, 0.0,
+                       False, gap)
+        assert tz == 0.0 and np.array_equal(z, za)

@@ -127,7 +127,10 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     if i_w >= 0:
         e_w[i_w] = 1.0
     held = 0
-    mode_fixed = False
+    # a hold ends where the error has crossed zero by e_band [V]: far below any
+    # physical error, yet enough that the integrator always leaves the limit
+    # after a release, so rounding at the crossing cannot bring the hold back
+    e_band = 1e-12 * max(abs(reference) * sense_gain, 1.0)
     poly = np.empty((TAYLOR_ORDER + 1, m + 1))
     wnew = np.empty(w.shape[0])
     n_levels = level_times.shape[0]
@@ -236,13 +239,13 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                     t_stop = level_times[level + 1]
                 if t_end < t_stop:
                     t_stop = t_end
-                fresh = mode_fixed     # this segment starts at a hold event
                 if n_modes == 2:
-                    if not mode_fixed:
-                        e_now = crossing_value(Ce[level], z, t, 0.0, 0.0, t)
-                        held = 1 if ((z[i_w] >= w_hi and e_now > 0.0)
-                                     or (z[i_w] <= w_lo and e_now < 0.0)) else 0
-                    mode_fixed = False
+                    # the hold rule, with the release band: a hold goes on until
+                    # the error is e_band past zero (e.g. after a load step)
+                    e_now = crossing_value(Ce[level], z, t, 0.0, 0.0, t)
+                    band = e_band if held == 1 else 0.0
+                    held = 1 if ((z[i_w] >= w_hi and e_now > -band)
+                                 or (z[i_w] <= w_lo and e_now < band)) else 0
                 s = (level * n_modes + held) * N_CONDUCTION + cond
                 if nseg >= cap:
                     return nseg, level, STATUS_FULL, t
@@ -315,7 +318,8 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                         elif held == 0 and kind == 2 and np.isfinite(w_lo) and wv >= w_lo:
                             hrow, hlev, hsign = e_w, w_lo, 1.0
                         elif held == 1 and kind == 3:
-                            hrow, hlev, hsign = Ce[level], 0.0, 1.0 if wv >= w_hi else -1.0
+                            hrow, hsign = Ce[level], 1.0 if wv >= w_hi else -1.0
+                            hlev = -hsign * e_band
                         else:
                             continue
                         if t_h <= t:
@@ -338,9 +342,7 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                             hold_event = kind
                             for i in range(m):
                                 zh[i] = zs2[i]
-                    # a switch back at the very instant of the last one would be
-                    # rounding of that event's crossing, not a new one: ignore it
-                    if th >= 0.0 and (tz < 0.0 or th < tz) and (th > t or not fresh):
+                    if th >= 0.0 and (tz < 0.0 or th < tz):
                         tz = th
                         for i in range(m):
                             zs[i] = zh[i]
@@ -355,7 +357,6 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                     elif hold_event == 2:
                         z[i_w] = w_lo
                     held = 1 if hold_event < 3 else 0
-                    mode_fixed = True
                     if tz > t:          # (a hold starting at t itself leaves no segment)
                         seg_dt[nseg] = tz - t
                         nseg += 1

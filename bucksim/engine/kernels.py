@@ -177,11 +177,11 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_r
             gap -= h[k]
         else:
             gap = h[k]
-    return taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly)
+    return taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly, sign0)
 
 
 @njit(cache=True, inline="always")
-def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None):
+def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None, sign0=0.0):
     """Zero of the event function in (t, t + gap] from its Taylor series.
 
     Used once the bracket is below the table's last step, where the series
@@ -189,7 +189,9 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None):
     is exact to rounding: the event function is then a polynomial in ``u``,
     solved by Newton steps kept inside the bracket (bisection when a step
     leaves it). ``poly`` is an optional work array of shape
-    ``(TAYLOR_ORDER + 1, m + 1)`` (allocated when omitted).
+    ``(TAYLOR_ORDER + 1, m + 1)`` (allocated when omitted). ``sign0`` is the
+    side the function starts on (0: take the sign of its value at ``t``); a
+    function already at or past zero at ``t`` has its zero at ``t``.
     """
     m = z.shape[0]
     n = TAYLOR_ORDER
@@ -216,11 +218,16 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None):
     v[1, m] += ramp
     g = v[:, m]
     lo, hi = 0.0, gap          # g keeps sign0's sign at lo, the other at hi
-    sign_lo = 1.0 if g[0] > 0.0 else -1.0
+    sign_lo = sign0 if sign0 != 0.0 else (1.0 if g[0] > 0.0 else -1.0)
     u = 0.5 * gap
+    if sign_lo * g[0] <= 0.0:
+        gap = 0.0              # already there: the first zero is at t itself
+    if gap == 0.0:
+        g[1] = 0.0
+        u = 0.0
     if g[1] != 0.0:
         u = min(max(-g[0] / g[1], 0.0), gap)
-    for _ in range(80):
+    for _ in range(80 if gap > 0.0 else 0):
         f = g[n]
         df = n * g[n]
         for j in range(n - 1, 0, -1):
@@ -292,12 +299,35 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
         da = sign0 * crossing_slope(Ms, s, c, za, ramp)
         db = sign0 * crossing_slope(Ms, s, c, work, ramp)
         if da < 0.0 and db > 0.0:
-            te = t0 + (t1 - t0) * da / (da - db)
-            for i in range(m):
-                trial[i] = za[i]
-            advance(Ms, E, h, s, trial, te - t0, tmp)
-            if sign0 * crossing_value(c, trial, te, level, ramp, t_ref) <= 0.0:
-                width = te - t0
+            # the function turns toward zero and back inside: locate its extremum
+            # (a zero of the slope) on the exact solution, Illinois regula falsi,
+            # and look for a crossing there
+            ta, tb_, fa, fb = t0, t1, da, db
+            side = 0
+            for _ in range(60):
+                te = ta + (tb_ - ta) * fa / (fa - fb)
+                if not (ta < te < tb_):
+                    te = 0.5 * (ta + tb_)
+                for i in range(m):
+                    trial[i] = za[i]
+                advance(Ms, E, h, s, trial, te - t0, tmp)
+                if sign0 * crossing_value(c, trial, te, level, ramp, t_ref) <= 0.0:
+                    width = te - t0
+                    break
+                fe = sign0 * crossing_slope(Ms, s, c, trial, ramp)
+                if fe < 0.0:
+                    ta, fa = te, fe
+                    if side == -1:
+                        fb *= 0.5
+                    side = -1
+                else:
+                    tb_, fb = te, fe
+                    if side == 1:
+                        fa *= 0.5
+                    side = 1
+                if tb_ - ta <= 1e-13 * (t1 - t0) or fe == 0.0:
+                    break
+            if width >= 0.0:
                 break
         for i in range(m):
             za[i] = work[i]
