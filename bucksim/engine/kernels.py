@@ -311,8 +311,14 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
                 for i in range(m):
                     trial[i] = za[i]
                 advance(Ms, E, h, s, trial, te - t0, tmp)
-                if sign0 * crossing_value(c, trial, te, level, ramp, t_ref) <= 0.0:
+                ge = sign0 * crossing_value(c, trial, te, level, ramp, t_ref)
+                if ge <= 0.0:
                     width = te - t0
+                    break
+                # between ta and tb the slope runs from fa < 0 to fb > 0: the function
+                # cannot fall below ge - max|slope| (tb - ta) there (twice that for
+                # margin: the slope need not be monotone in between)
+                if ge > 2.0 * max(-fa, fb) * (tb_ - ta):
                     break
                 fe = sign0 * crossing_slope(Ms, s, c, trial, ramp)
                 if fe < 0.0:
