@@ -194,8 +194,11 @@ class Stage:
 
     def error_row(self, level: int) -> np.ndarray:
         """Row with the loop error ``e = H (vref - vo) = row @ z`` at ``level`` [V]."""
+        return self._error_row(self.levels[level])
+
+    def _error_row(self, lev: Level) -> np.ndarray:
         gain = self.scenario.control.sense_gain
-        row = -gain * self._embed(self._vo(self.levels[level]))
+        row = -gain * self._embed(self._vo(lev))
         row[self.n - 1] += gain
         return row
 
@@ -232,12 +235,8 @@ class Stage:
 
     def control_output(self, level: int) -> np.ndarray:
         """Row ``c_u`` with the analog compensator output ``u = c_u @ z`` at ``level`` [V]."""
-        lev = self.levels[level]
-        k = self.n_controller
-        gain = self.scenario.control.sense_gain
-        row = -self.loop.D * gain * self._embed(self._vo(lev))
-        row[2:2 + k] += self.loop.C
-        row[2 + k] += self.loop.D * gain
+        row = self.loop.D * self.error_row(level)
+        row[2:2 + self.n_controller] += self.loop.C
         return row
 
     def _vsw(self, lev: Level, k: int, vo: np.ndarray):
@@ -266,13 +265,11 @@ class Stage:
         q = self.n_controller
         M = np.zeros((m, m))
         M[0], M[1] = self._embed(di), self._embed(dv)
-        # compensator: w' = Ac w + Bc H (vref - vo)
-        gain = self.scenario.control.sense_gain
-        vo_row = self._embed(vo)
+        # compensator: w' = Ac w + Bc e, e = H (vref - vo)
+        e_row = self._error_row(lev)
         for i in range(q):
-            M[2 + i] = -self.loop.B[i] * gain * vo_row
+            M[2 + i] = self.loop.B[i] * e_row
             M[2 + i, 2:2 + q] += self.loop.A[i]
-            M[2 + i, 2 + q] += self.loop.B[i] * gain
         M[2 + q, m - 1] = lev.ref_slope
         if held:
             M[2] = 0.0      # the integrator (first section) holds its value

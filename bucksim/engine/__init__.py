@@ -145,9 +145,7 @@ def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = 
         P = phase_exponentials(table.matrices, nominal)
         if phase_cache is not None:
             phase_cache[key] = P
-    m = stage.n + 1
-    controller = LoopArgs(control=CONTROL_OPEN, on_times=on_times, Cvo=np.zeros((1, m)),
-                          Cu=np.zeros((1, m)), Cthr=np.zeros((1, m)))
+    controller = LoopArgs(control=CONTROL_OPEN, on_times=on_times)
     result, _, _ = run_chunks(stage, table, P, nominal, x0, controller, n_cycles, t_end,
                               sink, chunk_cycles, progress)
     return result
@@ -206,14 +204,18 @@ class LoopArgs:
     w_hi: float = np.inf
     Ce: np.ndarray | None = None
 
-    def kernel_args(self):
-        return (self.control, self.peak, self.on_times, self.Cvo, float(self.reference),
+    def kernel_args(self, m: int):
+        """The kernel's controller arguments; absent rows become a dummy of width ``m``."""
+        def rows(a):
+            return np.zeros((1, m)) if a is None else a
+
+        return (self.control, self.peak, self.on_times, rows(self.Cvo), float(self.reference),
                 float(self.soft_start), float(self.sense_gain), self.Ad, self.Bd, self.Cd,
-                float(self.Dd), self.w, self.queue, int(self.duty_bits), self.Cu, self.Cthr,
-                float(self.thr_ramp), float(self.ramp_v), float(self.ri), float(self.se),
-                float(self.i_limit), float(self.max_duty), float(self.min_on), bool(self.skip),
-                int(self.n_modes), int(self.i_w), float(self.w_lo), float(self.w_hi),
-                self.Ce if self.Ce is not None else np.zeros((1, self.Cthr.shape[1])))
+                float(self.Dd), self.w, self.queue, int(self.duty_bits), rows(self.Cu),
+                rows(self.Cthr), float(self.thr_ramp), float(self.ramp_v), float(self.ri),
+                float(self.se), float(self.i_limit), float(self.max_duty), float(self.min_on),
+                bool(self.skip), int(self.n_modes), int(self.i_w), float(self.w_lo),
+                float(self.w_hi), rows(self.Ce))
 
 
 def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_end, sink=None,
@@ -233,7 +235,7 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
     level_times = np.array([lev.time for lev in stage.levels])
     z = np.append(stage.initial_state(x0), 1.0)
     n = stage.n
-    args = controller.kernel_args()
+    args = controller.kernel_args(n + 1)
     # the per-period logs serve a closed-loop Run in memory; streamed or open-loop
     # runs drop them so memory stays bounded by one chunk
     keep_logs = sink is None and controller.control != CONTROL_OPEN

@@ -67,12 +67,11 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
         P = phase_exponentials(table.matrices, nominal)
         if phase_cache is not None:
             phase_cache["closed"] = P
-    m = stage.n + 1
     peak = ctl.mode == "peak-current"
     common = dict(peak=peak, ramp_v=float(ctl.ramp), se=float(ctl.slope_compensation),
                   i_limit=np.inf if ctl.current_limit is None else float(ctl.current_limit),
                   max_duty=float(ctl.max_duty), min_on=float(ctl.min_on_time),
-                  skip=bool(ctl.pulse_skipping), Cvo=np.zeros((1, m)))
+                  skip=bool(ctl.pulse_skipping))
     if stage.analog:
         Cu = np.array([stage.control_output(lv) for lv in range(len(stage.levels))])
         Cthr = -Cu
@@ -89,12 +88,11 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
         return res, ControllerState(np.zeros(0), np.zeros(0)), duty, u
     state = initial_controller(compensator, ctl.delay) if state is None else state.copy()
     n_sys = table.matrices.shape[0]
-    common["Cvo"] = np.array([stage.signal("vo", s) for s in range(n_sys)])
     args = LoopArgs(CONTROL_DIGITAL, reference=float(ctl.reference),
                     soft_start=float(ctl.soft_start), sense_gain=float(ctl.sense_gain),
                     Ad=compensator.Ad, Bd=compensator.Bd, Cd=compensator.Cd, Dd=compensator.Dd,
                     w=state.w, queue=state.queue, duty_bits=int(ctl.duty_bits),
-                    Cu=np.zeros((1, m)), Cthr=np.zeros((1, m)),
+                    Cvo=np.array([stage.signal("vo", s) for s in range(n_sys)]),
                     ri=float(ctl.current_sense) if ctl.current_sense > 0 else 1.0, **common)
     res, duty, u = run_chunks(stage, table, P, nominal, x0, args, n_cycles, t_end, sink,
                               chunk_cycles, progress)

@@ -41,9 +41,9 @@ import numpy as np
 from numba import njit
 
 from .kernels import (ASYNC, EMULATION, GATE_HIGH, GATE_LOW, GATE_OFF, HIGH_DIODE, IDLE, LOW,
-                      LOW_DIODE, N_CONDUCTION, STATUS_DIVERGED, STATUS_FULL, STATUS_OK, advance, derivative,
-                      TAYLOR_ORDER, apply, conduction_for, crossing_slope, crossing_value,
-                      find_zero)
+                      LOW_DIODE, N_CONDUCTION, STATUS_DIVERGED, STATUS_FULL, STATUS_OK,
+                      TAYLOR_ORDER, advance, apply, conduction_for, crossing_slope,
+                      crossing_value, derivative, find_zero)
 
 CONTROL_OPEN, CONTROL_DIGITAL, CONTROL_ANALOG = 0, 1, 2
 N_PHASES = 5
@@ -242,7 +242,7 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                 if n_modes == 2:
                     # the hold rule, with the release band: a hold goes on until
                     # the error is e_band past zero (e.g. after a load step)
-                    e_now = crossing_value(Ce[level], z, t, 0.0, 0.0, t)
+                    e_now = _dot(Ce[level], z)
                     band = e_band if held == 1 else 0.0
                     held = 1 if ((z[i_w] >= w_hi and e_now > -band)
                                  or (z[i_w] <= w_lo and e_now < band)) else 0

@@ -220,14 +220,13 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None, s
     lo, hi = 0.0, gap          # g keeps sign0's sign at lo, the other at hi
     sign_lo = sign0 if sign0 != 0.0 else (1.0 if g[0] > 0.0 else -1.0)
     u = 0.5 * gap
-    if sign_lo * g[0] <= 0.0:
-        gap = 0.0              # already there: the first zero is at t itself
-    if gap == 0.0:
-        g[1] = 0.0
-        u = 0.0
     if g[1] != 0.0:
         u = min(max(-g[0] / g[1], 0.0), gap)
-    for _ in range(80 if gap > 0.0 else 0):
+    steps = 80
+    if sign_lo * g[0] <= 0.0 or gap <= 0.0:
+        u = 0.0                # already there: the first zero is at t itself
+        steps = 0
+    for _ in range(steps):
         f = g[n]
         df = n * g[n]
         for j in range(n - 1, 0, -1):
@@ -303,6 +302,7 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
             # (a zero of the slope) on the exact solution, Illinois regula falsi,
             # and look for a crossing there
             ta, tb_, fa, fb = t0, t1, da, db
+            sa, sb = da, db    # the slopes at ta, tb (fa, fb get Illinois-halved)
             side = 0
             for _ in range(60):
                 te = ta + (tb_ - ta) * fa / (fa - fb)
@@ -318,16 +318,16 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
                 # between ta and tb the slope runs from fa < 0 to fb > 0: the function
                 # cannot fall below ge - max|slope| (tb - ta) there (twice that for
                 # margin: the slope need not be monotone in between)
-                if ge > 2.0 * max(-fa, fb) * (tb_ - ta):
+                if ge > 2.0 * max(-sa, sb) * (tb_ - ta):
                     break
                 fe = sign0 * crossing_slope(Ms, s, c, trial, ramp)
                 if fe < 0.0:
-                    ta, fa = te, fe
+                    ta, fa, sa = te, fe, fe
                     if side == -1:
                         fb *= 0.5
                     side = -1
                 else:
-                    tb_, fb = te, fe
+                    tb_, fb, sb = te, fe, fe
                     if side == 1:
                         fa *= 0.5
                     side = 1
