@@ -112,26 +112,54 @@ def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
 STATUS_LOOP_UNSETTLED = 3
 
 
-def _check_loop_settles(run, last: int = 200):
-    """Flag a loop that ends limit-cycling between its duty limits.
+def loop_settle_verdict(control, duty, status, last: int = 200):
+    """Decide whether a closed loop ended limit-cycling between its duty limits.
 
     A stable loop ends with the duty near its operating value; a duty that
     still hits both 0 and ``max_duty`` within the last periods means the
-    loop is unstable (or the demand cannot be met). The run and its
-    segments are kept; ``status`` and ``message`` say what happened.
+    loop is unstable (or the demand cannot be met).
+
+    Parameters
+    ----------
+    control : Control
+        ``scenario.control`` (``max_duty``, ``pulse_skipping``).
+    duty : array_like
+        Per-period duty [-] (NaN where a period did not start).
+    status : int
+        The engine's status; only a completed run (0) is judged.
+    last : int
+        Periods at the end that are inspected.
+
+    Returns
+    -------
+    (status, message) : (int, str or None)
+        :data:`STATUS_LOOP_UNSETTLED` and a message when the loop did not
+        settle, else ``status`` unchanged and None.
     """
-    if run.status != 0:
-        return
-    ctl = run.scenario.control
-    d = run.duty[~np.isnan(run.duty)][-last:]
+    if status != 0 or duty is None:
+        return status, None
+    d = np.asarray(duty, dtype=float)
+    d = d[~np.isnan(d)][-last:]
     if d.shape[0] < min(last, 20):
-        return
+        return status, None
     low = np.mean(d <= 1e-12)
-    high = np.mean(d >= ctl.max_duty - 1e-9)
-    pinned_both = low > 0.1 and high > 0.1
-    if pinned_both and not ctl.pulse_skipping:
-        run.status = STATUS_LOOP_UNSETTLED
-        run.message = (f"control loop did not settle: in the last {d.shape[0]} periods the duty "
-                       f"sat at 0 in {100 * low:.0f} % and at max_duty ({ctl.max_duty:g}) in "
-                       f"{100 * high:.0f} % of them; the loop is likely unstable (check "
-                       f"control.compensator). Segments up to the end are kept.")
+    high = np.mean(d >= control.max_duty - 1e-9)
+    if low > 0.1 and high > 0.1 and not control.pulse_skipping:
+        return STATUS_LOOP_UNSETTLED, (
+            f"control loop did not settle: in the last {d.shape[0]} periods the duty "
+            f"sat at 0 in {100 * low:.0f} % and at max_duty ({control.max_duty:g}) in "
+            f"{100 * high:.0f} % of them; the loop is likely unstable (check "
+            f"control.compensator). Segments up to the end are kept.")
+    return status, None
+
+
+def _check_loop_settles(run, last: int = 200):
+    """Flag a run whose loop ends limit-cycling (see :func:`loop_settle_verdict`).
+
+    The run and its segments are kept; ``status`` and ``message`` say what
+    happened.
+    """
+    status, message = loop_settle_verdict(run.scenario.control, run.duty, run.status, last)
+    if message is not None:
+        run.status = status
+        run.message = message
