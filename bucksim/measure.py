@@ -1,18 +1,12 @@
 """Summary metrics from stored waveforms, by exact per-segment integration.
 
 Every metric is a linear or quadratic functional of the augmented state
-``z = [iL, vC, 1]``. Over one segment of system ``M`` and length ``d``
-
-.. math::
-
-    \\int_0^d z z^T\\,dt = \\mathrm{unvec}\\Big(\\int_0^d e^{(M \\oplus M)t}\\,dt
-    \\;(z_0 \\otimes z_0)\\Big),
-
-and the integral of the matrix exponential of the Kronecker sum is the
-upper-right block of ``expm([[M+M, I], [0, 0]] d)`` (Van Loan [1]_). Mean
-values come from the last column of the same matrix (``z`` ends in 1), so
-RMS values, losses, powers and the energy balance are exact to rounding.
-Extrema are located on the analytic solution (zeros of the derivative).
+``z = [iL, vC, 1]``, so it is a sum over segments of the exact moments
+``int z dt`` and ``int z z^T dt`` (:mod:`bucksim.moments`: block
+exponentials after Van Loan [1]_, taken about each system's equilibrium so
+that rounding is relative to each moment's own size). RMS values, losses,
+powers and the energy balance are therefore exact to rounding. Extrema are
+located on the analytic solution (zeros of the derivative).
 
 References
 ----------
@@ -25,10 +19,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.linalg import expm
 
 from .engine.kernels import evaluate
 from .losses import switching_energy
+from .moments import SegmentMoments
 from .stage import HIGH_DIODE, IDLE, LOW, LOW_DIODE
 from .summary import Summary
 
@@ -48,34 +42,6 @@ _ROWS_PER_PASS = 100_000
 #: Iteration cap of the safeguarded Newton refinement of a turning point
 #: (bisection alone reaches the spacing of double precision in <= 60).
 _REFINE_STEPS = 128
-
-
-class SecondMoments:
-    """Memoised ``Q(s, d) = int_0^d expm((M_s (+) M_s) t) dt`` per system and length."""
-
-    def __init__(self, matrices: np.ndarray):
-        self.matrices = matrices
-        self.m = matrices.shape[1]
-        self._cache: dict[tuple[int, float], np.ndarray] = {}
-
-    def q(self, s: int, d: float) -> np.ndarray:
-        key = (int(s), float(d))
-        hit = self._cache.get(key)
-        if hit is None:
-            m = self.m
-            M = self.matrices[s]
-            eye = np.eye(m)
-            ksum = np.kron(M, eye) + np.kron(eye, M)
-            big = np.zeros((2 * m * m, 2 * m * m))
-            big[: m * m, : m * m] = ksum
-            big[: m * m, m * m:] = np.eye(m * m)
-            hit = expm(big * d)[: m * m, m * m:]
-            self._cache[key] = hit
-        return hit
-
-    def moments(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
-        """``int z z^T dt`` over a segment of length ``d`` starting at ``z0``."""
-        return (self.q(s, d) @ np.kron(z0, z0)).reshape(self.m, self.m)
 
 
 def window_pieces(run, t_start: float):
@@ -101,8 +67,7 @@ def signal_mean(run, name: str, t_start: float | None = None,
                 t_stop: float | None = None) -> float:
     """Exact mean of a signal over ``[t_start, t_stop]`` [the signal's unit].
 
-    Per piece ``int z dt = G(d) z_a`` with ``G(d) = int_0^d expm(M t) dt``,
-    the upper-right block of ``expm([[M, I], [0, 0]] d)`` (Van Loan).
+    Per piece ``int z dt`` exactly (:meth:`bucksim.moments.SegmentMoments.first`).
     """
     seg = run.segments
     t_start = float(seg.t0[0]) if t_start is None else float(t_start)
@@ -111,19 +76,13 @@ def signal_mean(run, name: str, t_start: float | None = None,
     end = seg.t0[idx] + tau_b
     tau_b = np.where(end > t_stop, t_stop - seg.t0[idx], tau_b)
     sig = run.signal_table(name)
-    m = run.stage.n + 1
-    total, cache = 0.0, {}
+    mom = SegmentMoments(run.table.matrices)
+    total = 0.0
     for k, a, b, za in zip(idx, tau_a, tau_b, z_a):
         if b <= a:
             continue
         s = int(seg.system[k])
-        key = (s, float(b - a))
-        if key not in cache:
-            big = np.zeros((2 * m, 2 * m))
-            big[:m, :m] = run.table.matrices[s]
-            big[:m, m:] = np.eye(m)
-            cache[key] = expm(big * (b - a))[:m, m:]
-        total += float(sig[s] @ (cache[key] @ za))
+        total += float(sig[s] @ mom.first(s, za, b - a))
     return total / (t_stop - t_start)
 
 
@@ -399,13 +358,13 @@ def summarize(run, cycles: int | None = None) -> Summary:
     # every power signal lives on [iL, vC, 1], a block the controller states of an
     # analog loop do not feed within a segment: integrate that block alone
     keep = stage.plant_index
-    mom = SecondMoments(run.table.matrices[:, keep][:, :, keep])
+    mom = SegmentMoments(run.table.matrices[:, keep][:, :, keep])
     m = keep.shape[0]
     n_sys = run.table.matrices.shape[0]
     S = np.zeros((n_sys, m, m))
     systems = run.segments.system[idx]
     for s, z0, d in zip(systems, z_a[:, keep], tau_b - tau_a):
-        S[s] += mom.moments(s, z0, d)
+        S[s] += mom.second(s, z0, d)
     used = np.unique(systems)
 
     def integral(a: str, b: str | None = None) -> float:
@@ -436,15 +395,16 @@ def summarize(run, cycles: int | None = None) -> Summary:
         devices[name] = {"rms": rms(name), "mean": mean(name),
                          "conduction_loss": e / width, "switching_loss": 0.0}
         loss_total += e
-    e_dcr = stage.dcr * integral("iL", "iL")
+    # squares integrate to >= 0: clamp rounding of a current that is ~nothing
+    e_dcr = stage.dcr * max(integral("iL", "iL"), 0.0)
     devices["inductor"] = {"rms": rms("iL"), "mean": mean("iL"),
                            "conduction_loss": e_dcr / width, "switching_loss": 0.0}
-    e_esr = stage.esr * integral("ic", "ic")
+    e_esr = stage.esr * max(integral("ic", "ic"), 0.0)
     devices["output_capacitor"] = {"rms": rms("ic"), "mean": mean("ic"),
                                    "conduction_loss": e_esr / width, "switching_loss": 0.0}
     loss_total += e_dcr + e_esr
     if stage.rs > 0:
-        e_rs = stage.rs * integral("iin", "iin")
+        e_rs = stage.rs * max(integral("iin", "iin"), 0.0)
         devices["supply"] = {"rms": rms("iin"), "mean": mean("iin"),
                              "conduction_loss": e_rs / width, "switching_loss": 0.0}
         loss_total += e_rs
