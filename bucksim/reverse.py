@@ -44,7 +44,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import ScenarioError, SimulationError
-from .stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE
+from .stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, current_reverses
 from .units import format_si
 from .levels import (
     LoadLevel,
@@ -306,11 +306,13 @@ def _point(scenario, level):
     charge = _gauss_integral(run, supply, lambda get: -get("iin"))
     energy = _gauss_integral(run, supply, lambda get: -get("vin") * get("iin"))
     il_min = minimum_current(run)
-    scale = max(float(np.max(np.abs(run.segments.x0[:, 0]))), 1e-300)
+    # the largest iL: at a segment end or a sample (the maxima of a buck's iL
+    # sit at switching instants; the scale needs no more precision than that)
+    il_max = float(np.max(_il_samples(run)[0]))
     idle = bool(np.any((run.segments.conduction == IDLE) & (run.segments.dt > 1e-12 * T)))
     return ReversePoint(level=level, load_current=cycle_mean(run, "io"),
                         output_voltage=cycle_mean(run, "vo"), min_current=il_min,
-                        reverses=bool(il_min < -1e-9 * scale), negative_fraction=neg / T,
+                        reverses=current_reverses(il_min, il_max), negative_fraction=neg / T,
                         returned_charge=charge, returned_energy=energy,
                         mode="dcm" if idle else "ccm",
                         frequency=scenario.switching.frequency)

@@ -66,3 +66,43 @@ def test_digital_and_analog_current_limits_agree_in_blanking():
     assert t_off[0] == pytest.approx(t_off[1], rel=1e-12, abs=1e-12 * T)
     x = [r.at([t_off[0]])[0, :2] for r in runs]
     assert np.allclose(x[0], x[1], rtol=1e-11)
+
+
+# ----------------------------------------------------------------------------- reversal
+def _sink_rail(io):
+    """12 V, duty 0.3, 500 kHz, 4.7 uH, forced PWM, a current-sink load (invented)."""
+    hs = Mosfet(1e-3, Diode(0.7, 0.0, section="high_side"), section="high_side")
+    ls = Mosfet(1e-3, Diode(0.7, 0.0, section="low_side"), section="low_side")
+    return Scenario("reversal boundary", Supply(12.0), Switching(FS, "forced-pwm", (0.0, 0.0)),
+                    Inductor(4.7e-6, 0.0), Capacitor(47e-6, 0.0), hs, ls, Load(None, io),
+                    Control(duty=0.3), RunSettings(cycles=1))
+
+
+def test_summary_and_reverse_tool_agree_at_the_reversal_boundary():
+    """Loads that put the lowest iL just below zero, at 0.1x and 10x the one
+    threshold (bucksim.stage.REVERSE_CURRENT_THRESHOLD) of the current scale:
+    the summary's ``reverse_current`` and the reverse tool's ``reverses`` give the
+    same answer, and it is the threshold's. The boundary is found by secant steps
+    on the simulated minimum, starting from the closed form Io = dI / 2
+    (Erickson & Maksimovic ch. 2 and 5; forced PWM reverses below it: common
+    practice)."""
+    from bucksim.levels import periodic_run
+    from bucksim.reverse import reverse_current
+    from bucksim.stage import REVERSE_CURRENT_THRESHOLD
+
+    def extremes(io):
+        _, run = periodic_run(_sink_rail(io))
+        s = run.summary().to_dict()
+        return s["inductor_current"]["min"], s["inductor_current"]["max"], s
+
+    for factor, expect in ((0.1, False), (10.0, True)):
+        target = -factor * REVERSE_CURRENT_THRESHOLD
+        io = 3.6 * 0.7 / (4.7e-6 * FS) / 2       # dI / 2, lossless closed form
+        for _ in range(4):                        # iL shifts one-for-one with the load
+            lo, hi, s = extremes(io)
+            io -= lo - target * hi
+        lo, hi, s = extremes(io)
+        assert lo / hi == pytest.approx(target, rel=0.05)
+        point, = reverse_current(_sink_rail(io), load=[io]).points
+        assert point.reverses is expect
+        assert s["reverse_current"] is expect
