@@ -69,7 +69,15 @@ def test_overlap_energy_uses_the_exact_edge_currents():
     assert np.all(seg.conduction[on[on > 0] - 1] == LOW_DIODE)
 
 
-def test_energy_balance_closes_with_switching_and_core_losses():
+def test_energy_balance_certifies_the_waveform_integrals_with_switching_and_core_booked():
+    """What the energy-balance certificate covers (conservation of energy): the
+    conduction-loss integrals, the input and output energy integrals and the change
+    of stored energy, all from the exact waveforms, must balance to 1e-9 also when
+    switching and core losses are present. Those two are formulas evaluated at the
+    exact edge currents and flux, booked both as energy drawn from the supply and as
+    loss, so the balance cannot see an error in them; they are checked against
+    their own formulas elsewhere (test_overlap_energy_uses_the_exact_edge_currents,
+    the crosscheck rows, tests/test_coreloss.py)."""
     from bucksim.parts import CoreLoss
     sc = rail()
     sc = dataclasses.replace(sc, inductor=Inductor(22e-6, 0.01, core=CoreLoss(
@@ -94,7 +102,15 @@ def test_estimate_items_name_formula_and_source():
     budget = estimate(rail())
     for item in budget.items:
         assert item.formula and item.source
-    assert budget.total_loss == pytest.approx(sum(i.value for i in budget.items))
+    # the budget's total against an independent figure: the loss the simulated
+    # steady state measures as power drawn minus power delivered (conservation of
+    # energy); the closed-form items agree with the waveforms to 0.01 % here, so
+    # a dropped or doubled item (the smallest, gate charge, is 2.8 % of the
+    # total) shows
+    s = crosscheck(rail()).summary
+    measured = s["power"]["input"] - s["power"]["output"]
+    assert budget.total_loss == pytest.approx(measured, rel=1e-3)
+    assert budget.efficiency == pytest.approx(s["efficiency"], abs=1e-4)
 
 
 def test_zero_dead_time_counts_every_hard_turn_on():
