@@ -106,3 +106,80 @@ def test_summary_and_reverse_tool_agree_at_the_reversal_boundary():
         point, = reverse_current(_sink_rail(io), load=[io]).points
         assert point.reverses is expect
         assert s["reverse_current"] is expect
+
+
+# ----------------------------------------------------------------------------- transients
+def _ringing_start():
+    """Open loop from rest, no ESR (vo = vC is smooth, its peaks inside segments),
+    Q = R sqrt(C / L) ~ 6: the output rings down over a few hundred us."""
+    hs = Mosfet(0.01, Diode(0.7, 0.01, section="high_side.body_diode"), section="high_side")
+    ls = Mosfet(0.005, Diode(0.7, 0.01, section="low_side.body_diode"), section="low_side")
+    return Scenario("ring-down", Supply(12.0), Switching(FS, "forced-pwm", (20e-9, 20e-9)),
+                    Inductor(4.7e-6, 0.01), Capacitor(47e-6, 0.0), hs, ls, Load(2.0),
+                    Control(duty=0.3), RunSettings(cycles=1500))
+
+
+@pytest.mark.parametrize("depth", [1e-7, 1e-10])
+def test_settling_exit_between_samples_is_found(depth):
+    """The band is set just under one ring peak (by ``depth`` of the target), so vo
+    leaves it for a few ns only, between any two samples of its segment; every
+    later value is lower. The settling time is the instant vo falls back through
+    the band's top after that peak: scipy's minimize_scalar (the peak) and brentq
+    (the crossing) on the run's own exact evaluation give it independently."""
+    from scipy.optimize import brentq, minimize_scalar
+
+    from bucksim.transients import transients
+
+    run = bucksim.simulate(_ringing_start())
+    start, = transients(run)               # the start-up event, window [0, t_end]
+    ref = start["reference"]
+    coarse = np.linspace(100e-6, run.t_end, 20001)
+    v = run.at(coarse, "vo")
+    t_min = coarse[np.argmin(v[:5000])]     # a ring trough: the peak after it is
+    fine = np.linspace(t_min, run.t_end, 400001)   # the highest from there on
+    v = run.at(fine, "vo")
+    i = int(np.argmax(v))
+    assert 0 < i < fine.shape[0] - 1
+    peak = minimize_scalar(lambda t: -run.at([t], "vo")[0], bounds=(fine[i - 1], fine[i + 1]),
+                           method="bounded", options={"xatol": 1e-16})
+    top = -peak.fun - depth * ref
+    band = top / ref - 1.0
+    want = brentq(lambda t: run.at([t], "vo")[0] - top, peak.x, peak.x + 1e-7,
+                  xtol=1e-300, rtol=4 * np.finfo(float).eps)
+    ev, = transients(run, band=band)
+    assert ev["settled"]
+    assert ev["settling_time"] == pytest.approx(want, abs=1e-9 * T)
+
+
+def test_a_run_started_in_steady_state_has_no_start_up_event():
+    """Started on its periodic steady state, the run has no start-up transient; a
+    load step in it is still reported, and the same run from rest reports both."""
+    from bucksim.parts import LoadStep
+
+    base = rail(Control(duty=0.3), cycles=400)
+    base = dataclasses.replace(base, load=Load(0.66, steps=(LoadStep(400e-6, 1.32),)))
+    steady = dataclasses.replace(base, run=dataclasses.replace(base.run, start="steady-state"))
+    kinds = [e["event"] for e in bucksim.simulate(steady).summary()["transients"]]
+    assert kinds == ["load step"]
+    kinds = [e["event"] for e in bucksim.simulate(base).summary()["transients"]]
+    assert kinds == ["start-up", "load step"]
+
+
+# ----------------------------------------------------------------------------- summary table
+def test_capacitor_mean_current_in_steady_state_prints_as_zero():
+    """In periodic steady state the capacitor's mean current is zero (capacitor
+    charge balance, Erickson & Maksimovic ch. 2); the exact integral leaves
+    rounding of ~1e-14 of its RMS, which the table must print as 0, while the
+    summary's data keep the computed value. A real mean (the inductor's, the load
+    current) prints as computed."""
+    from bucksim.units import format_si
+
+    sc = rail(Control(duty=0.3), cycles=50)
+    sc = dataclasses.replace(sc, run=dataclasses.replace(sc.run, start="steady-state"))
+    s = bucksim.simulate(sc).summary()
+    cap = s["devices"]["output_capacitor"]
+    assert 0.0 < abs(cap["mean"]) < 1e-12 * cap["rms"]      # rounding, not zero
+    row = next(line for line in s.table().splitlines() if line.startswith("output_capacitor"))
+    assert row.split()[1:4] == [*format_si(cap["rms"], "A").split(), "0"]
+    ind = next(line for line in s.table().splitlines() if line.startswith("inductor "))
+    assert format_si(s["inductor_current"]["mean"], "A") in ind
