@@ -183,3 +183,32 @@ def test_capacitor_mean_current_in_steady_state_prints_as_zero():
     assert row.split()[1:4] == [*format_si(cap["rms"], "A").split(), "0"]
     ind = next(line for line in s.table().splitlines() if line.startswith("inductor "))
     assert format_si(s["inductor_current"]["mean"], "A") in ind
+
+
+# ----------------------------------------------------------------------------- slope compensation
+def test_slope_compensation_threshold_is_m2_2d_minus_1_over_2d():
+    """Peak-current mode at D ~ 0.82 (the bundled Kite rail). The standard stability
+    condition of the current loop (Erickson & Maksimovic, Fundamentals of Power
+    Electronics, chapter on current-programmed control; Ridley's current-mode model;
+    both from memory): a perturbation of the valley current is multiplied by
+    -(m2 - ma) / (m1 + ma) per period, with m1 D = m2 (1 - D) in steady state, so the
+    loop is stable iff ma > m2 (2D - 1) / (2D). Half the down-slope is sufficient at
+    any duty, not necessary: 10 % above the threshold, still below half the
+    down-slope, the shooting's Floquet multipliers are inside the unit circle; 10 %
+    below it one leaves the circle on the negative real axis (period doubling)."""
+    from bucksim.simulation import simulate_settled
+    from bucksim.steady_loop import closed_loop_steady_state
+
+    sc = bucksim.load_scenario("scenarios/pcm_rail_3v3_high_duty.toml")
+    d = float(simulate_settled(sc, cycles=1).duty[0])
+    ri, vo = sc.control.current_sense, sc.control.reference
+    m2 = ri * vo / sc.inductor.inductance          # sensed down-slope [V/s]
+    threshold = m2 * (2 * d - 1) / (2 * d)
+    assert 1.1 * threshold < 0.5 * m2
+    for factor, stable in ((1.1, True), (0.9, False)):
+        ctl = dataclasses.replace(sc.control, slope_compensation=factor * threshold)
+        ss = closed_loop_steady_state(dataclasses.replace(sc, control=ctl))
+        mu = ss.floquet[np.argmax(np.abs(ss.floquet))]
+        assert bool(abs(mu) < 1.0) is stable, (factor, mu)
+        if not stable:
+            assert mu.real < -1.0
