@@ -212,3 +212,53 @@ def test_slope_compensation_threshold_is_m2_2d_minus_1_over_2d():
         assert bool(abs(mu) < 1.0) is stable, (factor, mu)
         if not stable:
             assert mu.real < -1.0
+
+
+# ----------------------------------------------------------------------------- figures
+@pytest.mark.parametrize("strategy", ["forced-pwm", "diode-emulation"])
+def test_reverse_figure_names_the_strategy_once(strategy):
+    """The bundled Kestrel rail's title ends "forced PWM)": the figure's title must
+    not repeat it, and must name the strategy when the run uses another one."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from bucksim.plots import reverse_figure
+    from bucksim.reverse import reverse_current
+
+    sc = bucksim.load_scenario("scenarios/core_rail_1v0.toml")
+    sc = dataclasses.replace(sc, switching=dataclasses.replace(sc.switching, strategy=strategy))
+    res = reverse_current(sc, load=["2 A", "20 A"])
+    title = reverse_figure(res).axes[0].get_title().lower().replace("-", " ")
+    assert title.count(strategy.replace("-", " ")) == 1, title
+
+
+# ----------------------------------------------------------------------------- scenario notes
+def test_telemetry_scenario_states_its_phase_margins():
+    """The telemetry rail's comment states the phase margin at both load levels of
+    the run. The averaged CCM buck with its parasitics (Erickson & Maksimovic ch. 7),
+    closed by the same analog compensator, gives them with python-control's
+    stability_margins (tests/test_analog_loop.py builds that model), at the duty
+    of each settled operating point; the comment must match to 1 degree."""
+    import math
+    import re
+
+    import control as ct
+    from test_analog_loop import averaged_loop
+
+    from bucksim.simulation import simulate_settled
+
+    path = "scenarios/telemetry_rail_1v8_analog.toml"
+    sc = bucksim.load_scenario(path)
+    with open(path, encoding="utf-8") as f:
+        text = " ".join(line.strip().lstrip("#").strip() for line in f if line.startswith("#"))
+    found = re.search(r"phase margin of about (\d+) degrees at the 1 A load and about "
+                      r"(\d+) degrees at 6 A", text)
+    assert found, "the comment must state the margin at 1 A and at 6 A"
+    stated = [float(found.group(1)), float(found.group(2))]
+    for resistance, want in zip((1.8, 0.3), stated):          # 1.8 V / 1 A, 1.8 V / 6 A
+        point = dataclasses.replace(sc, load=Load(resistance))
+        duty = float(simulate_settled(point, cycles=1).duty[0])
+        _, loop = averaged_loop(point, duty, sc.control.compensator)
+        _, pm, _, _, wc, _ = ct.stability_margins(loop)
+        assert pm == pytest.approx(want, abs=1.0), (resistance, pm)
+        assert 40e3 < wc / (2 * math.pi) < 60e3                # "near 48 kHz"
