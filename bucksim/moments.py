@@ -1,32 +1,33 @@
-"""Exact first and second moments of a linear segment, ``int z dt`` and ``int z z^T dt``.
+r"""Exact first and second moments of a linear segment, ``int z dt`` and ``int z z^T dt``.
 
 Within a segment of system ``M = [[A, b], [0, 0]]`` the augmented state
-``z = [x, 1]`` follows ``z(t) = expm(M t) z0``. Where ``A`` is invertible the
-state is written about its equilibrium ``x_eq = -A^{-1} b`` as
-``x = x_eq + w`` with ``w(t) = expm(A t) w0``, and
+``z = [x, 1]`` follows ``z(t) = expm(M t) z0``. The moments are taken about
+the segment's start: ``x = x0 + y`` with ``y(0) = 0`` and ``y' = A y + f0``,
+``f0 = A x0 + b`` the state's derivative at the start. With ``v = [y, f]``
+(``f' = 0``, ``f(0) = f0``), ``v' = N v`` for ``N = [[A, I], [0, 0]]``, so
+``v(t) = expm(N t) [0, f0]`` is linear in ``f0``, and
 
 .. math::
 
-    \\int_0^d x\\,dt = x_{eq} d + G w_0, \\qquad
-    \\int_0^d x x^T dt = x_{eq} x_{eq}^T d + x_{eq} (G w_0)^T + (G w_0) x_{eq}^T
-    + \\mathrm{unvec}\\big(Q\\,(w_0 \\otimes w_0)\\big),
+    \int_0^d x\,dt = x_0 d + Y_1, \qquad
+    \int_0^d x x^T dt = x_0 x_0^T d + x_0 Y_1^T + Y_1 x_0^T + Y_2,
 
-with ``G = int_0^d expm(A t) dt`` and ``Q = int_0^d expm((A (+) A) t) dt``,
-each the upper-right block of one block exponential (Van Loan [1]_).
+where ``Y_1 = [G_N(d) v_0]_y`` and ``Y_2 = [\mathrm{unvec}(Q_N(d) (v_0
+\otimes v_0))]_{yy}``, with ``G_N = int_0^d expm(N t) dt`` and ``Q_N =
+int_0^d expm((N (+) N) t) dt``, each the upper-right block of one block
+exponential (Van Loan [1]_), memoised per system and length.
 
-Why the deviation form: the moments of ``z`` itself come from one block
-exponential of ``M (+) M`` whose entries couple the large constant drive
-(``Vin / L`` with a nanohenry inductor is ~1e9 A/s) into every product. An
-unloaded stage resting at ``vC = Vin`` then gets its ``int iL^2`` as the
-difference of terms of size ``(Vin/R)^2 d``: rounding of those reads as an
-RMS current of tens of microamperes, a negative loss, or a mean outside the
-extrema. In the deviation form every term is homogeneous in ``w0`` or
-carries ``x_eq`` explicitly, so a stage at its equilibrium reports the
-equilibrium exactly, and the rounding of each moment is relative to that
-moment's own size. The two-state equilibrium is taken by Cramer's rule,
-which keeps structural zeros (an unloaded stage's equilibrium current is
-exactly 0). A singular ``A`` (the idle state, a pure integrator) keeps the
-plain block exponential of ``M``.
+Why about the start: the moments of ``z`` itself come from one block
+exponential of ``M (+) M`` that couples the constant drive (``Vin / L`` with
+a nanohenry inductor is ~1e9 A/s) into every product. An unloaded stage
+resting at ``vC = Vin`` then got its ``int iL^2`` as a difference of terms
+of size ``(Vin/R)^2 d``, whose rounding read as an RMS of tens of
+microamperes, a negative loss or a mean outside the extrema. Taken about the
+equilibrium instead, a stage far from it (a 0.8 mohm load behind 10 mH
+settles over seconds) cancels terms of the equilibrium's size. About the
+start, every term beyond ``x0`` is homogeneous in ``f0``: it is as large as
+the state's own excursion within the segment, a stage at rest (``f0 = 0``)
+reports its state exactly, and no system needs an invertible ``A``.
 
 References
 ----------
@@ -38,10 +39,6 @@ from __future__ import annotations
 
 import numpy as np
 from scipy.linalg import expm
-
-#: Largest condition number of ``A`` for which the equilibrium form is used
-#: (beyond it ``A^{-1} b`` carries more rounding than the plain form).
-_MAX_COND = 1e10
 
 
 def _van_loan(A: np.ndarray, d: float) -> np.ndarray:
@@ -58,25 +55,13 @@ def _kron_sum(A: np.ndarray) -> np.ndarray:
     return np.kron(A, eye) + np.kron(eye, A)
 
 
-def equilibrium(M: np.ndarray) -> np.ndarray | None:
-    """``x_eq`` with ``A x_eq + b = 0`` for ``M = [[A, b], [0, 0]]``, or None if ``A``
-    is singular or ill-conditioned."""
-    A, b = M[:-1, :-1], M[:-1, -1]
-    n = A.shape[0]
-    if n == 0:
-        return None
-    if n == 2:
-        (p, q), (r, s) = A.tolist()
-        det = p * s - q * r
-        scale = max(abs(p * s), abs(q * r))
-        if det == 0.0 or not np.isfinite(det) or abs(det) < scale / _MAX_COND:
-            return None
-        b0, b1 = float(b[0]), float(b[1])
-        # Cramer's rule: a zero in A and b stays an exact zero in x_eq
-        return np.array([(q * b1 - s * b0) / det, (r * b0 - p * b1) / det])
-    if not np.all(np.isfinite(A)) or np.linalg.cond(A) > _MAX_COND:
-        return None
-    return np.linalg.solve(A, -b)
+def _drift_system(M: np.ndarray) -> np.ndarray:
+    """``N = [[A, I], [0, 0]]`` for ``M = [[A, b], [0, 0]]``: ``[y, f]' = N [y, f]``."""
+    n = M.shape[0] - 1
+    N = np.zeros((2 * n, 2 * n))
+    N[:n, :n] = M[:-1, :-1]
+    N[:n, n:] = np.eye(n)
+    return N
 
 
 class SegmentMoments:
@@ -85,59 +70,53 @@ class SegmentMoments:
     def __init__(self, matrices: np.ndarray):
         self.matrices = matrices
         self.m = matrices.shape[1]
-        self._eq: dict[int, np.ndarray | None] = {}
+        self.n = self.m - 1
         self._first: dict[tuple[int, float], np.ndarray] = {}
         self._second: dict[tuple[int, float], np.ndarray] = {}
 
-    def _equilibrium(self, s: int):
-        if s not in self._eq:
-            self._eq[s] = equilibrium(self.matrices[s])
-        return self._eq[s]
+    def _start(self, s, z0):
+        """``(x0, v0 = [0, f0])`` of a segment of system ``s`` starting at ``z0``."""
+        n = self.n
+        v0 = np.zeros(2 * n)
+        v0[n:] = self.matrices[s, :-1, :] @ z0
+        return z0[:-1], v0
 
-    def _blocks_first(self, s, d, eq):
+    def _y1(self, s, d, v0):
         key = (s, d)
-        hit = self._first.get(key)
-        if hit is None:
-            M = self.matrices[s]
-            hit = _van_loan(M[:-1, :-1] if eq is not None else M, d)
-            self._first[key] = hit
-        return hit
-
-    def _blocks_second(self, s, d, eq):
-        key = (s, d)
-        hit = self._second.get(key)
-        if hit is None:
-            M = self.matrices[s]
-            hit = _van_loan(_kron_sum(M[:-1, :-1] if eq is not None else M), d)
-            self._second[key] = hit
-        return hit
+        G = self._first.get(key)
+        if G is None:
+            G = _van_loan(_drift_system(self.matrices[s]), d)[: self.n]
+            self._first[key] = G
+        return G @ v0
 
     def first(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z dt`` over a segment of system ``s`` starting at ``z0`` (ends in 1)."""
         s, d = int(s), float(d)
-        eq = self._equilibrium(s)
-        G = self._blocks_first(s, d, eq)
-        if eq is None:
-            return G @ z0
+        x0, v0 = self._start(s, z0)
         out = np.empty(self.m)
-        out[:-1] = eq * d + G @ (z0[:-1] - eq)
+        out[:-1] = x0 * d + self._y1(s, d, v0)
         out[-1] = d
         return out
 
     def second(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z z^T dt`` over a segment of system ``s`` starting at ``z0``."""
         s, d = int(s), float(d)
-        m = self.m
-        eq = self._equilibrium(s)
-        Q = self._blocks_second(s, d, eq)
-        if eq is None:
-            return (Q @ np.kron(z0, z0)).reshape(m, m)
-        w0 = z0[:-1] - eq
-        iw = self._blocks_first(s, d, eq) @ w0
-        ww = (Q @ np.kron(w0, w0)).reshape(m - 1, m - 1)
-        ix = eq * d + iw
+        n, m = self.n, self.m
+        x0, v0 = self._start(s, z0)
+        key = (s, d)
+        Q = self._second.get(key)
+        if Q is None:
+            k = 2 * n
+            full = _van_loan(_kron_sum(_drift_system(self.matrices[s])), d)
+            # keep the rows of y (x) y only: the rest is never read
+            rows = (np.arange(n)[:, None] * k + np.arange(n)[None, :]).ravel()
+            Q = full[rows]
+            self._second[key] = Q
+        y1 = self._y1(s, d, v0)
+        y2 = (Q @ np.kron(v0, v0)).reshape(n, n)
+        ix = x0 * d + y1
         out = np.empty((m, m))
-        out[:-1, :-1] = d * np.outer(eq, eq) + np.outer(eq, iw) + np.outer(iw, eq) + ww
+        out[:-1, :-1] = d * np.outer(x0, x0) + np.outer(x0, y1) + np.outer(y1, x0) + y2
         out[:-1, -1] = ix
         out[-1, :-1] = ix
         out[-1, -1] = d
