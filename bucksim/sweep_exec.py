@@ -6,12 +6,22 @@ that state. Batches run in this process (one worker), in a pool of local
 processes, or on a Dask cluster; every path calls :func:`run_batch`, so a
 point's row does not depend on where it ran.
 
-Each point runs its small (3 x 3) matrix exponentials serially: OpenBLAS
-threads cost far more than they save at that size, and on a loaded machine
-they made a point about 20 times slower (measured here). The BLAS libraries are
-already loaded when a worker receives its first task, so setting
-``OPENBLAS_NUM_THREADS`` then is too late; their own ``set_num_threads`` entry
-points are called as well.
+Each point runs its BLAS and LAPACK calls on one thread, wherever it runs (in
+this process, a pool worker or a Dask worker), for two reasons. Results: a
+threaded BLAS may split a reduction differently with the thread count, so a
+row could depend in its last bits on where it ran; with one thread everywhere
+the rows are bit-identical. Speed: OpenBLAS threads cost far more than they
+save on 3 x 3 exponentials, and on a loaded machine they made a point about 20
+times slower (measured here). The thread count is set through each library's
+own entry point (OpenBLAS, MKL, BLIS; threadpoolctl as well when installed),
+because environment variables are read only when a library loads and numpy and
+scipy each bring their own OpenBLAS, which may already be loaded by then.
+
+Pool workers end with the process that started them: on Linux the kernel
+sends them SIGKILL when it dies (``prctl(PR_SET_PDEATHSIG)``), and elsewhere a
+watchdog thread in each worker exits when its parent is gone. A SIGKILLed sweep
+leaves no worker behind (they would otherwise wait on their task queue for
+ever). Dask's own workers already watch their nanny and scheduler.
 """
 
 from __future__ import annotations
@@ -22,63 +32,107 @@ import ctypes
 import math
 import multiprocessing
 import os
+import signal
+import sys
 import threading
+import time
 
 WORKER_ENV = {"NUMBA_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1",
               "MKL_NUM_THREADS": "1"}
 
-_BLAS_SETTERS = (("openblas_get_num_threads", "openblas_set_num_threads"),
-                 ("scipy_openblas_get_num_threads", "scipy_openblas_set_num_threads"),
-                 ("scipy_openblas_get_num_threads64_", "scipy_openblas_set_num_threads64_"))
+# (file name part, get, set) of the thread-count entry points of BLAS libraries
+_BLAS_SETTERS = (("openblas", "openblas_get_num_threads", "openblas_set_num_threads"),
+                 ("openblas", "scipy_openblas_get_num_threads",
+                  "scipy_openblas_set_num_threads"),
+                 ("openblas", "scipy_openblas_get_num_threads64_",
+                  "scipy_openblas_set_num_threads64_"),
+                 ("mkl", "MKL_Get_Max_Threads", "MKL_Set_Num_Threads"),
+                 ("blis", "bli_thread_get_num_threads", "bli_thread_set_num_threads"))
 _blas_lock = threading.Lock()
 _blas_users = 0
 _blas_saved = []
-_blas_found = None
+_blas_libs = {}  # path -> (get, set) or None, for every BLAS seen mapped so far
 
 
-def _blas_controls():
-    """``(get, set)`` thread-count functions of every OpenBLAS loaded in this process."""
-    global _blas_found
-    if _blas_found is not None:
-        return _blas_found
+def _mapped_blas_paths():
+    """Paths of the BLAS libraries mapped into this process (Linux; else empty)."""
     paths = set()
     try:
         with open("/proc/self/maps", encoding="utf-8", errors="replace") as f:
             for line in f:
                 fields = line.split(maxsplit=5)
-                if len(fields) == 6 and "openblas" in fields[5].lower():
-                    paths.add(fields[5].strip())
-    except OSError:  # not Linux: the environment variables are all we have
+                if len(fields) == 6:
+                    name = os.path.basename(fields[5].strip()).lower()
+                    if any(part in name for part, _, _ in _BLAS_SETTERS):
+                        paths.add(fields[5].strip())
+    except OSError:  # not Linux: threadpoolctl (if installed) and the environment
         pass
-    found = []
-    for path in sorted(paths):
-        try:
-            lib = ctypes.CDLL(path)
-        except OSError:
+    return sorted(paths)
+
+
+def _blas_controls():
+    """``(get, set)`` thread-count functions of every BLAS loaded in this process.
+
+    numpy and scipy are imported first, so their BLAS libraries (each wheel
+    brings its own) are loaded and found before a point needs them. The maps
+    are read again on every call: a library loaded later is found too.
+    """
+    import numpy  # noqa: F401 - loads numpy's BLAS
+    import scipy.linalg  # noqa: F401 - loads scipy's BLAS and LAPACK
+
+    controls = []
+    for path in _mapped_blas_paths():
+        if path not in _blas_libs:
+            _blas_libs[path] = _thread_functions(path)
+        if _blas_libs[path] is not None:
+            controls.append(_blas_libs[path])
+    return controls
+
+
+def _thread_functions(path):
+    try:
+        lib = ctypes.CDLL(path)
+    except OSError:
+        return None
+    name = os.path.basename(path).lower()
+    for part, get_name, set_name in _BLAS_SETTERS:
+        if part not in name:
             continue
-        for get_name, set_name in _BLAS_SETTERS:
-            get, put = getattr(lib, get_name, None), getattr(lib, set_name, None)
-            if get is not None and put is not None:
-                get.restype, get.argtypes = ctypes.c_int, []
-                put.restype, put.argtypes = None, [ctypes.c_int]
-                found.append((get, put))
-                break
-    _blas_found = found
-    return found
+        get, put = getattr(lib, get_name, None), getattr(lib, set_name, None)
+        if get is not None and put is not None:
+            get.restype, get.argtypes = ctypes.c_int, []
+            put.restype, put.argtypes = None, [ctypes.c_int]
+            return get, put
+    return None
+
+
+def _threadpoolctl_limit():
+    """A threadpoolctl limiter holding every BLAS at one thread, or None if not installed."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return None
+    return threadpool_limits(limits=1, user_api="blas")
+
+
+def blas_thread_counts():
+    """Thread counts of the BLAS libraries found in this process (for checks)."""
+    return [get() for get, _ in _blas_controls()]
 
 
 @contextlib.contextmanager
 def serial_blas():
-    """Run the enclosed code with one BLAS thread; restore the count on leaving.
+    """Run the enclosed code with one BLAS thread; restore the counts on leaving.
 
     Counted, so threads of one process (Dask threads) may nest it: the first
-    to enter sets one thread, the last to leave restores the old count.
+    to enter sets one thread, the last to leave restores the old counts.
     """
     global _blas_users, _blas_saved
     with _blas_lock:
         if _blas_users == 0:
             controls = _blas_controls()
-            _blas_saved = [get() for get, _ in controls]
+            limiter = _threadpoolctl_limit()
+            _blas_saved = [(put, get()) for get, put in controls] + [limiter]
             for _, put in controls:
                 put(1)
         _blas_users += 1
@@ -88,12 +142,42 @@ def serial_blas():
         with _blas_lock:
             _blas_users -= 1
             if _blas_users == 0:
-                for (_, put), n in zip(_blas_controls(), _blas_saved):
+                *counts, limiter = _blas_saved
+                if limiter is not None:
+                    limiter.restore_original_limits()
+                for put, n in counts:
                     put(n)
 
 
-def _init_worker():
-    """Process-pool initializer: serial numerical libraries for the worker's life."""
+PR_SET_PDEATHSIG = 1  # linux/prctl.h
+
+
+def _die_with_parent(parent_pid):
+    """End this process when ``parent_pid`` (the sweep) ends, however it ends."""
+    if sys.platform.startswith("linux"):
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(PR_SET_PDEATHSIG, int(signal.SIGKILL), 0, 0, 0)
+        except (OSError, AttributeError):
+            pass
+    if os.getppid() != parent_pid:  # it died before the request was in place
+        os._exit(1)
+
+    def watch():
+        # covers platforms without prctl; a point in compiled code holds the
+        # GIL, so this may run late there, which is why prctl comes first
+        while os.getppid() == parent_pid:
+            time.sleep(0.5)
+        os._exit(1)
+
+    threading.Thread(target=watch, name="bucksim-parent-watch", daemon=True).start()
+
+
+def _init_worker(parent_pid=None):
+    """Process-pool initializer: serial numerical libraries for the worker's life,
+    and no life beyond the sweep's."""
+    if parent_pid is not None:
+        _die_with_parent(parent_pid)
     for key, value in WORKER_ENV.items():
         os.environ[key] = value
     for _, put in _blas_controls():
@@ -108,6 +192,15 @@ def _error_text(exc):
     text = str(exc) if isinstance(exc, (ScenarioError, SimulationError)) \
         else f"{type(exc).__name__}: {exc}"
     return " ".join(text.split()) or type(exc).__name__
+
+
+def _steady_columns(ss):
+    import numpy as np
+
+    mu = np.abs(np.asarray(ss.floquet))
+    return {"steady.iterations": float(ss.iterations), "steady.residual": float(ss.residual),
+            "steady.method": ss.method,
+            "steady.max_floquet": float(np.max(mu)) if mu.size else math.nan}
 
 
 def run_point(scenario, index, draw, values):
@@ -129,10 +222,13 @@ def run_point(scenario, index, draw, values):
     -------
     dict
         Never raises for a bad point: the reason goes to ``"error"`` and the
-        metrics are left out (NaN in the table).
+        metrics are left out (NaN in the table). A point fails when its
+        scenario is invalid, it has no periodic steady state, that state is
+        unstable (a Floquet multiplier of modulus >= 1; the ``steady.*``
+        columns are kept), or the settled run does not complete (a state
+        diverged, a closed loop did not settle: the run's status and message).
     """
-    import numpy as np
-
+    from .errors import SimulationError
     from .scenario import replace_key
     from .simulation import simulate_settled
     from .sweep_table import flatten
@@ -148,17 +244,24 @@ def run_point(scenario, index, draw, values):
         for key, value in values.items():
             sc = replace_key(sc, key, value)
         run = simulate_settled(sc)
-        ss = run.steady_state
-        steady = {"steady.iterations": float(ss.iterations), "steady.residual": float(ss.residual),
-                  "steady.method": ss.method,
-                  "steady.max_floquet": float(np.max(np.abs(ss.floquet)))}
+        steady = _steady_columns(run.steady_state)
         n = sc.run.summary_cycles
         if not run.success:
-            raise RuntimeError(f"simulation did not complete: {run.message}")
+            raise SimulationError(f"the settled run did not complete (status {run.status}): "
+                                  f"{run.message}")
+        if not run.steady_state.stable:
+            # an unstable periodic orbit is a solution nobody sees on the bench:
+            # any disturbance grows, so its metrics are not the point's
+            raise SimulationError(
+                f"periodic steady state is unstable: largest Floquet multiplier "
+                f"|mu| = {steady['steady.max_floquet']:.4g} >= 1, so a small disturbance "
+                f"grows and the circuit does not stay at this operating point")
         row.update(flatten(run.summary(cycles=n).to_dict()))
         error = ""
     except Exception as exc:  # noqa: BLE001 - a bad point is data, the sweep goes on
         error = _error_text(exc)
+        if getattr(exc, "steady_state", None) is not None:  # refused after shooting
+            steady = _steady_columns(exc.steady_state)
     row.update(steady)
     row["error"] = error
     return row
@@ -277,11 +380,13 @@ class Runner:
         else:
             if self.kind == "processes":
                 # spawn, not fork: the parent may hold threads (progress bar,
-                # a Dask client) and a forked child would inherit their locks
+                # a Dask client) and a forked child would inherit their locks.
+                # The workers are started by submit() in this thread, which
+                # outlives them (PR_SET_PDEATHSIG follows the starting thread).
                 self._executor = cf.ProcessPoolExecutor(
                     max_workers=min(self._pool_size, max(1, len(batches))),
                     mp_context=multiprocessing.get_context("spawn"),
-                    initializer=_init_worker)
+                    initializer=_init_worker, initargs=(os.getpid(),))
                 self._owned.append(self._executor)
             futures = [self._executor.submit(run_batch, scenario, b) for b in batches]
             waiter = cf.as_completed(futures)
