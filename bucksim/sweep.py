@@ -21,8 +21,19 @@ workers run them. A key with tolerance ``("uniform", t)`` takes
 ``nominal * (1 + u)``, ``u`` uniform on ``[-t, t]``; ``("normal", s)`` takes
 ``nominal * (1 + s z)``, ``z`` standard normal (``t``, ``s`` relative).
 
-A point that fails (invalid scenario, no steady state, ...) keeps its row,
-with the reason in ``error`` and NaN metrics; the sweep goes on.
+A ``vary`` value may be a list (any sequence) of values or a single value
+(a number or a string such as ``"4.7 uH"``), which is a one-point axis; a
+mapping, a set or anything else is refused naming the key.
+
+A point that fails (invalid scenario, no steady state, an unstable steady
+state, a run that does not complete or a loop that does not settle) keeps
+its row, with the reason in ``error`` and NaN metrics; the sweep goes on.
+
+Size: a sweep keeps every row in memory (about :data:`POINT_BYTES` a point,
+measured) and each running point its own settled run. A sweep whose points
+would not fit in the memory :func:`bucksim.limits.memory_budget` allows, or
+whose points run at once would not, is refused before anything is built,
+naming the key and the figure it would need.
 
 Results are appended to ``out`` (CSV) batch by batch as they finish, so a
 killed sweep keeps its finished points; ``resume=True`` reads that file, checks
@@ -37,18 +48,21 @@ Process pools use the ``spawn`` start method: a script that calls
 from __future__ import annotations
 
 import contextlib
-import csv
 import itertools
 import math
 import sys
 import time
-from pathlib import Path
 
 import numpy as np
 
-from .sweep_table import SweepTable, format_rows, is_input
+from .sweep_files import ProgressFile, check_resume_target, out_paths, read_progress
+from .sweep_table import SweepTable
 
 MAX_BATCH = 256  # points per task: bounds what a killed sweep can lose
+#: Memory of one point in a sweep [B]: its plan entry, its row dict, its table
+#: cells and CSV text. Measured with tracemalloc: 10 to 13.4 kB a point (58
+#: columns, 100 to 400 points); rounded up for longer rows and error texts.
+POINT_BYTES = 16_000
 
 
 class SweepError(ValueError):
@@ -129,18 +143,92 @@ def draw_factors(tolerance, n, seed):
 class Plan:
     """The points of a sweep: ``inputs`` (keys) and ``points`` [(index, draw, values)]."""
 
-    def __init__(self, inputs, points, has_draw):
+    def __init__(self, inputs, points, has_draw, axes=None):
         self.inputs = inputs
         self.points = points
         self.has_draw = has_draw
+        self.axes = axes or {}  # {key: [values]} of the grid
 
     def __len__(self):
         return len(self.points)
 
 
+def max_points():
+    """Points a sweep may hold on this machine (see :data:`POINT_BYTES`)."""
+    from .limits import memory_budget
+
+    return max(1, memory_budget() // POINT_BYTES)
+
+
+def _axis(key, values, cap):
+    """The values of one ``vary`` key as a list (a single value: one point).
+
+    At most ``cap + 1`` values are taken from an iterator, so an endless or
+    huge one is refused by the size check instead of filling the memory.
+    """
+    if isinstance(values, (str, bytes, int, float, np.generic)) or \
+            (isinstance(values, np.ndarray) and values.ndim == 0):
+        return [_plain(values.item() if isinstance(values, np.ndarray) else values)]
+    expected = ("expected a list of values, or one value (a number or a string such as "
+                "'4.7 uH')")
+    if values is None or isinstance(values, (dict, set, frozenset)):
+        raise SweepError(f"vary {key}: {expected}, got {values!r}")
+    try:
+        items = iter(values)
+    except TypeError:
+        raise SweepError(f"vary {key}: {expected}, got {values!r}") from None
+    return [_plain(v) for v in itertools.islice(items, cap + 1)]
+
+
+def check_sweep_size(axes, draws=None, names=("vary", "monte_carlo")):
+    """Refuse a sweep whose points would not fit in memory, before any is built.
+
+    Parameters
+    ----------
+    axes : list of (str, int)
+        ``(key, number of values)`` of each grid axis.
+    draws : int, optional
+        Monte Carlo draws (each grid point runs all of them).
+    names : (str, str)
+        How the caller names the grid and the draws (``"--vary"`` and
+        ``"--monte-carlo"`` on the command line), for the message.
+
+    Raises
+    ------
+    ScenarioError
+        Naming the largest factor, the number of points and the memory they
+        would need (:func:`bucksim.limits.refuse_if_too_big`).
+    """
+    from .limits import memory_budget, refuse_if_too_big
+
+    factors = [(f"{names[0]} {k}", f"{n} {k} values", n) for k, n in axes]
+    if draws is not None:
+        factors.append((names[1], f"{draws} draws", draws))
+    if not factors:
+        return
+    n = math.prod(f[2] for f in factors)
+    limit = max_points()
+    if n <= limit:
+        return
+    key, _, count = max(factors, key=lambda f: f[2])
+    refuse_if_too_big(n * POINT_BYTES, memory_budget(), key, count,
+                      f"a sweep of {n} points ({' x '.join(f[1] for f in factors)}) at about "
+                      f"{POINT_BYTES // 1000} kB a point",
+                      remedy=f"split it into sweeps of at most {limit} points")
+
+
 def plan_points(scenario, vary=None, monte_carlo=None, tolerance=None, seed=0):
     """Enumerate a sweep's points in the documented order (see the module notes)."""
-    vary = {k: [_plain(v) for v in vals] for k, vals in (vary or {}).items()}
+    if vary is None:
+        vary = {}
+    if not isinstance(vary, dict):
+        raise SweepError(f"vary: expected a dict {{dotted key: values}}, got {vary!r}")
+    if monte_carlo is not None and (isinstance(monte_carlo, bool)
+                                    or not isinstance(monte_carlo, int) or monte_carlo < 1):
+        raise SweepError(f"monte_carlo: must be an integer >= 1, got {monte_carlo!r}")
+    cap = max_points()
+    vary = {k: _axis(k, vals, cap) for k, vals in vary.items()}
+    check_sweep_size([(k, len(vals)) for k, vals in vary.items()], monte_carlo)
     for key, vals in vary.items():
         if not vals:
             raise SweepError(f"vary {key}: needs at least one value")
@@ -149,10 +237,11 @@ def plan_points(scenario, vary=None, monte_carlo=None, tolerance=None, seed=0):
     grid = list(itertools.product(*vary.values())) if vary else [()]
     draws = None
     if monte_carlo is not None:
-        if isinstance(monte_carlo, bool) or not isinstance(monte_carlo, int) or monte_carlo < 1:
-            raise SweepError(f"monte_carlo: must be an integer >= 1, got {monte_carlo!r}")
         if not tolerance:
             raise SweepError("monte_carlo: needs tolerance={key: ('uniform', 0.1), ...}")
+        if not isinstance(tolerance, dict):
+            raise SweepError(f"tolerance: expected a dict {{dotted key: ('uniform', 0.1)}}, "
+                             f"got {tolerance!r}")
         both = [k for k in tolerance if k in vary]
         if both:
             raise SweepError(f"{both[0]}: is both varied and given a tolerance; choose one")
@@ -178,7 +267,7 @@ def plan_points(scenario, vary=None, monte_carlo=None, tolerance=None, seed=0):
         for j, d in enumerate(draws if draws is not None else [None]):
             point_values = dict(values, **d) if d is not None else values
             points.append((len(points), j if d is not None else None, point_values))
-    return Plan(inputs, points, draws is not None)
+    return Plan(inputs, points, draws is not None, vary)
 
 
 def batch_size(n, slots, batch=None):
@@ -190,100 +279,59 @@ def batch_size(n, slots, batch=None):
     return max(1, min(MAX_BATCH, math.ceil(n / (4 * max(1, slots)))))
 
 
-# ----------------------------------------------------------------------------- files
+def _point_scenarios(scenario, vary):
+    """The base scenario, and one per value of a key that changes a point's size."""
+    from .errors import ScenarioError
+    from .scenario import replace_key
 
-def out_paths(out):
-    """``(csv, hdf5)`` paths for ``out``: a ``.h5``/``.hdf5`` name also gets a CSV
-    progress file beside it (same stem)."""
-    if out is None:
-        return None, None
-    out = Path(out)
-    if out.suffix.lower() in (".h5", ".hdf5"):
-        return out.with_suffix(".csv"), out
-    return out, None
-
-
-def _same(a, b):
-    """Equal as numbers when both read as numbers (NaN equals NaN), else as text."""
-    try:
-        x, y = float(a), float(b)
-    except (TypeError, ValueError):
-        return str(a) == str(b)
-    return x == y or (math.isnan(x) and math.isnan(y))
+    yield scenario
+    for key, values in (vary or {}).items():
+        if key.startswith("run.") or key == "switching.strategy":
+            for v in values:
+                try:
+                    yield replace_key(scenario, key, v)
+                except ScenarioError:
+                    continue  # that point fails on its own, with its reason in its row
 
 
-def read_progress(path, plan):
-    """Rows already in ``path`` that belong to ``plan``; refuses a file of another sweep.
+def check_points_fit(scenario, vary, at_once):
+    """Refuse a sweep whose ``at_once`` concurrently running points would not fit.
 
-    A last line cut short by a kill is dropped (and cut from the file, so
-    appending continues on a clean line).
-
-    Returns
-    -------
-    (header, rows) : (list of str or None, list of dict)
-        ``header`` is ``None`` when the file is missing or empty.
+    Each point keeps a settled run of ``run.summary_cycles`` periods
+    (:func:`bucksim.limits.run_bytes`); local workers run one point each at a
+    time, in this machine's memory.
     """
-    path = Path(path)
-    if not path.exists():
-        return None, []
-    data = path.read_bytes()
-    if data and not data.endswith(b"\n"):
-        cut = data.rfind(b"\n") + 1
-        with open(path, "r+b") as f:
-            f.truncate(cut)
-    with open(path, newline="", encoding="utf-8") as f:
-        header = next(csv.reader(f), None)
-    if not header:
-        return None, []
-    have_inputs = [c for c in header if is_input(c)]
-    if have_inputs != plan.inputs or ("draw" in header) != plan.has_draw:
-        raise SweepError(f"{path}: cannot resume: its input columns are "
-                         f"{have_inputs or 'none'}, this sweep varies {plan.inputs}"
-                         + (" with Monte Carlo draws" if plan.has_draw else ""))
-    try:
-        table = SweepTable.read_csv(path)
-    except ValueError as exc:
-        raise SweepError(f"cannot resume: {exc}") from None
-    rows = {}
-    for row in table.rows:
-        i = int(row["point"])
-        if not 0 <= i < len(plan):
-            raise SweepError(f"{path}: cannot resume: point {i} is outside this sweep "
-                             f"of {len(plan)} points")
-        _, draw, values = plan.points[i]
-        if plan.has_draw and row["draw"] != draw:
-            raise SweepError(f"{path}: cannot resume: point {i} is draw {row['draw']} there, "
-                             f"draw {draw} here")
-        for key, want in values.items():
-            if not _same(row.get(key), want):
-                raise SweepError(f"{path}: cannot resume: point {i} has {key} = "
-                                 f"{row.get(key)!r} there, this sweep asks {want!r}")
-        rows.setdefault(i, row)
-    return header, list(rows.values())
+    import dataclasses
+
+    from .limits import memory_budget, refuse_if_too_big, run_bytes
+    from .stage import Stage
+
+    worst, worst_sc = 0, scenario
+    for sc in _point_scenarios(scenario, vary):
+        settled = dataclasses.replace(sc, run=dataclasses.replace(
+            sc.run, cycles=sc.run.summary_cycles, duration=None))
+        try:
+            n_states = Stage(settled).n
+        except Exception:  # noqa: BLE001 - that point fails on its own
+            n_states = 2
+        need = run_bytes(settled, n_states)
+        if need > worst:
+            worst, worst_sc = need, sc
+    who = f"{at_once} points at once (one per worker)" if at_once > 1 else "one point"
+    refuse_if_too_big(worst * at_once, memory_budget(), "run.summary_cycles",
+                      worst_sc.run.summary_cycles,
+                      f"{who}, each keeping {worst_sc.run.summary_cycles} settled cycles,",
+                      worst_sc.source, "fewer run.summary_cycles"
+                      + (", or fewer workers" if at_once > 1 else ""))
 
 
-class ProgressFile:
-    """Appends finished rows to a CSV file and flushes, one write per batch."""
+def _local_processes(workers, cluster, n_points):
+    """Points that may run at once in this machine's memory."""
+    import os
 
-    def __init__(self, path, header=None, rows=()):
-        self.path = Path(path)
-        self.rows = list(rows)
-        self.columns = list(header) if header else None
-        if self.columns is None:
-            self.path.write_bytes(b"")  # a fresh sweep starts a fresh file
-
-    def append(self, rows):
-        self.rows.extend(rows)
-        names = dict.fromkeys(k for r in rows for k in r)
-        if self.columns is None or any(k not in self.columns for k in names):
-            # first batch, or a batch with new columns: rewrite with all rows
-            table = SweepTable.from_rows(self.rows)
-            self.columns = table.columns
-            table.to_csv(self.path)
-            return
-        with open(self.path, "a", newline="", encoding="utf-8") as f:
-            f.write(format_rows(self.columns, rows))
-            f.flush()
+    if cluster is None or cluster == "local":
+        return max(1, min(workers or os.cpu_count() or 1, n_points))
+    return 1  # a remote cluster's memory is its own; an Executor: at least one here
 
 
 # ----------------------------------------------------------------------------- the sweep
@@ -298,7 +346,8 @@ def sweep(scenario, vary=None, *, monte_carlo=None, tolerance=None, seed=0, work
         The base scenario (open loop).
     vary : dict, optional
         ``{dotted key: sequence of values}`` [SI base units, or prefixed strings
-        such as ``"4.7 uH"``]; the grid is their Cartesian product.
+        such as ``"4.7 uH"``]; the grid is their Cartesian product. A single
+        value (number or string) is a one-point axis.
     monte_carlo : int, optional
         Number of random draws of the ``tolerance`` keys.
     tolerance : dict, optional
@@ -315,6 +364,8 @@ def sweep(scenario, vary=None, *, monte_carlo=None, tolerance=None, seed=0, work
         ``.h5`` name writes the HDF5 table there and the CSV beside it.
     resume : bool
         Continue the sweep in ``out``: keep its finished points, run the rest.
+        Refused when ``out`` names an ``.h5`` file that is not a sweep table
+        (a stored run) or whose CSV progress file is missing.
     batch : int, optional
         Points per task (default about four tasks per worker, at most 256).
     progress : bool, optional
@@ -324,6 +375,15 @@ def sweep(scenario, vary=None, *, monte_carlo=None, tolerance=None, seed=0, work
     -------
     SweepTable
         Sorted by point; ``elapsed`` [s] and ``resumed`` (points taken over) set.
+
+    Raises
+    ------
+    SweepError
+        Bad keys, values or options; a resume onto a file that is not this
+        sweep's table.
+    ScenarioError
+        The sweep's points, or its points running at once, would not fit in
+        memory (naming the key and the figure).
     """
     from tqdm import tqdm
 
@@ -335,11 +395,11 @@ def sweep(scenario, vary=None, *, monte_carlo=None, tolerance=None, seed=0, work
         raise SweepError(f"workers: must be an integer >= 1, got {workers!r}")
     plan = plan_points(scenario, vary, monte_carlo, tolerance, seed)
     batch_size(1, 1, batch)  # check it before any file is touched
+    check_points_fit(scenario, plan.axes, _local_processes(workers, cluster, len(plan)))
     csv_path, h5_path = out_paths(out)
     header, done = None, []
     if resume:
-        if csv_path is None:
-            raise SweepError("resume: needs out=<the CSV file of the interrupted sweep>")
+        check_resume_target(csv_path, h5_path)
         header, done = read_progress(csv_path, plan)
     finished = {int(r["point"]) for r in done}
     pending = [p for p in plan.points if p[0] not in finished]

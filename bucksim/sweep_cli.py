@@ -133,6 +133,17 @@ def _number(scenario, key, text):
     return float(value)
 
 
+def _refuse_too_many_values(key, n):
+    """Refuse an axis of ``n`` values before making it, when its points alone would
+    not fit (:func:`bucksim.sweep.check_sweep_size`)."""
+    from .sweep import check_sweep_size
+
+    check_sweep_size([(key, n)], names=CLI_NAMES)
+
+
+CLI_NAMES = ("--vary", "--monte-carlo")
+
+
 def parse_vary(scenario, specs, log_keys=()):
     """``["KEY=START:STOP:N", "KEY=V1,V2"]`` -> ``{key: [values]}`` [SI base units]."""
     import numpy as np
@@ -154,6 +165,7 @@ def parse_vary(scenario, specs, log_keys=()):
             if n < 1:
                 raise SweepError(f"--vary {key}: N must be an integer >= 1 in START:STOP:N, "
                                  f"got {parts[2]!r}")
+            _refuse_too_many_values(key, n)
             if key in log_keys:
                 if start <= 0 or stop <= 0:
                     raise SweepError(f"--log {key}: START and STOP must be > 0 for geometric "
@@ -214,12 +226,17 @@ def run_command(args) -> int:
     import bucksim
 
     from .errors import ScenarioError
-    from .sweep import SweepError, out_paths, sweep
+    from .sweep import SweepError, check_sweep_size, out_paths, sweep
 
     try:
         scenario = bucksim.load_scenario(args.file)
         vary = parse_vary(scenario, args.vary, args.log)
         tolerance = parse_tolerance(args.tolerance) if args.tolerance else None
+        check_sweep_size([(k, len(v)) for k, v in vary.items()], args.monte_carlo,
+                         names=CLI_NAMES)
+        if args.resume and args.force:
+            raise SweepError("--resume and --force contradict each other: --resume keeps the "
+                             "finished points in --out, --force overwrites them; give one")
         if args.resume and not args.out:
             raise SweepError("--resume: needs --out FILE (the table of the interrupted sweep)")
         if args.out and not args.resume and not args.force:
