@@ -115,11 +115,6 @@ def _threadpoolctl_limit():
     return threadpool_limits(limits=1, user_api="blas")
 
 
-def blas_thread_counts():
-    """Thread counts of the BLAS libraries found in this process (for checks)."""
-    return [get() for get, _ in _blas_controls()]
-
-
 @contextlib.contextmanager
 def serial_blas():
     """Run the enclosed code with one BLAS thread; restore the counts on leaving.
@@ -143,8 +138,9 @@ def serial_blas():
             _blas_users -= 1
             if _blas_users == 0:
                 *counts, limiter = _blas_saved
-                if limiter is not None:
-                    limiter.restore_original_limits()
+                if limiter is not None:  # threadpoolctl >= 3 restores; 2.x unregisters
+                    getattr(limiter, "restore_original_limits",
+                            getattr(limiter, "unregister", lambda: None))()
                 for put, n in counts:
                     put(n)
 

@@ -334,3 +334,29 @@ def test_resume_with_force_is_refused(tmp_path, capsys):
     err = capsys.readouterr().err
     assert "--resume" in err and "--force" in err and "Traceback" not in err, err
     assert out.read_bytes() == before
+
+
+def test_threadpoolctl_limits_are_applied_and_restored_when_installed(monkeypatch):
+    # threadpoolctl (when installed) reaches BLAS builds the ctypes lookup does not
+    # know; its documented API: threadpool_limits(limits, user_api) applies at once,
+    # restore_original_limits() undoes it
+    import types
+
+    from bucksim import sweep_exec
+
+    calls = []
+
+    class Limiter:
+        def __init__(self, limits, user_api):
+            calls.append(("set", limits, user_api))
+
+        def restore_original_limits(self):
+            calls.append(("restore",))
+
+    monkeypatch.setitem(sys.modules, "threadpoolctl",
+                        types.SimpleNamespace(threadpool_limits=Limiter))
+    with sweep_exec.serial_blas():
+        with sweep_exec.serial_blas():      # nested (Dask threads): applied once
+            assert calls == [("set", 1, "blas")]
+        assert calls == [("set", 1, "blas")]
+    assert calls == [("set", 1, "blas"), ("restore",)]
