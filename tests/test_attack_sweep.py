@@ -360,3 +360,44 @@ def test_threadpoolctl_limits_are_applied_and_restored_when_installed(monkeypatc
             assert calls == [("set", 1, "blas")]
         assert calls == [("set", 1, "blas")]
     assert calls == [("set", 1, "blas"), ("restore",)]
+
+
+def test_resume_onto_a_file_that_is_not_a_sweep_csv_leaves_it_untouched(tmp_path, capsys):
+    # a resume used to cut the file at its last newline before reading its header
+    from bucksim.sweep_cli import main
+    scen = tmp_path / "rail.toml"
+    scen.write_text(RAIL_TOML, encoding="utf-8")
+    for name, content in (("run.csv", None), ("notes.csv", b"\n\nsome notes, no newline")):
+        target = tmp_path / name
+        if content is None:
+            before = _stored_run(target)        # an HDF5 run under a .csv name
+        else:
+            target.write_bytes(content)
+            before = content
+        code = main([str(scen), "--vary", "load.resistance=1,2", "--workers", "1", "--quiet",
+                     "--out", str(target), "--resume"])
+        err = capsys.readouterr().err
+        assert code == 1, err
+        assert str(target) in err and "not a sweep's CSV table" in err, err
+        assert target.read_bytes() == before
+
+
+def test_a_loop_that_does_not_settle_is_the_rows_error(monkeypatch):
+    # the settled run's own status and message (simulation.STATUS_LOOP_UNSETTLED)
+    # reach the row, as for any run that does not complete
+    import bucksim.simulation as simulation
+
+    real = simulation.simulate_settled
+
+    def unsettled(scenario, *args, **kwargs):
+        run = real(scenario, *args, **kwargs)
+        run.status = simulation.STATUS_LOOP_UNSETTLED
+        run.message = "control loop did not settle: (test)"
+        return run
+
+    monkeypatch.setattr(simulation, "simulate_settled", unsettled)
+    t = sweep(rail(), {"load.resistance": [2.0]}, workers=1, progress=False)
+    err = t.column("error")[0]
+    assert "control loop did not settle" in err and "status 3" in err, err
+    assert "efficiency" not in t.columns    # no metrics from a run that did not settle
+    assert np.isfinite(t.column("steady.max_floquet")[0])
