@@ -385,7 +385,7 @@ def test_resume_onto_a_file_that_is_not_a_sweep_csv_leaves_it_untouched(tmp_path
 def test_a_loop_that_does_not_settle_is_the_rows_error(monkeypatch):
     # the settled run's own status and message (simulation.STATUS_LOOP_UNSETTLED)
     # reach the row, as for any run that does not complete
-    import bucksim.simulation as simulation
+    from bucksim import simulation
 
     real = simulation.simulate_settled
 
