@@ -37,7 +37,7 @@ from pathlib import Path
 import tomli_w
 
 from .errors import ScenarioError
-from .keylines import key_lines, line_of, parse_key_path
+from .keylines import key_lines, line_of, parse_key_path, toml_error, warn_steps_after_end
 from .parts import (Capacitor, Control, CoreLoss, Diode, Inductor, Load, LoadStep, Mosfet,
                     RunSettings, Scenario, Supply, SupplyStep, Switching)
 from .units import example, parse_quantity
@@ -72,7 +72,6 @@ RUN_KEYS = ("duration", "cycles", "start", "summary_cycles", "initial_current",
             "initial_voltage")
 
 _REQUIRED = object()
-_SYNTAX_POSITION = re.compile(r"\s*\(at line (\d+), column (\d+)\)$")
 
 
 # ----------------------------------------------------------------------------- reading
@@ -112,21 +111,13 @@ def loads_scenario(text, source="<string>"):
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise _syntax_error(exc, source) from None
+        raise toml_error(exc, text, source) from None
     try:
-        return _build(doc, source, text)
+        scenario = _build(doc, source, text)
     except ScenarioError as err:
         raise err.located(source, line_of(key_lines(text), err.key)) from None
-
-
-def _syntax_error(exc, source):
-    message = str(exc)
-    m = _SYNTAX_POSITION.search(message)
-    if m is None:
-        return ScenarioError("TOML syntax", message, file=source)
-    detail = message[: m.start()]
-    return ScenarioError("TOML syntax", f"{detail} (column {m.group(2)})",
-                         file=source, line=int(m.group(1)))
+    warn_steps_after_end(scenario)
+    return scenario
 
 
 class _Table:
@@ -411,6 +402,29 @@ def dump_scenario(scenario, path):
         f.write(tomli_w.dumps(scenario_to_dict(scenario)).encode("utf-8"))
 
 
+def locate_in(scenario, err):
+    """``err`` (a ScenarioError) with the file and line of its key in ``scenario``'s
+    source text, when the scenario was read from a file."""
+    if scenario.text is None or err.line is not None:
+        return err
+    return err.located(scenario.source, line_of(key_lines(scenario.text), err.key))
+
+
+def require_scenario(obj, what: str):
+    """Return ``obj`` if it is a :class:`~bucksim.parts.Scenario`, else raise TypeError.
+
+    ``what`` names the function that was called, so the message says which
+    call received what (a file name, None, ...) and how to get a Scenario.
+    """
+    if isinstance(obj, Scenario):
+        return obj
+    hint = ""
+    if isinstance(obj, (str, Path)):
+        hint = f"; to read the file, call bucksim.load_scenario({str(obj)!r}) and pass its result"
+    raise TypeError(f"{what}: expected a Scenario (from bucksim.load_scenario(path) or built "
+                    f"from bucksim.parts), got {type(obj).__name__} {obj!r:.80}{hint}")
+
+
 def replace_key(scenario, key, value):
     """A new scenario with one value changed, validated like a file.
 
@@ -436,9 +450,12 @@ def replace_key(scenario, key, value):
     ScenarioError
         When the key is unknown or the new scenario is rejected.
     """
+    if not isinstance(key, str):
+        # the key itself is the bad value: name it (repr: 123 and "123" differ)
+        raise ScenarioError(repr(key), f"is not a scenario key: keys are dotted strings "
+                            f"such as 'inductor.inductance', not {type(key).__name__}")
     path = parse_key_path(key)
-    if (not isinstance(key, str) or not _KEY_SYNTAX.fullmatch(key) or not path
-            or not isinstance(path[0], str)):
+    if not _KEY_SYNTAX.fullmatch(key) or not path or not isinstance(path[0], str):
         raise ScenarioError(key, "must be a dotted scenario key such as "
                             "'inductor.inductance'", value)
     doc = scenario_to_dict(scenario)
