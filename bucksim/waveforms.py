@@ -13,7 +13,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from .engine import EngineResult, TransitionTable
-from .engine.kernels import evaluate
+from .engine.kernels import STATUS_DIVERGED, evaluate
+from .errors import SimulationError
 from .stage import CONDUCTION_NAMES, STATE_NAMES, Stage
 
 #: Signals every run can evaluate (see :meth:`bucksim.stage.Stage.signal`).
@@ -112,13 +113,25 @@ class Run:
         return self._signal_tables[name]
 
     def locate(self, times):
-        """Segment index holding each time (the later segment at a boundary)."""
-        times = np.atleast_1d(np.asarray(times, dtype=float))
+        """Segment index holding each time (the later segment at a boundary).
+
+        ``times`` [s] is flattened to one dimension. Raises ValueError for a
+        time that is NaN or outside ``[segments.t0[0], t_end]``, naming it.
+        """
+        try:
+            times = np.asarray(times, dtype=float).ravel()
+        except (TypeError, ValueError):
+            raise TypeError(f"times must be numbers [s] (a float or an array of them), "
+                            f"got {type(times).__name__}") from None
         seg = self.segments
         if len(seg) == 0:
             raise ValueError("the run holds no segments")
-        if np.any(times < seg.t0[0]) or np.any(times > self.t_end):
-            raise ValueError(f"times must lie in [{seg.t0[0]:.6g}, {self.t_end:.6g}] s")
+        lo, hi = float(seg.t0[0]), float(self.t_end)
+        bad = ~((times >= lo) & (times <= hi))      # NaN compares false: caught here too
+        if np.any(bad):
+            k = int(np.flatnonzero(bad)[0])
+            raise ValueError(f"times must lie in [{lo:.6g}, {hi:.6g}] s (the simulated span), "
+                             f"got {float(times[k])!r} at index {k}")
         idx = np.searchsorted(seg.t0, times, side="right") - 1
         return np.clip(idx, 0, len(seg) - 1), times
 
@@ -133,27 +146,50 @@ class Run:
         return out, idx
 
     def at(self, times, signal: str | None = None):
-        """State ``[iL [A], vC [V], ...]`` at ``times`` (shape (len, n)), or one signal's values.
+        """State ``[iL [A], vC [V], ...]`` at ``times`` [s], or one signal's values.
 
         The columns are ``stage.state_names``: ``iL``, ``vC``, and in an analog
         loop the compensator states ``w1 .. wk`` and the reference ``vref`` [V].
 
-        ``signal`` is one of :attr:`signals` (e.g. ``"vo"``, ``"vsw"``). At a
-        segment boundary the later segment is used (matters for ``vsw`` only;
-        states are continuous).
+        Parameters
+        ----------
+        times : float or array_like [s]
+            Any shape. Every time must be finite and lie in the simulated span
+            ``[segments.t0[0], t_end]``; a NaN or a time outside it raises
+            ValueError naming the value (no value is invented there).
+        signal : str, optional
+            One of :attr:`signals` (e.g. ``"vo"``, ``"vsw"``).
+
+        Returns
+        -------
+        ndarray
+            States: shape ``times.shape + (n,)``; one signal: ``times.shape``.
+            A scalar time counts as one element (shape ``(1, n)`` or ``(1,)``).
+            At a segment boundary the later segment is used (matters for
+            ``vsw`` only; states are continuous).
         """
+        shape = np.shape(times) if np.ndim(times) > 0 else (1,)
         z, idx = self.augmented_at(times)
         if signal is None:
-            return z[:, :self.stage.n]
+            return z[:, :self.stage.n].reshape(shape + (self.stage.n,))
         c = self.signal_table(signal)[self.segments.system[idx]]
-        return np.einsum("ij,ij->i", c, z)
+        return np.einsum("ij,ij->i", c, z).reshape(shape)
 
     def sample(self, n: int = 2001, start: float | None = None, stop: float | None = None,
                signals=("iL", "vo", "vsw")):
-        """Uniform samples for plots: dict with ``t`` and each signal [SI units]."""
-        start = self.segments.t0[0] if start is None else start
-        stop = self.t_end if stop is None else stop
-        t = np.linspace(start, stop, n)
+        """Uniform samples for plots: dict with ``t`` [s] and each signal [SI units].
+
+        ``n >= 1`` points from ``start`` to ``stop`` (default the whole run);
+        ``start <= stop``, both inside the simulated span, else ValueError.
+        """
+        start = float(self.segments.t0[0]) if start is None else float(start)
+        stop = float(self.t_end) if stop is None else float(stop)
+        if not start <= stop:
+            raise ValueError(f"sample: start must not be after stop, got start={start!r} s, "
+                             f"stop={stop!r} s")
+        if isinstance(n, bool) or int(n) != n or n < 1:
+            raise ValueError(f"sample: n must be a whole number >= 1, got {n!r}")
+        t = np.linspace(start, stop, int(n))
         z, idx = self.augmented_at(t)
         out = {"t": t}
         for name in signals:
@@ -168,14 +204,54 @@ class Run:
 
     # -- post-processing ---------------------------------------------------------
     def summary(self, cycles: int | None = None):
-        """Summary over the last ``cycles`` periods (default ``run.summary_cycles``)."""
+        """Summary over the last ``cycles`` periods (default ``run.summary_cycles``).
+
+        Raises :class:`~bucksim.errors.SimulationError` for a diverged run, and
+        for one whose states are finite but so large that a metric is not
+        (energies and loss integrals square the states): such a run is marked
+        diverged (``status`` 1, ``message``) rather than summarised with NaN.
+        """
         from .measure import summarize
-        return summarize(self, cycles)
+        try:
+            # overflow yields inf/NaN, which the check below reports in plain words
+            with np.errstate(over="ignore", invalid="ignore"):
+                out = summarize(self, cycles)
+            where = first_non_finite(out.to_dict())
+        except OverflowError as exc:    # Python floats overflow where numpy gives inf
+            where = ("arithmetic", f"overflow ({exc})")
+        if where is not None:
+            peak = float(np.max(np.abs(self.segments.x0))) if len(self.segments) else np.nan
+            self.status = STATUS_DIVERGED
+            self.message = (f"state out of range: the summary's {where[0]} is {where[1]} "
+                            f"(the states reach {peak:.3g} in magnitude, beyond what their "
+                            f"squares can represent); the run is treated as diverged, its "
+                            f"segments are kept")
+            sc = self.scenario
+            raise SimulationError(f"{sc.source or sc.title}: {self.message}; no summary")
+        return out
 
     def save(self, path, compression=None):
         """Write this run to the HDF5 file ``path`` (see :mod:`bucksim.storage`)."""
         from .storage import save_run
         return save_run(self, path, compression)
+
+
+def first_non_finite(tree, path=""):
+    """``(dotted path, value)`` of the first NaN or infinite float in a nested
+    dict/list of plain values (a summary's ``to_dict()``), or None."""
+    if isinstance(tree, dict):
+        items = ((f"{path}.{k}" if path else str(k), v) for k, v in tree.items())
+    elif isinstance(tree, (list, tuple)):
+        items = ((f"{path}[{i}]", v) for i, v in enumerate(tree))
+    else:
+        if isinstance(tree, float) and not np.isfinite(tree):
+            return path, tree
+        return None
+    for p, v in items:
+        hit = first_non_finite(v, p)
+        if hit is not None:
+            return hit
+    return None
 
 
 __all__ = ["Run", "SegmentTable", "SIGNALS", "LOOP_SIGNALS", "UNITS", "STATE_NAMES"]
