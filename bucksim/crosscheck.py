@@ -102,10 +102,31 @@ def crosscheck(scenario, run=None, cycles=None) -> CrossCheck:
         simulated from it, so the comparison is at the true operating point.
     cycles : int, optional
         Summary window in periods (default ``run.summary_cycles``).
+
+    Raises
+    ------
+    SimulationError
+        No periodic steady state, or (closed loop) an unstable one: a
+        largest |Floquet multiplier| of 1 or more means the loop departs
+        from the operating point, so no comparison at it is meaningful.
+        Also when a given ``run`` did not complete (``run.success`` False).
     """
+    from .errors import SimulationError
+    from .scenario import require_scenario
+    from .simulation import unstable_multiplier
+
+    require_scenario(scenario, "crosscheck")
     if run is None:
         from .simulation import simulate_settled
         run = simulate_settled(scenario, cycles)
+    where = scenario.source or scenario.title
+    if not run.success:
+        raise SimulationError(f"{where}: crosscheck needs a completed run: {run.message}")
+    ss = getattr(run, "steady_state", None)
+    if ss is not None and scenario.control.mode != "open-loop" and not ss.stable:
+        raise SimulationError(f"{where}: crosscheck: the periodic steady state is unstable "
+                              f"(largest |Floquet multiplier| {unstable_multiplier(ss):.3g} "
+                              f">= 1); the loop cannot hold this operating point")
     summary = run.summary(cycles=cycles).to_dict()
     budget = estimate(scenario)
     op = budget.operating_point

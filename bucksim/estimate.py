@@ -196,6 +196,8 @@ def estimate(scenario) -> LossBudget:
     current; :func:`bucksim.crosscheck` says where a simulation departs
     from that (DCM, reverse current, large ripple).
     """
+    from .scenario import require_scenario
+    require_scenario(scenario, "estimate")
     op = operating_point(scenario)
     D, fs, vin, io, dI = op["duty"], op["frequency"], op["vin"], op["io"], op["ripple"]
     pk, vl = op["peak"], op["valley"]

@@ -6,6 +6,9 @@ import numpy as np
 
 from .engine import build_table, integrate
 from .errors import SimulationError
+from .limits import check_run_fits
+from .errors import ScenarioError
+from .scenario import locate_in, require_scenario
 from .stage import Stage
 from .waveforms import Run
 
@@ -31,21 +34,43 @@ def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> "Run":
     Returns
     -------
     Run
+
+    Raises
+    ------
+    TypeError
+        ``scenario`` is not a Scenario (e.g. a file name: load it first).
+    ScenarioError
+        The run's segment table would not fit in memory (``run.cycles`` or
+        ``run.duration`` named with the figure it would need).
+    SimulationError
+        ``run.start = "steady-state"`` and shooting finds no periodic steady
+        state; or ``check`` and the run did not complete.
     """
+    require_scenario(scenario, "simulate")
     if scenario.control.mode != "open-loop":
         return _simulate_closed_loop(scenario, x0, check, progress)
+    stage = Stage(scenario)
+    _check_fits(scenario, stage.n)
     steady = None
     if x0 is None and scenario.run.start == "steady-state":
         steady = _steady(scenario, "run.start = 'steady-state'")
         x0 = steady.x
-    stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
     result = integrate(stage, x0, table=table, progress=progress)
     run = Run(scenario, stage, table, result)
     run.steady_state = steady
+    _check_state_range(run)
     if check and not run.success:
         raise SimulationError(run.message)
     return run
+
+
+def _check_fits(scenario, n_states):
+    """:func:`bucksim.limits.check_run_fits`, its refusal placed at the key's line."""
+    try:
+        check_run_fits(scenario, n_states)
+    except ScenarioError as err:
+        raise locate_in(scenario, err) from None
 
 
 def simulate_settled(scenario, cycles: int | None = None) -> "Run":
@@ -60,7 +85,8 @@ def simulate_settled(scenario, cycles: int | None = None) -> "Run":
 
     from .steady import periodic_scenario
 
-    ss = _steady(scenario, "no periodic steady state")
+    require_scenario(scenario, "simulate_settled")
+    ss = _steady(scenario, "settled operating point")
     base = periodic_scenario(scenario)
     n = int(cycles or scenario.run.summary_cycles)
     sc = dataclasses.replace(base, run=dataclasses.replace(
@@ -75,13 +101,35 @@ def simulate_settled(scenario, cycles: int | None = None) -> "Run":
 
 
 def _steady(scenario, context):
-    """Periodic steady state (open or closed loop), or a SimulationError saying why not."""
+    """Periodic steady state (open or closed loop), or a SimulationError saying why not.
+
+    A closed loop's periodic state with a Floquet multiplier on or outside
+    the unit circle is refused: the loop departs from it, so neither a run
+    started there nor a summary of it describes an operating point. (An
+    open-loop stage is passive; its multipliers are never outside.)
+    """
     from .steady import steady_state
 
     ss = steady_state(scenario)
+    where = f"{scenario.source or scenario.title}: {context}"
     if not ss.success:
-        raise SimulationError(f"{scenario.source or scenario.title}: {context}: {ss.message}")
+        err = SimulationError(f"{where}: {ss.message}")
+        err.steady_state = ss
+        raise err
+    if scenario.control.mode != "open-loop" and not ss.stable:
+        err = SimulationError(
+            f"{where}: the loop's periodic state is unstable (largest |Floquet multiplier| "
+            f"{unstable_multiplier(ss):.3g} >= 1): the loop cannot hold this operating point "
+            f"(check control.compensator)")
+        err.steady_state = ss   # the shooting result, for callers that record it
+        raise err
     return ss
+
+
+def unstable_multiplier(ss) -> float:
+    """Largest |Floquet multiplier| of a SteadyState (NaN when it has none)."""
+    mu = np.abs(np.asarray(ss.floquet))
+    return float(np.max(mu)) if mu.size else float("nan")
 
 
 def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
@@ -89,6 +137,7 @@ def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
     from .engine.controlled import integrate_closed_loop
 
     stage = Stage(scenario)
+    _check_fits(scenario, stage.n)
     table = build_table(stage.matrices, scenario.period)
     comp = None if stage.analog else design(scenario.control.compensator, scenario.period)
     steady = None
@@ -102,6 +151,7 @@ def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
     run.controller_state = end_state
     run.duty = duty
     run.control_output = u
+    _check_state_range(run)
     _check_loop_settles(run)
     if check and not run.success:
         raise SimulationError(run.message)
@@ -163,3 +213,46 @@ def _check_loop_settles(run, last: int = 200):
     if message is not None:
         run.status = status
         run.message = message
+
+
+#: Largest state magnitude whose square float64 holds: energies (``L iL^2 / 2``)
+#: and the loss integrals of ``z z^T`` overflow beyond it.
+STATE_RANGE = float(np.sqrt(np.finfo(float).max))
+STATUS_DIVERGED = 1
+
+
+def state_range_verdict(states, status):
+    """Flag states that are not finite, or too large for their squares.
+
+    Parameters
+    ----------
+    states : array_like
+        State values of a run (any shape: segment start states, end state).
+    status : int
+        The engine's status; only a completed run (0) is judged.
+
+    Returns
+    -------
+    (status, message) : (int, str or None)
+        ``STATUS_DIVERGED`` (1) and a message when some state is NaN, infinite
+        or above :data:`STATE_RANGE` in magnitude; else ``status`` and None.
+    """
+    if status != 0:
+        return status, None
+    a = np.abs(np.asarray(states, dtype=float))
+    if a.size == 0:
+        return status, None
+    peak = float(np.max(a))     # NaN propagates through max
+    if np.isfinite(peak) and peak <= STATE_RANGE:
+        return status, None
+    return STATUS_DIVERGED, (f"state diverged: a state reached {peak:.3g} (SI units), beyond "
+                             f"{STATE_RANGE:.3g} where its square (energy, loss integrals) "
+                             f"overflows; segments up to the end are kept")
+
+
+def _check_state_range(run):
+    status, message = state_range_verdict(run.segments.x0, run.status)
+    if message is None:
+        status, message = state_range_verdict(run.x_end, run.status)
+    if message is not None:
+        run.status, run.message = status, message
