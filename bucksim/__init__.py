@@ -44,14 +44,14 @@ def open_run(path):
     return _open(path)
 
 
-def steady_state(scenario, **kw):
-    """Periodic steady state by shooting-Newton (open loop: :mod:`bucksim.steady`;
-    closed loop: :mod:`bucksim.steady_loop`)."""
-    if scenario.control.mode != "open-loop":
-        from .steady_loop import closed_loop_steady_state
-        return closed_loop_steady_state(scenario, **kw)
+def steady_state(scenario, x0=None, *, controller=None, tol=None, max_iter=None,
+                 max_brute_cycles=None):
+    """Periodic steady state by shooting-Newton, open or closed loop, one signature
+    (see :func:`bucksim.steady.steady_state`; closed loop:
+    :func:`bucksim.steady_loop.closed_loop_steady_state`)."""
     from .steady import steady_state as _ss
-    return _ss(scenario, **kw)
+    return _ss(scenario, x0, controller=controller, tol=tol, max_iter=max_iter,
+               max_brute_cycles=max_brute_cycles)
 
 
 def __getattr__(name):

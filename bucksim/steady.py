@@ -28,6 +28,7 @@ References
 from __future__ import annotations
 
 import dataclasses
+import numbers
 from dataclasses import dataclass
 
 import numpy as np
@@ -168,38 +169,78 @@ def initial_guess(scenario) -> np.ndarray:
     return guess
 
 
-def steady_state(scenario, x0=None, *, tol: float = 1e-12, max_iter: int = 20,
-                 max_brute_cycles: int = 200_000) -> SteadyState:
+def check_settings(tol, max_iter, max_brute_cycles):
+    """Refuse solver settings that cannot mean anything (ValueError naming them)."""
+    if not (isinstance(tol, numbers.Real) and not isinstance(tol, bool) and tol > 0
+            and np.isfinite(tol)):
+        raise ValueError(f"tol must be a finite number > 0, got {tol!r}")
+    for name, v in (("max_iter", max_iter), ("max_brute_cycles", max_brute_cycles)):
+        if isinstance(v, bool) or not isinstance(v, numbers.Integral) or v < 0:
+            raise ValueError(f"{name} must be a whole number >= 0, got {v!r}")
+
+
+#: Solver defaults: open loop (exact monodromy) and closed loop (differenced Jacobian).
+OPEN_LOOP_DEFAULTS = {"tol": 1e-12, "max_iter": 20, "max_brute_cycles": 200_000}
+CLOSED_LOOP_DEFAULTS = {"tol": 1e-11, "max_iter": 12, "max_brute_cycles": 100_000}
+
+
+def steady_state(scenario, x0=None, *, controller=None, tol: float | None = None,
+                 max_iter: int | None = None,
+                 max_brute_cycles: int | None = None) -> SteadyState:
     """Periodic steady state of a scenario at its t = 0 level.
 
     Closed-loop scenarios are handed to
     :func:`bucksim.steady_loop.closed_loop_steady_state` (plant and
-    controller states); the rest of this docstring is the open-loop method.
+    controller states) with the same arguments; the rest of this docstring
+    is the open-loop method.
 
     Parameters
     ----------
     scenario : Scenario
     x0 : array_like, optional
-        Starting guess ``[iL [A], vC [V]]``; default the averaged CCM
-        operating point.
-    tol : float
-        Converged when the relative residual is below ``tol``.
-    max_iter : int
-        Newton updates before falling back.
-    max_brute_cycles : int
-        Periods the brute-force fallback may simulate.
+        Starting guess ``[iL [A], vC [V]]`` (closed loop: the plant state);
+        default the averaged operating point.
+    controller : ControllerState or array_like, optional
+        Closed loop only: the controller's starting state (see
+        :func:`~bucksim.steady_loop.closed_loop_steady_state`).
+    tol : float, optional
+        Converged when the relative residual is at most ``tol``; default
+        1e-12 (open loop), 1e-11 (closed loop).
+    max_iter : int, optional
+        Newton updates before falling back; default 20 (closed loop 12).
+    max_brute_cycles : int, optional
+        Periods the brute-force fallback may simulate (0: no fallback);
+        default 200 000 (closed loop 100 000).
 
     Returns
     -------
     SteadyState
         ``method`` says which path converged; a fallback is reported in
-        ``status`` (1) and ``message``, never silent.
+        ``status`` (1) and ``message``, never silent; status 2 when neither
+        converged within ``max_iter`` / ``max_brute_cycles``.
     """
-    if scenario.control.mode != "open-loop":
+    from .scenario import require_scenario
+
+    require_scenario(scenario, "steady_state")
+    closed = scenario.control.mode != "open-loop"
+    given = {"tol": tol, "max_iter": max_iter, "max_brute_cycles": max_brute_cycles}
+    opts = {k: (v if v is not None else (CLOSED_LOOP_DEFAULTS if closed else
+                                         OPEN_LOOP_DEFAULTS)[k]) for k, v in given.items()}
+    if closed:
         from .steady_loop import closed_loop_steady_state
-        return closed_loop_steady_state(scenario)
+        return closed_loop_steady_state(scenario, x0, controller=controller, **opts)
+    if controller is not None:
+        raise ValueError(f"{scenario.source or scenario.title}: controller: an open-loop "
+                         f"scenario has no controller state, got {controller!r}")
+    check_settings(**opts)
+    tol, max_iter, max_brute_cycles = opts["tol"], opts["max_iter"], opts["max_brute_cycles"]
     pmap = PeriodMap(scenario)
-    x = initial_guess(scenario) if x0 is None else np.asarray(x0, dtype=float).copy()
+    if x0 is None:
+        x = initial_guess(scenario)
+    else:
+        x = np.asarray(x0, dtype=float).ravel().copy()
+        if x.shape[0] != 2 or not np.all(np.isfinite(x)):
+            raise ValueError(f"x0 must be two finite values [iL [A], vC [V]], got {x.tolist()}")
     n = x.shape[0]
     eye = np.eye(n)
     method = "newton"
@@ -226,18 +267,23 @@ def steady_state(scenario, x0=None, *, tol: float = 1e-12, max_iter: int = 20,
             break
         x, x1, J, res, r, resid = xt, xt1, Jt, rest, rt, rt_norm
         it += 1
+    newton_failed = (f"Newton did not converge in {it} of max_iter = {max_iter} updates "
+                     f"(residual {resid:.2e} > tol {tol:g})")
     if resid <= tol:
         status = STEADY_OK if method == "newton" else STEADY_FALLBACK
-        msg = f"converged by {method} in {it} updates (residual {resid:.2e})"
+        msg = f"converged by {method} in {it} updates (residual {resid:.2e}, tol {tol:g})"
+    elif max_brute_cycles == 0:
+        status, msg = STEADY_FAILED, newton_failed
     else:
         x, x1, J, resid, done = _brute_force(pmap, x, tol, max_brute_cycles)
         method = "brute-force"
         status = STEADY_FALLBACK if done else STEADY_FAILED
-        msg = (f"Newton did not converge; brute-force settling "
-               f"{'converged' if done else 'did not converge'} (residual {resid:.2e})")
-    return SteadyState(x=x, iterations=it, residual=resid,
-                       floquet=np.linalg.eigvals(J), monodromy=J, method=method,
-                       cycles=pmap.evaluations, status=status, message=msg)
+        msg = (f"{newton_failed}; brute-force settling "
+               + (f"converged (residual {resid:.2e})" if done else
+                  f"did not converge in {max_brute_cycles} periods (residual {resid:.2e})"))
+    mu = np.linalg.eigvals(J) if np.all(np.isfinite(J)) else np.full(n, np.nan)
+    return SteadyState(x=x, iterations=it, residual=resid, floquet=mu, monodromy=J,
+                       method=method, cycles=pmap.evaluations, status=status, message=msg)
 
 
 def _brute_force(pmap, x, tol, max_cycles):

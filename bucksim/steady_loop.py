@@ -28,7 +28,8 @@ from .control import design
 from .engine.controlled import ControllerState, integrate_closed_loop
 from .engine.tables import build_table
 from .stage import Stage
-from .steady import STEADY_FAILED, STEADY_FALLBACK, STEADY_OK, SteadyState, periodic_scenario
+from .steady import (STEADY_FAILED, STEADY_FALLBACK, STEADY_OK, SteadyState, check_settings,
+                     periodic_scenario)
 
 
 class LoopMap:
@@ -82,20 +83,91 @@ class LoopMap:
         return J
 
 
-def closed_loop_steady_state(scenario, y0=None, *, tol=1e-11, max_iter=12,
-                             max_brute_cycles=100_000) -> SteadyState:
+def closed_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1e-11,
+                             max_iter: int = 12, max_brute_cycles: int = 100_000) -> SteadyState:
     """Periodic steady state of a closed-loop scenario (see module notes).
 
-    Returns a :class:`~bucksim.steady.SteadyState` whose ``x`` is the plant
-    state and with an extra attribute ``controller`` (a ControllerState).
+    Parameters
+    ----------
+    scenario : Scenario
+        A closed-loop scenario (``control.mode`` not ``"open-loop"``).
+    x0 : array_like, optional
+        Starting plant state ``[iL [A], vC [V]]``. An analog loop also takes
+        its full stage state (``SteadyState.x``: ``[iL, vC, w1..wk, vref]``;
+        the reference is held at ``control.reference``). Default: the
+        averaged operating point, then (if Newton needs help) a few hundred
+        periods from rest.
+    controller : ControllerState or array_like, optional
+        Starting controller state: a digital loop's ``ControllerState`` (or
+        its ``vector()``: compensator states, then the delayed duties); an
+        analog loop's compensator states ``w1..wk`` [V]. Default: the
+        compensator's equilibrium at the averaged operating point.
+    tol : float
+        Converged when the relative residual ``max_i |P(y)_i - y_i| / scale_i``
+        is at most ``tol``.
+    max_iter : int
+        Newton updates before falling back to brute-force settling.
+    max_brute_cycles : int
+        Periods the brute-force fallback may simulate (0: no fallback).
+
+    Returns
+    -------
+    SteadyState
+        ``x`` is the stage state (analog: with the compensator states and the
+        reference); the extra attribute ``controller`` is a ControllerState.
+        A periodic state whose largest |Floquet multiplier| is at least 1 is
+        returned (``stable`` False) and its ``message`` says it is unstable.
     """
+    from .scenario import require_scenario
+    require_scenario(scenario, "closed_loop_steady_state")
+    if scenario.control.mode == "open-loop":
+        raise ValueError(f"{scenario.source or scenario.title}: control.mode: "
+                         f"closed_loop_steady_state needs a closed loop, got 'open-loop' "
+                         f"(use bucksim.steady_state)")
+    check_settings(tol, max_iter, max_brute_cycles)
     lm = LoopMap(scenario)
-    if y0 is None:
+    if x0 is None and controller is None:
         first = _solve(lm, _averaged_guess(lm), tol, max_iter)
         if first.success and first.method == "newton":
             return first
         y0 = _settle_guess(lm)
+    else:
+        y0 = _start_vector(lm, x0, controller)
     return _solve(lm, y0, tol, max_iter, max_brute_cycles)
+
+
+def _start_vector(lm, x0, controller):
+    """The shooting vector from a plant state and/or a controller state."""
+    guess = _averaged_guess(lm)
+    p, n_ctl = lm.n_plant, guess.shape[0] - lm.n_plant
+    y = guess.copy()
+    if x0 is not None:
+        x = np.asarray(x0, dtype=float).ravel()
+        full = lm.stage.n if lm.analog else None
+        if x.shape[0] == 2:
+            y[:2] = x
+        elif lm.analog and x.shape[0] in (p, full):
+            y[:p] = x[:p]
+        else:
+            want = "2 ([iL, vC])" + (f", {p} or {full} (the stage state)" if lm.analog else "")
+            raise ValueError(f"x0 must hold {want} values, got {x.shape[0]}")
+        if not np.all(np.isfinite(x)):
+            raise ValueError(f"x0 must be finite, got {x.tolist()}")
+    if controller is not None:
+        if isinstance(controller, ControllerState):
+            c = controller.vector() if not lm.analog else np.asarray(controller.w, dtype=float)
+        else:
+            c = np.asarray(controller, dtype=float).ravel()
+        width = (p - 2) if lm.analog else n_ctl
+        if c.shape[0] != width or not np.all(np.isfinite(c)):
+            raise ValueError(f"controller must hold {width} finite values (the compensator "
+                             f"states{'' if lm.analog else ', then the delayed duties'}), "
+                             f"got {c.tolist()}")
+        if lm.analog:
+            y[2:p] = c
+        else:
+            y[p:] = c
+    return y
 
 
 def _averaged_guess(lm):
@@ -158,18 +230,29 @@ def _solve(lm, y0, tol, max_iter, max_brute_cycles=0):
         y, y1, res, resid = yt, yt1, rest, rt
         it += 1
     status = STEADY_OK if method == "newton" else STEADY_FALLBACK
-    msg = f"converged by {method} in {it} updates (residual {resid:.2e})"
+    msg = f"converged by {method} in {it} updates (residual {resid:.2e}, tol {tol:g})"
+    newton_failed = (f"Newton did not converge in {it} of max_iter = {max_iter} updates "
+                     f"(residual {resid:.2e} > tol {tol:g})")
     if resid > tol and max_brute_cycles == 0:
-        status, msg = STEADY_FAILED, f"Newton did not converge (residual {resid:.2e})"
+        status, msg = STEADY_FAILED, newton_failed
     if resid > tol and max_brute_cycles > 0:
         y, resid, done = _brute_force(lm, y, tol, scale, max_brute_cycles)
         method = "brute-force"
         status = STEADY_FALLBACK if done else STEADY_FAILED
-        msg = (f"Newton did not converge; brute-force settling "
-               f"{'converged' if done else 'did not converge'} (residual {resid:.2e})")
-    J = lm.jacobian(y, scale)
+        msg = (f"{newton_failed}; brute-force settling "
+               + (f"converged (residual {resid:.2e})" if done else
+                  f"did not converge in {max_brute_cycles} periods (residual {resid:.2e}): "
+                  f"the loop may be unstable or limit-cycling (check control.compensator)"))
+    if np.all(np.isfinite(y)):
+        J = lm.jacobian(y, scale)
+        mu = np.linalg.eigvals(J) if np.all(np.isfinite(J)) else np.full(n, np.nan)
+    else:
+        J, mu = np.full((n, n), np.nan), np.full(n, np.nan)
+    if status != STEADY_FAILED and not np.all(np.abs(mu) < 1.0):
+        msg += (f"; unstable: largest |Floquet multiplier| {np.max(np.abs(mu)):.3g} >= 1, "
+                f"the loop cannot hold this periodic state")
     x, ctl = lm.split(y)   # x: the stage's full state (analog: with the reference)
-    out = SteadyState(x=x, iterations=it, residual=resid, floquet=np.linalg.eigvals(J),
+    out = SteadyState(x=x, iterations=it, residual=resid, floquet=mu,
                       monodromy=J, method=method, cycles=lm.evaluations, status=status,
                       message=msg)
     out.controller = ctl
