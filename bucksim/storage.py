@@ -7,7 +7,7 @@ Layout, ``layout_version = 1`` (all values SI base units)::
         bucksim_version  str: version that wrote the file
         created          str: ISO 8601 UTC time of writing
         t_end            float [s]: time reached
-        status           int: 0 completed, 1 diverged
+        status           int: 0 completed, 1 diverged, 3 control loop did not settle
         message          str: the engine's status message
         x_end_iL         float [A]: inductor current at t_end
         x_end_vC         float [V]: capacitor voltage at t_end
@@ -25,6 +25,9 @@ Layout, ``layout_version = 1`` (all values SI base units)::
         exponentials     (n_sys, K, m, m): expm(M_s steps[k])
         steps            (K,) [s]: steps[k] = period 2**-k
         attribute guard  [s]: longest interval searched for a crossing in one piece
+        attribute taylor_gap [s]: shortest table step; shorter remainders and zero
+                         brackets are finished on the Taylor series (files without
+                         it read steps[-1], the value every writer has used)
     /scenario
         resolved         scalar string: JSON of scenario_to_dict (SI base units;
                          non-finite numbers as ``Infinity``, as Python's json writes)
@@ -35,12 +38,14 @@ Writers create ``.NAME.<random>.partial`` in the target folder and rename it to
 ``NAME`` only once ``complete`` is set and the data are on disk, so ``NAME``
 never holds half a run. Ctrl-C or an exception removes the partial file; a
 killed process (SIGKILL, power loss) can leave one behind, safe to delete.
+
+Reading and its checks live in :mod:`bucksim.runfile` (``open_run`` is
+re-exported here); :mod:`bucksim.stored` summarises a file block by block.
 """
 
 from __future__ import annotations
 
 import contextlib
-import dataclasses
 import errno
 import json
 import os
@@ -51,37 +56,26 @@ from datetime import UTC, datetime
 
 import numpy as np
 
-from .engine import EngineResult, TransitionTable, build_table, integrate
-from .errors import ScenarioError, StorageError
-from .stage import CONDUCTION_NAMES, CONTROLLER_UNIT, N_CONDUCTION, Stage
+from .engine import TransitionTable, build_table, integrate
+from .runfile import (  # noqa: F401
+    _WRITE_ROWS,
+    CHUNK_ROWS,
+    COMPRESSIONS,
+    LAYOUT_VERSION,
+    MIN_CHUNK_ROWS,
+    RunHeader,
+    _columns,
+    check_rows,
+    guarded_read,
+    open_run,
+    open_run_file,
+    read_rows,
+)
+from .stage import CONDUCTION_NAMES, CONTROLLER_UNIT, Stage
 from .waveforms import UNITS, Run
 
-__all__ = ["LAYOUT_VERSION", "open_run", "save_run", "simulate_to_file"]
-
-LAYOUT_VERSION = 1
-
-#: Rows per HDF5 chunk: 512 KiB of float64, inside HDF5's default 1 MiB chunk cache.
-CHUNK_ROWS = 1 << 16
-
-#: Smallest chunk: short runs get a chunk near their length, as HDF5 stores whole chunks.
-MIN_CHUNK_ROWS = 1 << 12
-
-#: Rows per write or read of a column block (bounds the temporary copies).
-_WRITE_ROWS = 16 * CHUNK_ROWS
-
-COMPRESSIONS = (None, "gzip", "lzf")
-
-_FIXED_COLUMNS = (("t0", np.float64, "s"), ("dt", np.float64, "s"),
-                  ("conduction", np.int8, "1"), ("system", np.int32, "1"))
-
-_RUN_ATTRS = ("t_end", "status", "message")
-
-
-def _columns(state_names):
-    """Segment-table columns ``(name, dtype, unit)`` for a stage with these states."""
-    return _FIXED_COLUMNS + tuple((f"x0_{name}", np.float64, UNITS.get(name, CONTROLLER_UNIT))
-                                  for name in state_names)
-
+__all__ = ["LAYOUT_VERSION", "RunHeader", "check_rows", "open_run", "open_run_file",
+           "read_rows", "save_run", "simulate_to_file"]
 
 # ----------------------------------------------------------------------------- writing
 
@@ -195,6 +189,7 @@ class _RunWriter:
             sysg.create_dataset(name, data=np.asarray(data, dtype=np.float64))
             sysg[name].attrs["units"] = unit
         sysg.attrs["guard"] = float(table.guard)
+        sysg.attrs["taylor_gap"] = float(table.taylor_gap)
         scg = f.create_group("scenario")
         text_type = h5py.string_dtype()
         scg.create_dataset("resolved", data=json.dumps(scenario_to_dict(scenario)),
@@ -275,19 +270,42 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
     Memory stays bounded by one engine chunk (``chunk_cycles`` periods,
     default the engine's) whatever the run length. The file is written
     atomically as by :func:`save_run` (``compression`` as there), and
-    :func:`open_run` reads it the same. Open or closed loop; the initial
-    state is the scenario's (``run.start = "steady-state"`` is not applied
-    here).
+    :func:`open_run` reads it the same. Open or closed loop, from rest, a
+    given state or (``run.start = "steady-state"``) the periodic steady
+    state, found first as :func:`bucksim.simulate` does. A closed loop that
+    ends limit-cycling gets the same status 3, "control loop did not
+    settle", as in memory (:func:`bucksim.simulation.loop_settle_verdict`).
 
     Returns
     -------
     dict
         ``path``, ``n_segments``, ``t_end`` [s], ``status``, ``message``.
+
+    Raises
+    ------
+    ScenarioError
+        Before anything is written, when the run's segments would not fit
+        on the disk that holds ``path`` (naming ``run.cycles`` or
+        ``run.duration`` and the size it would need).
+    SimulationError
+        When ``run.start = "steady-state"`` and there is no periodic steady state.
     """
     import h5py
 
+    from .limits import check_run_fits
+    from .simulation import _steady, loop_settle_verdict
+
     _filters(compression)
     stage = Stage(scenario)
+    folder = os.path.dirname(os.path.abspath(os.fspath(path)))
+    check_run_fits(scenario, len(stage.state_names), stream=True,
+                   directory=folder if os.path.isdir(folder) else None)
+    x0 = state = None
+    if scenario.run.start == "steady-state":
+        steady = _steady(scenario, "run.start = 'steady-state'")
+        x0 = steady.x
+        if scenario.control.mode != "open-loop":
+            state = steady.controller
     table = build_table(stage.matrices, scenario.period)
     options = {} if chunk_cycles is None else {"chunk_cycles": int(chunk_cycles)}
     # nominal segments per cycle: 2 phases (asynchronous) or 4 (with dead times)
@@ -295,209 +313,20 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
     with _InterruptLatch() as latch, _atomic_target(path) as tmp, h5py.File(tmp, "x") as f:
         writer = _RunWriter(f, scenario, table, compression, rows, latch, stage.state_names)
         if scenario.control.mode == "open-loop":
-            res = integrate(stage, table=table, sink=writer.append, progress=progress,
+            res = integrate(stage, x0, table=table, sink=writer.append, progress=progress,
                             **options)
+            status, message = res.status, res.message
         else:
             from .control import design
             from .engine.controlled import integrate_closed_loop
             comp = None if stage.analog else design(scenario.control.compensator,
                                                     scenario.period)
-            res, _, _, _ = integrate_closed_loop(stage, comp, table=table, sink=writer.append,
-                                                 progress=progress, **options)
-        writer.finish(res.t_end, res.x_end, res.status, res.message)
-    return _report(path, writer.n, res.t_end, res.status, res.message)
+            res, _, duty, _ = integrate_closed_loop(stage, comp, x0, state, table=table,
+                                                    sink=writer.append, progress=progress,
+                                                    **options)
+            status, verdict = loop_settle_verdict(scenario.control, duty, res.status)
+            message = res.message if verdict is None else verdict
+        writer.finish(res.t_end, res.x_end, status, message)
+    return _report(path, writer.n, res.t_end, status, message)
 
 
-# ----------------------------------------------------------------------------- reading
-
-def open_run(path) -> Run:
-    """Read a run file written by :func:`save_run` or :func:`simulate_to_file`.
-
-    The scenario is rebuilt from its stored resolved values, the stage from
-    the scenario, and the transition table is the stored one, so
-    ``open_run(p).summary()`` equals the summary of the run that was saved.
-
-    Raises
-    ------
-    FileNotFoundError
-        If ``path`` does not exist.
-    StorageError
-        If the file is not HDF5, is truncated or corrupt, is not a bucksim
-        run, is incomplete, has a newer layout, or its matrices do not belong
-        to its scenario (stale or foreign file). The message names the file.
-    """
-    import h5py
-
-    name = os.fspath(path)
-    if not os.path.exists(name):
-        raise FileNotFoundError(errno.ENOENT, "no such run file", name)
-    if os.path.isdir(name):
-        raise StorageError(name, "is a folder, not a run file")
-    if not h5py.is_hdf5(name):
-        raise StorageError(name, "not an HDF5 file (no HDF5 signature); run files are HDF5")
-    try:
-        f = h5py.File(name, "r")
-    except OSError as exc:
-        raise StorageError(name, f"truncated or corrupt HDF5 file ({_first_line(exc)})") from None
-    with f:
-        try:
-            return _read(f, name)
-        except StorageError:
-            raise
-        except (OSError, KeyError, ValueError, TypeError) as exc:
-            raise StorageError(name, f"corrupt run file ({_first_line(exc)})") from None
-
-
-def _first_line(exc):
-    return str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-
-
-def _corrupt(path, what):
-    return StorageError(path, f"corrupt run file: {what}")
-
-
-def _read(f, path) -> Run:
-    attrs = f.attrs
-    if "layout_version" not in attrs:
-        raise StorageError(path, "not a bucksim run file (an HDF5 file without the "
-                           "'layout_version' attribute)")
-    version = attrs["layout_version"]
-    if not isinstance(version, (int, np.integer)) or version < 1:
-        raise _corrupt(path, f"layout_version = {version!r} is not a positive integer")
-    if version > LAYOUT_VERSION:
-        writer = attrs.get("bucksim_version", "an unknown version")
-        raise StorageError(path, f"written with layout version {int(version)} (by bucksim "
-                           f"{writer}); this bucksim reads layout version {LAYOUT_VERSION}: "
-                           "upgrade bucksim to open it")
-    complete = attrs.get("complete", False)
-    if not (isinstance(complete, (bool, np.bool_)) and complete):
-        raise StorageError(path, "incomplete run file: its writer stopped before finishing "
-                           "('complete' is not set)")
-    missing = [k for k in _RUN_ATTRS if k not in attrs]
-    if missing:
-        raise _corrupt(path, "missing file attribute(s) " + ", ".join(missing))
-    # the small parts first: a stale or foreign file is refused before its segments are read
-    table = _read_table(f, path)
-    scenario = _read_scenario(f, path)
-    stage = Stage(scenario)
-    _check_table(path, attrs.get("bucksim_version", "an unknown version"), scenario, stage,
-                 table)
-    missing = [f"x_end_{n}" for n in stage.state_names if f"x_end_{n}" not in attrs]
-    if missing:
-        raise _corrupt(path, "missing file attribute(s) " + ", ".join(missing))
-    cols = _read_segments(f, path, stage.state_names)
-    if len(cols["t0"]):
-        cond, system, n_sys = cols["conduction"], cols["system"], len(table.matrices)
-        if cond.min() < 0 or cond.max() >= N_CONDUCTION:
-            raise _corrupt(path, f"conduction codes outside 0..{N_CONDUCTION - 1}")
-        if system.min() < 0 or system.max() >= n_sys:
-            raise _corrupt(path, f"system ids outside 0..{n_sys - 1}")
-    result = EngineResult(cols["t0"], cols["dt"], cols["conduction"], cols["system"], cols["x0"],
-                          x_end=np.array([float(attrs[f"x_end_{n}"])
-                                          for n in stage.state_names]),
-                          t_end=float(attrs["t_end"]), status=int(attrs["status"]),
-                          message=str(attrs["message"]))
-    return Run(scenario, stage, table, result)
-
-
-def _dataset(f, path, key, ndim=None):
-    import h5py
-
-    ds = f.get(key)
-    if not isinstance(ds, h5py.Dataset):
-        raise _corrupt(path, f"dataset /{key} is missing")
-    if ndim is not None and ds.ndim != ndim:
-        raise _corrupt(path, f"/{key} has {ds.ndim} dimensions, expected {ndim}")
-    return ds
-
-
-def _read_segments(f, path, state_names):
-    """Segment columns by name, plus ``x0`` (n_seg, n_states) read in place."""
-    sets = {}
-    for name, dtype, _unit in _columns(state_names):
-        ds = _dataset(f, path, f"segments/{name}", 1)
-        if ds.dtype != dtype:
-            raise _corrupt(path, f"/segments/{name} has type {ds.dtype}, "
-                           f"expected {np.dtype(dtype)}")
-        sets[name] = ds
-    lengths = {name: ds.shape[0] for name, ds in sets.items()}
-    if len(set(lengths.values())) > 1:
-        raise _corrupt(path, "segment columns differ in length ("
-                       + ", ".join(f"{k} {v}" for k, v in lengths.items()) + ")")
-    n = lengths["t0"]
-    cols = {name: sets[name][()] for name in ("t0", "dt", "conduction", "system")}
-    # block by block into one array: the states are never held twice (HDF5's own
-    # strided read into a column is far slower and not leaner)
-    x0 = np.empty((n, len(state_names)))
-    for j, name in enumerate(state_names):
-        ds = sets[f"x0_{name}"]
-        for a in range(0, n, _WRITE_ROWS):
-            x0[a:a + _WRITE_ROWS, j] = ds[a:a + _WRITE_ROWS]
-    cols["x0"] = x0
-    return cols
-
-
-def _read_table(f, path) -> TransitionTable:
-    arrays = {}
-    for name, ndim in (("matrices", 3), ("exponentials", 4), ("steps", 1)):
-        ds = _dataset(f, path, f"systems/{name}", ndim)
-        if ds.dtype != np.float64:
-            raise _corrupt(path, f"/systems/{name} has type {ds.dtype}, expected float64")
-        arrays[name] = ds[()]
-    mats, exps, steps = arrays["matrices"], arrays["exponentials"], arrays["steps"]
-    n_sys, m = mats.shape[0], mats.shape[1]
-    # the state size itself is checked against the scenario's stage later
-    if mats.shape[1:] != (m, m) or exps.shape != (n_sys, len(steps), m, m):
-        raise _corrupt(path, f"/systems shapes do not fit: matrices {mats.shape}, "
-                       f"exponentials {exps.shape}, steps {steps.shape}")
-    guard = f["systems"].attrs.get("guard")
-    if not isinstance(guard, (float, np.floating)):
-        raise _corrupt(path, "/systems has no float attribute 'guard'")
-    return TransitionTable(mats, exps, steps, float(guard))
-
-
-def _text(f, path, key):
-    return _dataset(f, path, key).asstr()[()]
-
-
-def _read_scenario(f, path):
-    import tomli_w
-
-    from .scenario import loads_scenario
-
-    resolved = _text(f, path, "scenario/resolved")
-    text = _text(f, path, "scenario/text")
-    source = str(f["scenario"].attrs.get("source", ""))
-    where = f"{path} (stored scenario)"
-    try:
-        if resolved:
-            doc = json.loads(resolved)
-            if not isinstance(doc, dict):
-                raise _corrupt(path, "/scenario/resolved is not a JSON object")
-            scenario = loads_scenario(tomli_w.dumps(doc), source=where)
-        elif text:
-            scenario = loads_scenario(text, source=where)
-        else:
-            raise _corrupt(path, "the stored scenario is empty")
-    except json.JSONDecodeError as exc:
-        raise _corrupt(path, f"/scenario/resolved is not valid JSON ({exc})") from None
-    except ScenarioError as exc:
-        raise StorageError(path, f"the stored scenario is not accepted by this bucksim: "
-                           f"{exc}") from None
-    return dataclasses.replace(scenario, source=source or None, text=text or None)
-
-
-def _check_table(path, writer, scenario, stage, table):
-    """Refuse a transition table that does not belong to the stored scenario."""
-    fresh = stage.matrices
-    # a tolerance, not equality, so harmless reordering of the stage arithmetic
-    # in a later bucksim does not orphan old files; foreign data differ grossly
-    if (table.matrices.shape != fresh.shape
-            or not np.allclose(table.matrices, fresh, rtol=1e-12, atol=0.0)):
-        raise StorageError(path, "stale or foreign run file: its stored system matrices are "
-                           "not those of its stored scenario's power stage (written by "
-                           f"bucksim {writer} with a different stage model, or altered)")
-    if len(table.steps) == 0 or not np.isclose(table.steps[0], scenario.period, rtol=1e-12,
-                                               atol=0.0):
-        raise StorageError(path, "stale or foreign run file: its transition table is not "
-                           f"built on the scenario's period {scenario.period:.6g} s")
