@@ -26,6 +26,11 @@ STATUS_MESSAGES = {
 CHUNK_CYCLES = 1 << 15
 #: Periods of the duty and control logs a streamed closed loop keeps (its end).
 STREAM_LOG_TAIL = 1024
+#: Segment rows reserved per period and integrator mode before a chunk runs:
+#: two high-side pieces (blanked, live) and each off phase split at most once
+#: by a zero-current event (asynchronous: 4). A chunk that needs more is run
+#: again with twice the rows, up to the memory budget (see :func:`run_chunks`).
+ROWS_PER_PERIOD = {"synchronous": 8, "asynchronous": 4}
 
 
 @dataclass
@@ -245,16 +250,19 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
     keep_logs = sink is None and controller.control != CONTROL_OPEN
     pieces, duty_log, u_log = [], [np.zeros(0)], [np.zeros(0)]
     level, status, t, c = 0, STATUS_OK, 0.0, 0
+    held = 0        # bytes of segments kept so far (in memory only)
     while c < n_cycles and status == STATUS_OK:
         c_stop = min(n_cycles, c + chunk_cycles)
         k = c_stop - c
-        # per period: two high-side pieces (blanked, live) and each off phase split
-        # at most once by a zero-current event (8 rows; asynchronous 4), plus the
-        # splits at level changes; an analog integrator's holds add a few more
-        rows = (8 if strategy != 0 else 4) * controller.n_modes
+        # rows per period (ROWS_PER_PERIOD), plus the splits at level changes; an
+        # analog integrator's holds add a few more
+        rows = ROWS_PER_PERIOD["synchronous" if strategy != 0 else "asynchronous"]
+        rows *= controller.n_modes
         saved = (z.copy(), controller.w.copy(), controller.queue.copy(), level)
         while True:
-            bufs = segment_buffers(k * rows + 2 * len(level_times) + 8, n)
+            cap = k * rows + 2 * len(level_times) + 8
+            _refuse_buffer(sc, cap, n, k, rows, c, held)
+            bufs = segment_buffers(cap, n)
             dl, ul = np.full(k, np.nan), np.full(k, np.nan)
             nseg, level_out, status, t = run_cycles(
                 table.matrices, table.exponentials, table.steps, P, nominal, table.guard,
@@ -272,10 +280,13 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
         if sink is not None:
             sink(*piece)
         else:
-            pieces.append(piece)
+            # copies, not views: a view would keep the whole reserved buffer alive
+            pieces.append(tuple(col.copy() for col in piece))
+            held += nseg * segment_row_bytes(n)
         if keep_logs:
             duty_log.append(dl)
             u_log.append(ul)
+            held += 2 * 8 * k
         elif controller.control != CONTROL_OPEN:  # streamed: a bounded tail only
             duty_log = [np.concatenate(duty_log + [dl])[-STREAM_LOG_TAIL:]]
             u_log = [np.concatenate(u_log + [ul])[-STREAM_LOG_TAIL:]]
@@ -287,6 +298,35 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
     res = EngineResult(*join_segments(pieces, n), x_end=z[:n].copy(), t_end=float(t),
                        status=int(status), message=STATUS_MESSAGES[int(status)])
     return res, np.concatenate(duty_log), np.concatenate(u_log)
+
+
+def _refuse_buffer(scenario, cap, n, k, rows, c, held):
+    """Raise SimulationError when a chunk's segment buffer would not fit in memory.
+
+    The buffer doubles each time a chunk finds more segments per period than
+    it reserved (events that come ever closer, e.g. a hold that chatters);
+    without a bound that grows until the operating system ends the process.
+    """
+    from ..errors import SimulationError
+    from ..limits import format_bytes, memory_budget
+
+    need = held + cap * segment_row_bytes(n) + 2 * 8 * k
+    budget = memory_budget()
+    if need <= budget:
+        return
+    raise SimulationError(
+        f"{scenario.source or scenario.title}: periods {c} to {c + k}: the segment buffer "
+        f"({rows} rows a period) would need about {format_bytes(need)} with the "
+        f"{format_bytes(held)} of segments already kept, more than the {format_bytes(budget)} "
+        f"this machine allows; the run was stopped there. Either events crowd together "
+        f"(more segments a period than a buck has) or the run is too long: shorten "
+        f"run.cycles / run.duration, or stream it to a file")
+
+
+def segment_row_bytes(n: int) -> int:
+    """Bytes of one segment row in memory (t0, dt, conduction, system, ``n`` states)."""
+    from ..limits import segment_row_bytes as row_bytes
+    return row_bytes(n)
 
 
 def segment_buffers(cap: int, n: int):
