@@ -47,6 +47,72 @@ def key_lines(text):
     return scanner.lines
 
 
+_SYNTAX_POSITION = re.compile(r"\s*\(at line (\d+), column (\d+)\)$")
+_TWICE = ("Cannot overwrite a value", "Cannot declare", "Cannot mutate")
+
+
+def toml_error(exc, text, source):
+    """A :class:`~bucksim.errors.ScenarioError` for a ``tomllib.TOMLDecodeError``.
+
+    It names the file and line; a key given twice (which TOML forbids) is
+    named by its dotted path, found on the line ``tomllib`` reports.
+    """
+    from .errors import ScenarioError
+
+    message = str(exc)
+    m = _SYNTAX_POSITION.search(message)
+    if m is None:
+        return ScenarioError("TOML syntax", message, file=source)
+    detail, line = message[: m.start()], int(m.group(1))
+    if detail.startswith(_TWICE):
+        key = key_on_line(text, line)
+        if key is not None:
+            return ScenarioError(key, "is given twice (TOML allows each key and table "
+                                 "once)", file=source, line=line)
+    return ScenarioError("TOML syntax", f"{detail} (column {m.group(2)})", file=source,
+                         line=line)
+
+
+def key_on_line(text, line):
+    """Dotted key of the last key (or table header) on 1-based ``line``, or None."""
+    scanner = _Scanner(text)
+    found = []
+    scanner.record = lambda path, at: found.append(path) if at == line else None
+    try:
+        scanner.run()
+    except (IndexError, AttributeError, ValueError, tomllib.TOMLDecodeError):
+        pass
+    if not found:
+        return None
+    path = found[-1]
+    out = ""
+    for part in path:
+        out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else part)
+    return out
+
+
+def warn_steps_after_end(scenario):
+    """Warn (``UserWarning``) about each load or supply step at or after the run's end.
+
+    Such a step is valid but never happens in the run, which is most likely
+    not what the file's author meant (a duration in the wrong unit, a step
+    time in the wrong place). The message names the file and the key.
+    """
+    import warnings
+
+    from .units import format_si
+
+    end = scenario.n_cycles * scenario.period
+    where = f"{scenario.source}: " if scenario.source else ""
+    for section, steps in (("load", scenario.load.steps), ("supply", scenario.supply.steps)):
+        for i, step in enumerate(steps):
+            if step.time >= end:
+                warnings.warn(f"{where}{section}.steps[{i}].time: the step at "
+                              f"{format_si(step.time, 's')} is at or after the end of the run "
+                              f"({format_si(end, 's')}), so it never happens",
+                              UserWarning, stacklevel=3)
+
+
 def parse_key_path(key):
     """Split a dotted key such as ``"load.steps[2].time"`` into a path tuple."""
     return tuple(name if index == "" else int(index)
