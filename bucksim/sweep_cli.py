@@ -49,7 +49,9 @@ def _add_arguments(p):
     p.add_argument("--monte-carlo", type=int, metavar="N", help="number of random draws")
     p.add_argument("--tolerance", action="append", default=[], metavar="KEY=10%",
                    help="relative spread of a key for --monte-carlo (repeatable)")
-    p.add_argument("--seed", type=int, default=0, help="seed of the draws (default 0)")
+    from .cli import int_option  # integers argparse refuses plainly, naming the option
+    p.add_argument("--seed", type=int_option(0), default=0,
+                   help="seed of the draws, an integer >= 0 (default 0)")
     p.add_argument("--workers", type=int, metavar="N",
                    help="local processes, or worker processes of --cluster local "
                         "(default: one per CPU; 1 runs in this process)")
