@@ -44,7 +44,6 @@ from dataclasses import dataclass
 import numpy as np
 
 from .errors import ScenarioError, SimulationError
-from .parts import Diode, Mosfet
 from .levels import (
     LoadLevel,
     load_kind,
@@ -54,12 +53,13 @@ from .levels import (
     require_open_loop,
     with_level,
 )
+from .parts import Diode, Mosfet
 from .profile import (
     STRATEGY_NAMES,
+    ProfileResult,
     _profile_result,
     load_scenario_and_profile,
     make_profile,
-    ProfileResult,
     read_profile,
 )
 from .reverse import CAUTION, cycle_mean
@@ -217,9 +217,25 @@ class Row:
     loss: float
     losses: dict
     energy_balance_error: float
+    error: str | None = None
+
+    @property
+    def ok(self) -> bool:
+        """True for an evaluated point; False when the point failed (see ``error``)."""
+        return self.error is None
+
+    @classmethod
+    def failed(cls, strategy, level, error: str) -> Row:
+        """A point that could not be evaluated: every metric NaN, ``error`` says why."""
+        nan = math.nan
+        return cls(strategy=strategy, level=level, duty=nan, load_current=nan,
+                   output_voltage=nan, mode="", reverse_current=False, efficiency=nan,
+                   input_power=nan, output_power=nan, loss=nan, losses={},
+                   energy_balance_error=nan, error=str(error))
 
     def to_dict(self) -> dict:
-        return {"strategy": self.strategy, "load": self.level.to_dict(), "duty": self.duty,
+        return {"strategy": self.strategy, "load": self.level.to_dict(), "error": self.error,
+                "duty": self.duty,
                 "load_current": self.load_current, "output_voltage": self.output_voltage,
                 "mode": self.mode, "reverse_current": self.reverse_current,
                 "efficiency": self.efficiency,
@@ -272,6 +288,19 @@ class Comparison:
     log: bool = False
     profile: ProfileResult | None = None
 
+    @property
+    def failures(self) -> list:
+        """The rows that could not be evaluated (sweep and profile levels)."""
+        rows = [r for rs in self.rows.values() for r in rs]
+        if self.profile is not None:
+            rows += [r for rs in self.profile.rows.values() for r in rs]
+        seen, out = set(), []
+        for r in rows:
+            if not r.ok and (r.strategy, r.level) not in seen:
+                seen.add((r.strategy, r.level))
+                out.append(r)
+        return out
+
     def row(self, strategy: str, level) -> Row:
         """The row of ``strategy`` at sweep level ``level`` (equal to 1e-6 relative)."""
         k = self.level_index(level)
@@ -304,7 +333,7 @@ class Comparison:
                    if any(it in r.losses for rows in self.rows.values() for r in rows)]
         head = ["strategy", "load_key", "load_value", "load_current_A", "output_voltage_V",
                 "duty", "mode", "reverse_current", "efficiency", "input_W", "output_W",
-                "loss_W"] + [f"{it}_W" for it in present]
+                "loss_W"] + [f"{it}_W" for it in present] + ["error"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(head)
@@ -314,7 +343,8 @@ class Comparison:
                             repr(r.output_voltage), repr(r.duty), r.mode,
                             int(r.reverse_current), repr(r.efficiency), repr(r.input_power),
                             repr(r.output_power), repr(r.loss)]
-                           + [repr(r.losses.get(it, 0.0)) for it in present])
+                           + [repr(r.losses.get(it, 0.0 if r.ok else math.nan))
+                              for it in present] + [r.error or ""])
         text = buf.getvalue()
         if path is not None:
             with open(path, "w", encoding="utf-8", newline="") as f:
@@ -334,20 +364,26 @@ class Comparison:
         lines += [(f"asynchronous stage: freewheel diode Vf {format_si(d.vf, 'V')}, "
                    f"r {format_si(d.r, 'ohm')}, Qrr {format_si(d.qrr, 'C')}"), "", head, sub]
         for k, lv in enumerate(self.levels):
-            r0 = self.rows[self.strategies[0]][k]
-            cells = "".join(f"{100 * self.rows[s][k].efficiency:>12.2f}%"
-                            f"{format_si(self.rows[s][k].loss, 'W', 3):>11}"
-                            for s in self.strategies)
-            lines.append(f"{lv!s:>10}{format_si(r0.load_current, 'A', 3):>10}{cells}")
+            ok = [self.rows[s][k] for s in self.strategies if self.rows[s][k].ok]
+            io = format_si(ok[0].load_current, 'A', 3) if ok else "-"
+            cells = "".join(_cells(self.rows[s][k]) for s in self.strategies)
+            lines.append(f"{lv!s:>10}{io:>10}{cells}")
         if self.profile is not None:
             pr = self.profile
             lines += ["", "load profile: " + ", ".join(
                 f"{lv} {100 * sh:.0f} %" for lv, sh in zip(pr.profile.levels, pr.profile.shares))]
             for s in self.strategies:
+                if not math.isfinite(pr.weighted_efficiency[s]):
+                    lines.append(f"  {STRATEGY_NAMES[s]:<18} not rated: a profile level "
+                                 "failed")
+                    continue
                 lines.append(f"  {STRATEGY_NAMES[s]:<18} weighted efficiency "
                              f"{100 * pr.weighted_efficiency[s]:.2f} %   lost "
                              f"{format_si(pr.energy_lost_per_day[s], 'Wh', 4)}/day")
             lines += ["", f"best: {pr.decision}"]
+        failed = self.failures
+        if failed:
+            lines += ["", "failed points:"] + [f"  {r.error}" for r in failed]
         lines += ["", CAUTION]
         return "\n".join(lines)
 
@@ -392,6 +428,9 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
     Returns
     -------
     Comparison
+        A point that has no periodic steady state (or whose output voltage
+        the duty cannot reach) is kept as a row with ``error`` set and every
+        metric NaN; :attr:`Comparison.failures` lists them.
     """
     require_open_loop(scenario)
     for s in strategies:
@@ -422,10 +461,14 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
             if key not in cache:
                 try:
                     cache[key] = _row(variants[strategy], strategy, lv, target, guess)
-                except SimulationError as exc:
-                    raise SimulationError(f"{STRATEGY_NAMES[strategy]} at {lv}: {exc}") from None
+                except (SimulationError, ScenarioError) as exc:
+                    # one point without a steady state (or out of the duty's reach)
+                    # must not hide the others: its row carries the reason
+                    cache[key] = Row.failed(strategy, lv, f"{STRATEGY_NAMES[strategy]} at "
+                                            f"{lv}: {exc}")
             out.append(cache[key])
-            guess = cache[key].duty
+            if cache[key].ok:
+                guess = cache[key].duty
         return tuple(out)
 
     rows = {s: rows_for(s, levels) for s in strategies}
@@ -438,6 +481,12 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
                       profile=pres)
 
 
+def _cells(row) -> str:
+    if not row.ok:
+        return f"{'failed':>13}{'-':>11}"
+    return f"{100 * row.efficiency:>12.2f}%{format_si(row.loss, 'W', 3):>11}"
+
+
 def _own_level(scenario):
     kind = load_kind(scenario)
     value = scenario.load.current if kind == "current" else scenario.load.resistance
@@ -445,6 +494,10 @@ def _own_level(scenario):
 
 
 # ----------------------------------------------------------------------------- command line
+
+#: Most load levels ``--loads START:STOP:N`` may ask for.
+MAX_LOAD_POINTS = 1000
+
 
 def parse_sweep(text: str, scenario, log: bool = False) -> list:
     """``"START:STOP:N"`` -> N load levels, evenly (or, with ``log``, geometrically) spaced."""
@@ -461,8 +514,10 @@ def parse_sweep(text: str, scenario, log: bool = False) -> list:
         n = int(parts[2])
     except ValueError:
         n = 0
-    if n < 1:
-        raise ScenarioError("--loads N", "must be an integer >= 1", parts[2])
+    if not 1 <= n <= MAX_LOAD_POINTS:
+        raise ScenarioError("--loads N", f"must be an integer from 1 to {MAX_LOAD_POINTS} "
+                            "(each level costs a steady-state solution per strategy; "
+                            "split a larger sweep)", parts[2].strip())
     if log and (a.value <= 0 or b.value <= 0):
         raise ScenarioError("--loads", "must be > 0 at both ends for --log spacing", text)
     values = np.geomspace(a.value, b.value, n) if log else np.linspace(a.value, b.value, n)
@@ -510,9 +565,12 @@ def register(subparsers):
                    help="freewheel diode of the asynchronous stage (default: the low-side "
                         "body diode)")
     p.add_argument("--fixed-duty", action="store_true",
-                   help="keep the scenario's duty instead of holding its output voltage")
+                   help="keep the scenario's duty instead of holding its output voltage "
+                        "(refused together with --output-voltage: a fixed duty holds no "
+                        "voltage)")
     p.add_argument("--output-voltage", metavar="V",
-                   help="output voltage to hold (default: the scenario's own)")
+                   help="output voltage to hold by trimming the duty (default: the "
+                        "scenario's own)")
     p.add_argument("--csv", metavar="OUT.csv", help="write every row to a CSV file")
     p.add_argument("--figure", metavar="PNG", help="draw efficiency vs load")
     p.add_argument("--breakdown", metavar="PNG",
@@ -527,11 +585,23 @@ def _cmd_compare(args) -> int:
     import os
     import sys
 
-    for out in (args.csv, args.figure, args.breakdown):
-        if out and os.path.exists(out) and not args.force:
-            print(f"bucksim: error: {out} exists; pass --force to overwrite it",
-                  file=sys.stderr)
-            return 1
+    def refuse(message):
+        print(f"bucksim: error: {message}", file=sys.stderr)
+        return 1
+
+    if args.fixed_duty and args.output_voltage is not None:
+        return refuse("--fixed-duty and --output-voltage contradict each other: a fixed duty "
+                      "cannot hold an output voltage; give one of them")
+    outputs = [(name, path) for name, path in (("--csv", args.csv), ("--figure", args.figure),
+                                                ("--breakdown", args.breakdown)) if path]
+    for i, (name, path) in enumerate(outputs):
+        for other, other_path in outputs[i + 1:]:
+            if os.path.realpath(path) == os.path.realpath(other_path):
+                return refuse(f"{name} and {other} name the same file {path}: one output "
+                              "would overwrite the other; give each its own file")
+    for _, out in outputs:
+        if os.path.exists(out) and not args.force:
+            return refuse(f"{out} exists; pass --force to overwrite it")
     try:
         scenario, profile = load_scenario_and_profile(args.file)
         if args.profile:
@@ -544,9 +614,17 @@ def _cmd_compare(args) -> int:
         result = compare(scenario, levels, diode=diode, profile=profile,
                          output_voltage=args.output_voltage, regulate=not args.fixed_duty,
                          log=args.log)
-    except (ScenarioError, SimulationError, OSError) as exc:
-        print(f"bucksim: error: {exc}", file=sys.stderr)
-        return 1
+    except (ScenarioError, SimulationError) as exc:
+        return refuse(exc)
+    except OSError as exc:
+        return refuse(f"{exc.filename}: {exc.strerror}" if exc.filename and exc.strerror
+                      else exc)
+    failed = result.failures
+    for row in failed:
+        print(f"bucksim: point failed: {row.error}", file=sys.stderr)
+    n_points = sum(len(rows) for rows in result.rows.values())
+    if len([r for rows in result.rows.values() for r in rows if not r.ok]) == n_points:
+        return refuse(f"{args.file}: no point of the comparison could be evaluated")
     from .cli import emit
     emit(result, args.json)
     if args.csv:
@@ -562,4 +640,7 @@ def _cmd_compare(args) -> int:
         save_png(result.loss_breakdown_figure([result.levels[k] for k in picks]),
                  args.breakdown)
         print(f"bucksim: wrote {args.breakdown}", file=sys.stderr)
+    if failed:
+        print(f"bucksim: {len(failed)} point(s) failed (listed above); their rows hold "
+              "the reason and no figures", file=sys.stderr)
     return 0

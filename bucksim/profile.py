@@ -92,12 +92,12 @@ def read_profile(path, scenario) -> Profile:
     """A profile file: ``[[level]]`` tables with ``load = "0.3 A"`` and ``share = 0.7``."""
     from .keylines import key_lines, line_of
 
-    with open(path, "rb") as f:
-        text = f.read().decode("utf-8-sig")
+    text = _read_text(path)
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise ScenarioError("TOML syntax", str(exc), file=str(path)) from None
+        from .keylines import toml_error
+        raise toml_error(exc, text, str(path)) from None
     unknown = set(doc) - {"level"}
     if unknown or "level" not in doc:
         raise ScenarioError(min(unknown) if unknown else "level",
@@ -110,6 +110,17 @@ def read_profile(path, scenario) -> Profile:
         key = err.key.replace("].level", "].load")
         raise ScenarioError(key, err.expected, err.value, str(path),
                             line_of(key_lines(text), key)) from None
+
+
+def _read_text(path) -> str:
+    """A TOML file's text; a file that is not UTF-8 is refused naming it."""
+    with open(path, "rb") as f:
+        data = f.read()
+    try:
+        return data.decode("utf-8-sig")  # tolerate a byte-order mark
+    except UnicodeDecodeError as exc:
+        raise ScenarioError("(file)", f"must be UTF-8 text ({exc.reason} at byte "
+                            f"{exc.start})", file=str(path)) from None
 
 
 def load_scenario_and_profile(path):
@@ -126,8 +137,7 @@ def load_scenario_and_profile(path):
     from .keylines import key_lines, line_of
     from .scenario import load_scenario, loads_scenario
 
-    with open(path, "rb") as f:
-        text = f.read().decode("utf-8-sig")
+    text = _read_text(path)
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError:
@@ -180,17 +190,28 @@ class ProfileResult:
 def _profile_result(profile, rows_by_strategy) -> ProfileResult:
     shares = np.array(profile.shares)
     eff, lost, mean_loss = {}, {}, {}
-    for s, rows in rows_by_strategy.items():
+    # a strategy with a failed profile level has no weighted figure: it is not rated
+    rated = [s for s, rows in rows_by_strategy.items() if all(r.error is None for r in rows)]
+    for s in rows_by_strategy:
+        if s not in rated:
+            eff[s] = lost[s] = float("nan")
+    if not rated:
+        return ProfileResult(profile, rows_by_strategy, eff, lost, "",
+                             "no strategy could be rated: a profile level failed for each")
+    for s in rated:
+        rows = rows_by_strategy[s]
         p_out = np.array([r.output_power for r in rows])
         p_in = np.array([r.input_power for r in rows])
         eff[s] = float(shares @ p_out / (shares @ p_in))
         mean_loss[s] = float(shares @ (p_in - p_out))
         lost[s] = mean_loss[s] * HOURS_PER_DAY
-    ranked = sorted(rows_by_strategy, key=lambda s: mean_loss[s])
+    ranked = sorted(rated, key=lambda s: mean_loss[s])
     best = ranked[0]
     if len(ranked) == 1:
+        only = ("the only strategy compared" if len(rows_by_strategy) == 1
+                else "the only strategy rated (a profile level failed for the others)")
         return ProfileResult(profile, rows_by_strategy, eff, lost, best,
-                             f"{STRATEGY_NAMES[best]} is the only strategy compared")
+                             f"{STRATEGY_NAMES[best]} is {only}")
     second = ranked[1]
     saved = [(r2.loss - r1.loss) for r1, r2 in zip(rows_by_strategy[best],
                                                     rows_by_strategy[second])]
