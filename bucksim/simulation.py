@@ -5,9 +5,8 @@ from __future__ import annotations
 import numpy as np
 
 from .engine import build_table, integrate
-from .errors import SimulationError
+from .errors import ScenarioError, SimulationError
 from .limits import check_run_fits
-from .errors import ScenarioError
 from .scenario import locate_in, require_scenario
 from .stage import Stage
 from .waveforms import Run

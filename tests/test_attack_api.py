@@ -14,14 +14,24 @@ import dataclasses
 
 import numpy as np
 import pytest
+from reference_analog import reference_loop
 
 import bucksim
 import bucksim.simulation
 from bucksim.errors import ScenarioError, SimulationError
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
-                           Scenario, Supply, Switching)
+from bucksim.parts import (
+    Capacitor,
+    Control,
+    Diode,
+    Inductor,
+    Load,
+    Mosfet,
+    RunSettings,
+    Scenario,
+    Supply,
+    Switching,
+)
 from bucksim.scenario import replace_key
-from reference_analog import reference_loop
 
 CORE = "scenarios/core_rail_1v0.toml"
 TELEMETRY = "scenarios/telemetry_rail_1v8_analog.toml"
@@ -123,8 +133,7 @@ def test_segment_buffer_growth_is_capped_by_the_memory_budget(monkeypatch):
     """Reserve one row a period so every chunk fills and its buffer doubles: with a
     normal budget the run is the same as without the squeeze; with a budget the
     doubled buffer exceeds, a SimulationError names the memory it would need."""
-    import bucksim.engine as engine
-    import bucksim.limits as limits
+    from bucksim import engine, limits
 
     sc = short(cycles=400)
     ref = bucksim.simulate(sc)
