@@ -8,7 +8,9 @@ Each case runs in its own Python process, so its peak resident memory
 3. streamed: ``simulate_to_file`` (segments appended chunk by chunk);
 4. streamed with ``compression="gzip"`` (archives);
 
-and ``open_run`` of the streamed file. The scenario is a 12 V -> 3.3 V
+then ``open_run`` of the streamed file with its summary (the whole table in
+memory) and ``summarize_file`` of it (block by block, what ``bucksim run
+--stream`` and ``bucksim report`` do). The scenario is a 12 V -> 3.3 V
 forced-PWM rail with dead time (invented demo values), 1e6 cycles by default.
 
 Run:  python benchmarks/bench_storage.py [--cycles N] [--no-gzip] [--json out.json]
@@ -56,6 +58,7 @@ def child(case: str, cycles: int, path: str) -> dict:
 
     from bucksim.simulation import simulate
     from bucksim.storage import open_run, simulate_to_file
+    from bucksim.stored import summarize_file
 
     simulate(rail(10))  # load or compile the kernels outside the timed part
     out = {"case": case}
@@ -72,8 +75,13 @@ def child(case: str, cycles: int, path: str) -> dict:
         out["write_s"] = time.perf_counter() - t
     elif case == "open":
         run = open_run(path)
+        run.summary()
         out["open_s"] = time.perf_counter() - t
         report = {"n_segments": len(run.segments)}
+    elif case == "summarize":
+        summarize_file(path)
+        out["open_s"] = time.perf_counter() - t
+        report = {"n_segments": 0}
     else:
         report = {"n_segments": 0}
     out["total_s"] = time.perf_counter() - t
@@ -113,8 +121,8 @@ def main(argv=None) -> int:
     folder = tempfile.mkdtemp(prefix="storage_bench_")
     try:
         files = {"memory": "saved.h5", "stream": "streamed.h5", "stream-gzip": "packed.h5",
-                 "open": "streamed.h5", "baseline": "none.h5"}
-        cases = ["baseline", "memory", "stream", "open"] + ([] if args.no_gzip
+                 "open": "streamed.h5", "summarize": "streamed.h5", "baseline": "none.h5"}
+        cases = ["baseline", "memory", "stream", "open", "summarize"] + ([] if args.no_gzip
                                                             else ["stream-gzip"])
         rows = [measure(c, args.cycles, os.path.join(folder, files[c])) for c in cases]
     finally:
@@ -123,7 +131,8 @@ def main(argv=None) -> int:
     base = rows[0]["peak_rss_mb"]
     labels = {"baseline": "baseline (imports, warm-up)", "memory": "in memory + Run.save",
               "stream": "simulate_to_file", "stream-gzip": "simulate_to_file, gzip",
-              "open": "open_run (streamed file)"}
+              "open": "open_run + summary (streamed file)",
+              "summarize": "summarize_file (streamed file, in blocks)"}
     n_seg = max(r["n_segments"] for r in rows)
     print(f"Run files, {args.cycles:.3g} forced-PWM cycles ({n_seg:,} segments); "
           f"{platform.processor() or platform.machine()}, Python {platform.python_version()}\n")
