@@ -371,6 +371,9 @@ def test_stream_starts_in_steady_state_like_simulate(tmp_path, mode):
     for col in ("t0", "dt", "conduction", "system", "x0"):
         assert np.array_equal(getattr(back.segments, col), getattr(run.segments, col)), col
     assert np.array_equal(back.x_end, run.x_end)
+    # started settled: no start-up event, in memory and from the file alike
+    from bucksim.stored import summarize_file
+    assert summarize_file(tmp_path / "ss.h5").to_dict() == run.summary().to_dict()
 
 
 # ----------------------------------------------------------------------------- bounded summary
