@@ -44,8 +44,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import ScenarioError, SimulationError
-from .stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, current_reverses
-from .units import format_si
 from .levels import (
     LoadLevel,
     load_kind,
@@ -55,6 +53,8 @@ from .levels import (
     segment_values,
     with_level,
 )
+from .stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, current_reverses
+from .units import format_si
 
 CAUTION = ("Caution: simulation is no substitute for validating the power stage on the bench "
            "with its real parts.")

@@ -94,8 +94,8 @@ def _settle_time(run, idx, tau_a, tau_b, lo_b, hi_b, lo, hi):
             # outside at a, inside at b: a band crossing lies between; it is the
             # exit if vo stays inside from just after it to b (exact extrema)
             bound = hi_b if v_a > hi_b else lo_b
-            tc = float(brentq(lambda t: run.at([t], "vo")[0] - bound, t0 + a, t0 + b,
-                              xtol=1e-300, rtol=4 * np.finfo(float).eps))
+            tc = float(brentq(lambda t, bound=bound: run.at([t], "vo")[0] - bound,
+                              t0 + a, t0 + b, xtol=1e-300, rtol=4 * np.finfo(float).eps))
             after = min(tc - t0 + 16 * np.spacing(tc), b)
             if after >= b or not _outside(run, k, np.array([after]), np.array([b]),
                                           lo_b, hi_b)[0]:

@@ -10,8 +10,18 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
-                           Scenario, Supply, Switching)
+from bucksim.parts import (
+    Capacitor,
+    Control,
+    Diode,
+    Inductor,
+    Load,
+    Mosfet,
+    RunSettings,
+    Scenario,
+    Supply,
+    Switching,
+)
 
 FS = 500e3
 T = 1 / FS
@@ -262,3 +272,77 @@ def test_telemetry_scenario_states_its_phase_margins():
         _, pm, _, _, wc, _ = ct.stability_margins(loop)
         assert pm == pytest.approx(want, abs=1.0), (resistance, pm)
         assert 40e3 < wc / (2 * math.pi) < 60e3                # "near 48 kHz"
+
+
+# ----------------------------------------------------------------------------- event search
+def _chain(coef):
+    """A nilpotent chain z = [x1 .. x4, 1] whose x1 is the quartic sum coef[k] t^k
+    (x1' = x2, x2' = x3, x3' = x4, x4' = 24 coef[4]); no time constant, so the
+    search takes the whole interval as one sub-step."""
+    import math
+
+    a = [coef[k] * math.factorial(k) for k in range(5)]
+    M = np.zeros((5, 5))
+    M[0, 1] = M[1, 2] = M[2, 3] = 1.0
+    M[3, 4] = a[4]
+    return M, np.array([a[0], a[1], a[2], a[3], 1.0])
+
+
+# W-shaped quartics on [0, 1]: positive at both ends, falling at 0 and rising at
+# 1, with two dips; the search used to stop its extremum refinement on "twice the
+# end slopes" and returned no crossing or a later one
+_W_SHAPES = {
+    "first dip crosses, second does not": [0.6098286160362613, -7.801560677678469,
+                                           31.724833271073077, -44.76542518031959,
+                                           20.35669478195791],
+    "both dips cross": [0.8635597819247615, -8.078780118032093, 26.724884420043495,
+                        -37.182679048518445, 18.44216999519092],
+}
+
+
+@pytest.mark.parametrize("name", list(_W_SHAPES))
+def test_event_search_finds_the_first_of_several_crossings(name):
+    """The first zero in (0, 1] of the quartic against numpy's polynomial roots,
+    to 1e-12; the state there against scipy's expm."""
+    from numpy.polynomial import polynomial as P
+    from scipy.linalg import expm
+
+    from bucksim.engine.kernels import find_zero
+    from bucksim.engine.tables import build_table
+
+    coef = np.array(_W_SHAPES[name])
+    roots = P.polyroots(coef)
+    real = np.sort(roots[(abs(roots.imag) < 1e-12) & (roots.real > 0) & (roots.real < 1)].real)
+    assert real.size >= 2 and P.polyval(0.0, coef) > 0 and P.polyval(1.0, coef) > 0
+    M, z = _chain(coef)
+    table = build_table(M[None], 1.0)
+    assert table.guard >= 1e300           # no time constant: one sub-step
+    c = np.array([1.0, 0, 0, 0, 0])
+    za = z.copy()
+    tz = find_zero(table.matrices, table.exponentials, table.steps, 0, za, expm(M) @ z, 0.0,
+                   1.0, 1.0, table.guard, np.empty(10), np.empty(5), np.empty(5), c, 0.0, 0.0,
+                   0.0, False, table.taylor_gap)
+    assert tz == pytest.approx(real[0], abs=1e-12)
+    assert np.allclose(za, expm(M * tz) @ z, rtol=1e-12, atol=1e-12)
+
+
+def test_event_search_reports_no_crossing_above_a_near_miss():
+    """The same W shape lifted so that its lower dip stays 1e-6 above zero: the
+    search must prove the whole interval free of zeros (and not report one)."""
+    from numpy.polynomial import polynomial as P
+    from scipy.linalg import expm
+
+    from bucksim.engine.kernels import find_zero
+    from bucksim.engine.tables import build_table
+
+    coef = np.array(_W_SHAPES["first dip crosses, second does not"])
+    crit = P.polyroots(P.polyder(coef)).real
+    low = min(P.polyval(x, coef) for x in crit if 0 < x < 1)
+    coef[0] += -low + 1e-6
+    M, z = _chain(coef)
+    table = build_table(M[None], 1.0)
+    c = np.array([1.0, 0, 0, 0, 0])
+    tz = find_zero(table.matrices, table.exponentials, table.steps, 0, z.copy(), expm(M) @ z,
+                   0.0, 1.0, 1.0, table.guard, np.empty(10), np.empty(5), np.empty(5), c, 0.0,
+                   0.0, 0.0, False, table.taylor_gap)
+    assert tz == -1.0

@@ -43,9 +43,12 @@ with benchmarks/bench_engine.py). A phase that runs whole with its nominal
 duration applies the cached ``P[s, p] = expm(M_s d_p)``; any other interval
 goes through :func:`~bucksim.engine.kernels.advance`; events are located by
 :func:`~bucksim.engine.kernels.find_zero` on the analytic solution, after a
-cheap test that rules out a crossing in most segments (the sign holds at the
-end, the segment is shorter than the guard and the event function has no
-extremum turning toward zero inside).
+cheap test that proves most segments free of a crossing: the sign holds at
+both ends, the segment is shorter than the guard, and the curvature bound of
+:mod:`bucksim.engine.bounds` (``|f''| <= B`` from the norms of the system)
+keeps the function off zero in between. The tests of the zero-current and
+integrator-limit rows are written out inline for the same reason as the
+phase logic.
 """
 
 from __future__ import annotations
@@ -53,10 +56,36 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .kernels import (ASYNC, EMULATION, GATE_HIGH, GATE_LOW, GATE_OFF, HIGH_DIODE, IDLE, LOW,
-                      LOW_DIODE, N_CONDUCTION, STATUS_DIVERGED, STATUS_FULL, STATUS_OK,
-                      TAYLOR_ORDER, advance, apply, conduction_for, crossing_slope,
-                      crossing_value, derivative, find_zero)
+from .bounds import (
+    clear_between,
+    current_row_norms,
+    growth,
+    row_norms,
+    system_bounds,
+    third_norms,
+)
+from .kernels import (
+    ASYNC,
+    EMULATION,
+    GATE_HIGH,
+    GATE_LOW,
+    GATE_OFF,
+    HIGH_DIODE,
+    IDLE,
+    LOW,
+    LOW_DIODE,
+    N_CONDUCTION,
+    STATUS_DIVERGED,
+    STATUS_FULL,
+    STATUS_OK,
+    TAYLOR_ORDER,
+    advance,
+    apply,
+    conduction_for,
+    crossing_slope,
+    crossing_value,
+    find_zero,
+)
 
 CONTROL_OPEN, CONTROL_DIGITAL, CONTROL_ANALOG = 0, 1, 2
 N_PHASES = 5
@@ -94,14 +123,33 @@ def _compensate(Ad, Bd, Cd, Dd, w, e, lo, hi, wnew):
 
 
 @njit(cache=True)
-def _needs_search(Ms, s, row, zs, z, t_end_seg, d, guard, sign0, level, ramp, t_ref):
-    """False when the event function provably keeps ``sign0`` over the segment."""
+def _needs_search(Ms, s, row, krow, zs, z, t_end_seg, d, guard, sign0, level, ramp, t_ref,
+                  bnd):
+    """False when the event function provably keeps ``sign0`` over the segment
+    (the curvature bound of :mod:`bucksim.engine.bounds`; ``krow`` is the
+    row's ``||c_x A_s W_s||_1``, :func:`~bucksim.engine.bounds.row_norms`)."""
     if d > guard:
         return True
-    if sign0 * crossing_value(row, z, t_end_seg, level, ramp, t_ref) <= 0.0:
+    f1 = sign0 * crossing_value(row, z, t_end_seg, level, ramp, t_ref)
+    if f1 <= 0.0:
         return True
-    return (sign0 * crossing_slope(Ms, s, row, zs, ramp) < 0.0
-            and sign0 * crossing_slope(Ms, s, row, z, ramp) > 0.0)
+    f0 = sign0 * crossing_value(row, zs, t_end_seg - d, level, ramp, t_ref)
+    if f0 <= 0.0:
+        return True
+    m = zs.shape[0]
+    s0 = ramp
+    vel = 0.0
+    for i in range(m - 1):
+        acc = 0.0
+        for j in range(m):
+            acc += Ms[s, i, j] * zs[j]
+        s0 += row[i] * acc
+        vel = max(vel, abs(acc) * bnd[s, i])
+    s0 *= sign0
+    B = krow * vel * growth(bnd[s, m - 1] * d) * (1.0 + 1e-12)
+    if f0 + min(s0, 0.0) * d - 0.5 * B * d * d > 0.0:
+        return False     # Taylor from the start over the whole segment
+    return not clear_between(f0, s0, f1, sign0 * crossing_slope(Ms, s, row, z, ramp), d, B)
 
 
 @njit(cache=True)
@@ -145,6 +193,15 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     # after a release, so rounding at the crossing cannot bring the hold back
     e_band = 1e-12 * max(abs(reference) * sense_gain, 1.0)
     poly = np.empty((TAYLOR_ORDER + 1, m + 1))
+    bnd = system_bounds(Ms)
+    kil = current_row_norms(Ms, bnd)
+    kthr = row_norms(Ms, bnd, Cthr)
+    kce = row_norms(Ms, bnd, Ce)
+    kw = row_norms(Ms, bnd, e_w.reshape(1, m))
+    k3il = third_norms(Ms, bnd, e_il.reshape(1, m))
+    k3thr = third_norms(Ms, bnd, Cthr)
+    k3ce = third_norms(Ms, bnd, Ce)
+    k3w = third_norms(Ms, bnd, e_w.reshape(1, m))
     wnew = np.empty(w.shape[0])
     n_levels = level_times.shape[0]
     n_delay = queue.shape[0]
@@ -288,29 +345,51 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                     cond == LOW and strategy == EMULATION)
                 if evented:
                     sign0 = -1.0 if cond == HIGH_DIODE else 1.0
-                    if (d > guard or sign0 * z[0] <= 0.0
-                            or (sign0 * derivative(Ms, s, zs, 0) < 0.0
-                                and sign0 * derivative(Ms, s, z, 0) > 0.0)):
+                    # the zero-current test written out (a call with array arguments
+                    # costs more than the test): bounds.current_clear
+                    search = d > guard or sign0 * z[0] <= 0.0
+                    if not search:
+                        s0 = 0.0
+                        vel = 0.0
+                        for i in range(m - 1):
+                            acc = 0.0
+                            for j in range(m):
+                                acc += Ms[s, i, j] * zs[j]
+                            if i == 0:
+                                s0 = sign0 * acc
+                            vel = max(vel, abs(acc) * bnd[s, i])
+                        B = kil[s] * vel * growth(bnd[s, m - 1] * d) * (1.0 + 1e-12)
+                        if sign0 * zs[0] + min(s0, 0.0) * d - 0.5 * B * d * d <= 0.0:
+                            s1 = 0.0
+                            for j in range(m):
+                                s1 += Ms[s, 0, j] * z[j]
+                            search = not clear_between(sign0 * zs[0], s0, sign0 * z[0],
+                                                       sign0 * s1, d, B)
+                    if search:
                         tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp,
-                                       trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly)
+                                       trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly,
+                                       bnd, k3il[0, s])
                 elif ph_cmp or np.isfinite(ph_lim):
                     for i in range(m):
                         zs2[i] = zs[i]
-                    if ph_cmp and _needs_search(Ms, s, row, zs, z, t_stop, d, guard, -1.0,
-                                                cmp_level, cmp_ramp, tc):
+                    krow = kthr[level, s] if control == CONTROL_ANALOG else kil[s]
+                    if ph_cmp and _needs_search(Ms, s, row, krow, zs, z, t_stop, d, guard,
+                                                -1.0, cmp_level, cmp_ramp, tc, bnd):
                         tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp,
                                        trial, work, row, cmp_level, cmp_ramp, tc, False,
-                                       taylor_gap, poly)
+                                       taylor_gap, poly, bnd,
+                                       k3thr[level, s] if control == CONTROL_ANALOG
+                                       else k3il[0, s])
                     if np.isfinite(ph_lim):
                         # the limit counts only if it comes first: search up to the
                         # comparator's instant (zs holds the state there) or the stop
                         zb = zs if tz >= 0.0 else z
                         t_lim = tz if tz >= 0.0 else t_stop
-                        if _needs_search(Ms, s, e_il, zs2, zb, t_lim, t_lim - t, guard, -1.0,
-                                         ph_lim, 0.0, tc):
+                        if _needs_search(Ms, s, e_il, kil[s], zs2, zb, t_lim, t_lim - t, guard,
+                                         -1.0, ph_lim, 0.0, tc, bnd):
                             t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, -1.0, guard, tmp,
                                            trial, work, e_il, ph_lim, 0.0, tc, False,
-                                           taylor_gap, poly)
+                                           taylor_gap, poly, bnd, k3il[0, s])
                             if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
                                 tz = t2
                                 for i in range(m):
@@ -335,19 +414,39 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
                             continue
                         if t_h <= t:
                             continue
+                        dh = t_h - t
                         if kind < 3:
-                            # the integrator's own row: the cheap test written out
-                            if not (t_h - t > guard or hsign * (zb[i_w] - hlev) <= 0.0
-                                    or (hsign * derivative(Ms, s, zst, i_w) < 0.0
-                                        and hsign * derivative(Ms, s, zb, i_w) > 0.0)):
-                                continue
-                        elif not _needs_search(Ms, s, hrow, zst, zb, t_h, t_h - t, guard,
-                                               hsign, hlev, 0.0, t):
+                            # the integrator's own row: the cheap test written out (a call
+                            # with array arguments costs more than the test), as in
+                            # _needs_search
+                            f0h = hsign * (zst[i_w] - hlev)
+                            f1h = hsign * (zb[i_w] - hlev)
+                            if dh <= guard and f0h > 0.0 and f1h > 0.0:
+                                s0h = 0.0
+                                vel = 0.0
+                                for i in range(m - 1):
+                                    acc = 0.0
+                                    for j in range(m):
+                                        acc += Ms[s, i, j] * zst[j]
+                                    if i == i_w:
+                                        s0h = hsign * acc
+                                    vel = max(vel, abs(acc) * bnd[s, i])
+                                B = kw[0, s] * vel * growth(bnd[s, m - 1] * dh) * (1.0 + 1e-12)
+                                if f0h + min(s0h, 0.0) * dh - 0.5 * B * dh * dh > 0.0:
+                                    continue
+                                s1h = 0.0
+                                for j in range(m):
+                                    s1h += Ms[s, i_w, j] * zb[j]
+                                if clear_between(f0h, s0h, f1h, hsign * s1h, dh, B):
+                                    continue
+                        elif not _needs_search(Ms, s, hrow, kce[level, s], zst, zb, t_h, dh,
+                                               guard, hsign, hlev, 0.0, t, bnd):
                             continue
                         for i in range(m):
                             zs2[i] = zst[i]
                         t3 = find_zero(Ms, E, h, s, zs2, zb, t, t_h, hsign, guard, tmp, trial,
-                                       work, hrow, hlev, 0.0, t, False, taylor_gap, poly)
+                                       work, hrow, hlev, 0.0, t, False, taylor_gap, poly, bnd,
+                                       k3w[0, s] if kind < 3 else k3ce[level, s])
                         if t3 >= 0.0 and (th < 0.0 or t3 < th):
                             th = t3
                             hold_event = kind

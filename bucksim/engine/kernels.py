@@ -18,6 +18,15 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from .bounds import (
+    event_derivatives,
+    growth,
+    reach3,
+    system_bounds,
+    third_norm,
+    velocity_norm,
+)
+
 # conduction codes (mirrors bucksim.stage; numba needs plain module constants)
 HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = 0, 1, 2, 3, 4
 N_CONDUCTION = 5
@@ -265,24 +274,101 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None, s
     return t + u
 
 
+# ----------------------------------------------------------------------------- first crossings
+#
+# The proof that no crossing is stepped over is in bucksim.engine.bounds.
+
+#: Steps of one march before it stops and takes its last point as the crossing
+#: (a touch of zero within the bound's resolution). Each step from an extremum
+#: spans about 3 q / B3 and a march converges superlinearly onto a touching
+#: zero, so a march needs a few dozen steps; the cap is a safety net.
+MARCH_STEPS = 200
+
+
+@njit(cache=True)
+def _march(Ms, E, h, s, za, t0, f0, s0, q0, t_clear, t_lim, B3, sign0, c, level, ramp,
+           t_ref, tmp, trial):
+    """March from ``t0`` to the end of each proven reach (module notes on the bound).
+
+    Returns -1.0 once the march passes ``t_clear`` (no zero up to there), else
+    the time of the first zero, with ``za`` the state there: where f is at or
+    past zero, where the reach falls below the rounding of time (a zero to
+    rounding) or at ``t_lim``.
+    """
+    m = za.shape[0]
+    for i in range(m):
+        trial[i] = za[i]
+    x, fx, sx, qx = t0, f0, s0, q0
+    for _ in range(MARCH_STEPS):
+        xn = x + reach3(fx, sx, qx, B3)
+        if xn >= t_clear:
+            return -1.0
+        xn = min(xn, t_lim)
+        if not xn > x:
+            break                       # proven positive up to rounding: a zero here
+        advance(Ms, E, h, s, trial, xn - x, tmp)
+        x = xn
+        fx = sign0 * crossing_value(c, trial, x, level, ramp, t_ref)
+        if fx <= 0.0 or x >= t_lim:
+            break
+        sx, qx = event_derivatives(Ms, s, c, trial, ramp)
+        sx *= sign0
+        qx *= sign0
+    for i in range(m):
+        za[i] = trial[i]
+    return x
+
+
 @njit(cache=True)
 def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
-              level=0.0, ramp=0.0, t_ref=0.0, snap=True, taylor_gap=0.0, poly=None):
+              level=0.0, ramp=0.0, t_ref=0.0, snap=True, taylor_gap=0.0, poly=None, bnd=None,
+              k3=-1.0):
     """Locate the first zero of the event function in (a, b] given the states at both ends.
 
     Returns the zero's time (``za`` then holds the state there) or -1.0 when
-    the function keeps the sign ``sign0`` over the whole interval. Intervals
-    longer than ``guard`` (a quarter of the fastest natural time constant)
-    are marched in sub-steps so that each sub-step holds at most one
-    extremum; inside a sub-step an extremum that turns toward zero is
-    checked, so a touch-and-return crossing is not stepped over.
+    the function keeps the sign ``sign0`` over the whole interval. The
+    interval is taken in sub-steps no longer than ``guard`` (a quarter of the
+    fastest natural time constant) nor ``1 / mu`` (so the derivative bound
+    grows by at most e over one). A sub-step is passed only when the bound on
+    the third derivative proves it free of zeros (module notes: the same
+    argument one order up, from the exact value, slope and curvature at each
+    end); a sub-step that ends past zero with a slope that provably keeps its
+    sign holds exactly one zero, found by bisection over the table and Newton
+    on the Taylor series; any other sub-step is marched, which finds its
+    first zero. ``bnd``: :func:`system_bounds` of ``Ms``; ``k3``: the row's
+    :func:`third_norm` (both computed when omitted).
     """
     m = za.shape[0]
+    n = m - 1
+    if bnd is None:
+        bounds = system_bounds(Ms)
+    else:
+        bounds = bnd
+    # the third derivative is (c_x A^2) . x', bounded through k3 = ||c_x A^2 W||_1
+    if k3 < 0.0:
+        k3 = third_norm(Ms, s, c, bounds)
+    f0 = sign0 * crossing_value(c, za, a, level, ramp, t_ref)
+    s0, q0 = event_derivatives(Ms, s, c, za, ramp)
+    s0 *= sign0
+    q0 *= sign0
+    past = f0 < 0.0
+    if f0 == 0.0:
+        # starting on zero: an event at a when f heads to the other side
+        past = s0 < 0.0 or (s0 == 0.0 and q0 <= 0.0)
+    if past:
+        # already at or past zero: the first zero is at a itself
+        if snap:
+            za[0] = level
+        return a
+    step = guard
+    mu = bounds[s, n]
+    if mu > 0.0 and 1.0 / mu < step:
+        step = 1.0 / mu
     n_sub = 1
-    if b - a > guard:
-        n_sub = int(np.ceil((b - a) / guard))
+    if b - a > step:
+        n_sub = int(np.ceil((b - a) / step))
     t0 = a
-    width = -1.0     # set to the bracket (t0, t0 + width] once a crossing is seen
+    width = -1.0     # set to the bracket (t0, t0 + width] once a single zero is bracketed
     for q in range(n_sub):
         t1 = b if q == n_sub - 1 else a + (b - a) * (q + 1) / n_sub
         for i in range(m):
@@ -292,52 +378,35 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
                 work[i] = zb[i]
         else:
             advance(Ms, E, h, s, work, t1 - t0, tmp)
-        if sign0 * crossing_value(c, work, t1, level, ramp, t_ref) <= 0.0:
-            width = t1 - t0
-            break
-        da = sign0 * crossing_slope(Ms, s, c, za, ramp)
-        db = sign0 * crossing_slope(Ms, s, c, work, ramp)
-        if da < 0.0 and db > 0.0:
-            # the function turns toward zero and back inside: locate its extremum
-            # (a zero of the slope) on the exact solution, Illinois regula falsi,
-            # and look for a crossing there
-            ta, tb_, fa, fb = t0, t1, da, db
-            sa, sb = da, db    # the slopes at ta, tb (fa, fb get Illinois-halved)
-            side = 0
-            for _ in range(60):
-                te = ta + (tb_ - ta) * fa / (fa - fb)
-                if not (ta < te < tb_):
-                    te = 0.5 * (ta + tb_)
-                for i in range(m):
-                    trial[i] = za[i]
-                advance(Ms, E, h, s, trial, te - t0, tmp)
-                ge = sign0 * crossing_value(c, trial, te, level, ramp, t_ref)
-                if ge <= 0.0:
-                    width = te - t0
-                    break
-                # between ta and tb the slope runs from fa < 0 to fb > 0: the function
-                # cannot fall below ge - max|slope| (tb - ta) there (twice that for
-                # margin: the slope need not be monotone in between)
-                if ge > 2.0 * max(-sa, sb) * (tb_ - ta):
-                    break
-                fe = sign0 * crossing_slope(Ms, s, c, trial, ramp)
-                if fe < 0.0:
-                    ta, fa, sa = te, fe, fe
-                    if side == -1:
-                        fb *= 0.5
-                    side = -1
-                else:
-                    tb_, fb, sb = te, fe, fe
-                    if side == 1:
-                        fa *= 0.5
-                    side = 1
-                if tb_ - ta <= 1e-13 * (t1 - t0) or fe == 0.0:
-                    break
-            if width >= 0.0:
+        d = t1 - t0
+        # the bound on the third derivative over the sub-step ((1 + 1e-12): its rounding)
+        B3 = k3 * velocity_norm(Ms, s, za, bounds) * growth(mu * d) * (1.0 + 1e-12)
+        f1 = sign0 * crossing_value(c, work, t1, level, ramp, t_ref)
+        if f1 <= 0.0:
+            # f' <= s0 + max(q0, 0) u + B3 u^2 / 2 < 0 throughout: one zero
+            if -s0 > max(q0, 0.0) * d + 0.5 * B3 * d * d:
+                width = d
                 break
+            tz = _march(Ms, E, h, s, za, t0, f0, s0, q0, np.inf, t1, B3, sign0, c, level,
+                        ramp, t_ref, tmp, trial)
+            if snap:
+                za[0] = level
+            return tz
+        s1, q1 = event_derivatives(Ms, s, c, work, ramp)
+        s1 *= sign0
+        q1 *= sign0
+        back = reach3(f1, -s1, q1, B3)
+        if reach3(f0, s0, q0, B3) + back <= d:
+            tz = _march(Ms, E, h, s, za, t0, f0, s0, q0, t1 - back, t1, B3, sign0, c, level,
+                        ramp, t_ref, tmp, trial)
+            if tz >= 0.0:
+                if snap:
+                    za[0] = level
+                return tz
         for i in range(m):
             za[i] = work[i]
         t0 = t1
+        f0, s0, q0 = f1, s1, q1
     if width < 0.0:
         return -1.0
     return refine_zero(Ms, E, h, s, za, t0, width, sign0, tmp, trial, c, level, ramp, t_ref,
