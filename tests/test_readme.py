@@ -1,13 +1,18 @@
-"""The README as a fresh-clone walk-through: every command it shows runs and says something sane.
+"""The README and the docs pages as a fresh-clone walk-through: every command they show runs
+and says something sane.
 
-The commands are read from the README in this working tree (it may hold edits not committed
-yet) and run in a fresh ``git clone`` of the committed HEAD, so they see only what a user who
-clones the project sees: committed code and committed scenarios. Output files land in the clone
-(a temporary folder), so nothing in the working tree is touched.
+The commands are read from the README and the Markdown pages of ``docs/`` (the README first,
+then the getting-started page with the tour, then the others) in this working tree (they may
+hold edits not committed yet) and run in a fresh ``git clone`` of the committed HEAD, so they
+see only what a user who clones the project sees: committed code and committed scenarios.
+Output files land in the clone (a temporary folder), so nothing in the working tree is
+touched. A command or snippet shown on two pages (the README's first look repeats the
+getting-started page's) runs once.
 
-* Shell commands: every line of every ``bash`` block. The set-up block's two lines install the
-  package and run this very suite; they are checked, not run: the block must hold exactly the
-  two documented commands, and ``.ci/run`` must run the second one. What follows a
+* Shell commands: every line of every ``bash`` block. The set-up blocks' two lines (in the
+  README and on the getting-started page) install the package and run this very suite; they
+  are checked, not run: each block must hold exactly the two documented commands, and
+  ``.ci/run`` must run the second one. What follows a
   ``pip install ... &&`` on those lines is run when it is a ``bucksim`` command (the default
   demo rail). ``bucksim`` is the installed command when it is on ``PATH``, else
   ``python -m bucksim`` run in the clone.
@@ -36,13 +41,37 @@ import pytest
 
 REPO = Path(__file__).resolve().parents[1]
 README = REPO / "README.md"
+DOCS = REPO / "docs"
+GETTING_STARTED = DOCS / "getting-started.md"
+SCENARIO_REFERENCE = DOCS / "scenario-reference.md"
+PERFORMANCE = DOCS / "performance.md"
+#: Every page whose commands the walk-through runs, in order: the README, the tour (its
+#: commands write the files that later ones read), then the other pages.
+PAGES = (README, GETTING_STARTED) + tuple(
+    sorted(p for p in DOCS.glob("*.md") if p != GETTING_STARTED))
 
 SETUP_COMMANDS = ['python -m pip install -e . && bucksim run',
                   'python -m pip install -e ".[test]" && python -m pytest']
 
-SECTIONS = ("Set-up", "A first look", "What is modelled", "A 5-minute tour", "Scenario reference",
-            "Summary reference", "Stored runs (HDF5 layout)", "Python API", "Performance",
-            "Validation", "Safety", "License")
+#: The README's sections, in order: the front door; the reference lives in docs/.
+SECTIONS = ("Set-up", "A first look", "Documentation", "Safety", "License")
+
+#: Each docs page: its title, then sections it must hold, in this order (the content the
+#: README held before it moved there).
+DOC_SECTIONS = {
+    "getting-started.md": ("Getting started",
+                           ("Set-up", "A first look", "What is modelled", "A 5-minute tour")),
+    "scenario-reference.md": ("Scenario reference",
+                              ("Top level", "`[supply]`", "`[run]`",
+                               "Quantities with SI prefixes", "Error messages",
+                               "Load profile (for compare)")),
+    "summary-reference.md": ("Summary reference", ()),
+    "hdf5-layout.md": ("Stored runs (HDF5 layout)", ()),
+    "python-api.md": ("Python API", ()),
+    "performance.md": ("Performance", ()),
+    "validation.md": ("Validation", ("Known limits",)),
+    "safety.md": ("Safety and license", ("Safety", "License")),
+}
 
 SUMMARY_KEYS = ("window", "mode", "reverse_current", "output_voltage", "inductor_current",
                 "devices", "power", "efficiency", "energy_balance_error", "transients")
@@ -62,7 +91,7 @@ def code_blocks(text):
         if block is None:
             if line.startswith("## "):
                 section = line[3:].strip()
-            m = re.match(r"^```(\w*)\s*$", line)
+            m = re.match(r"^```(\S*)", line)  # also MyST directives: ```{toctree}
             if m:
                 block = (section, m.group(1), [])
         elif line.startswith("```"):
@@ -70,7 +99,7 @@ def code_blocks(text):
             block = None
         else:
             block[2].append(line)
-    assert block is None, "README: a code block is not closed"
+    assert block is None, "a code block is not closed"
     return out
 
 
@@ -89,18 +118,20 @@ def shell_commands(lines):
     return out
 
 
-def readme_blocks():
-    return code_blocks(README.read_text(encoding="utf-8"))
+def readme_blocks(pages=PAGES):
+    """``[(section, language, [lines])]`` of every page, in page order."""
+    return [block for page in pages for block in code_blocks(page.read_text(encoding="utf-8"))]
 
 
-def bash_commands():
+def bash_commands(pages=PAGES):
     """``[(section, command)]`` of every bash block."""
-    return [(section, c) for section, lang, lines in readme_blocks() if lang == "bash"
+    return [(section, c) for section, lang, lines in readme_blocks(pages) if lang == "bash"
             for c in shell_commands(lines)]
 
 
 def runnable_commands():
-    """The commands the walk-through runs: everything but installing and the test suite."""
+    """The commands the walk-through runs: everything but installing and the test suite,
+    each once (in the order first shown)."""
     out = []
     for section, command in bash_commands():
         if "pip install" not in command:
@@ -109,14 +140,21 @@ def runnable_commands():
         for part in (p.strip() for p in command.split("&&")):
             if part.startswith("bucksim"):
                 out.append(part)
-    return out
+    return list(dict.fromkeys(out))
+
+
+def headings(page, level=2):
+    marker = "#" * level + " "
+    return [line[len(marker):].strip() for line in page.read_text(encoding="utf-8").splitlines()
+            if line.startswith(marker)]
 
 
 # ----------------------------------------------------------------------------- fast checks
 
 def test_setup_block_is_the_two_documented_commands():
-    setup = [c for section, c in bash_commands() if section == "Set-up"]
-    assert setup == SETUP_COMMANDS
+    for page in (README, GETTING_STARTED):
+        setup = [c for section, c in bash_commands((page,)) if section == "Set-up"]
+        assert setup == SETUP_COMMANDS, page.name
     ci = (REPO / ".ci" / "run").read_text(encoding="utf-8").splitlines()
     assert SETUP_COMMANDS[1] in [line.strip() for line in ci]
     # installing happens in the set-up section only
@@ -124,10 +162,15 @@ def test_setup_block_is_the_two_documented_commands():
 
 
 def test_sections_in_order_and_every_command_is_bucksim():
-    text = README.read_text(encoding="utf-8")
-    heads = [line[3:].strip() for line in text.splitlines() if line.startswith("## ")]
+    heads = headings(README)
     assert [h for h in heads if h in SECTIONS] == list(SECTIONS)  # in this order
     assert heads[-2:] == ["Safety", "License"]
+    for name, (title, sections) in DOC_SECTIONS.items():
+        page = DOCS / name
+        assert headings(page, 1) == [title], name
+        heads = headings(page)
+        assert [h for h in heads if h in sections] == list(sections), name
+    text = PERFORMANCE.read_text(encoding="utf-8")
     assert "<!-- bench-engine:start -->" in text and "<!-- bench-engine:end -->" in text
     commands = runnable_commands()
     assert len(commands) >= 12
@@ -142,8 +185,7 @@ def test_every_scenario_key_is_documented():
     from bucksim import scenario
     from bucksim.control import COMPENSATOR_KEYS
 
-    text = README.read_text(encoding="utf-8")
-    reference = text.split("## Scenario reference", 1)[1].split("\n## ", 1)[0]
+    reference = SCENARIO_REFERENCE.read_text(encoding="utf-8")
     keys = set(scenario.TOP_KEYS[:2])
     for names in (scenario.SUPPLY_KEYS, scenario.SWITCHING_KEYS, scenario.INDUCTOR_KEYS,
                   scenario.CAPACITOR_KEYS, scenario.MOSFET_KEYS, scenario.DIODE_KEYS,
@@ -155,7 +197,7 @@ def test_every_scenario_key_is_documented():
     for section in scenario.TOP_KEYS[2:]:
         assert f"`[{section}]`" in reference, section
     missing = sorted(k for k in keys if f"`{k}`" not in reference)
-    assert not missing, f"scenario keys missing from the README's Scenario reference: {missing}"
+    assert not missing, f"scenario keys missing from {SCENARIO_REFERENCE.name}: {missing}"
 
 
 # ----------------------------------------------------------------------------- walk-through
@@ -222,7 +264,7 @@ def _check_file(path, verb, command):
 
 
 def check_output(command, stdout, clone):
-    """Plausibility of what one README command printed and wrote."""
+    """Plausibility of what one command of the README or the docs printed and wrote."""
     argv = shlex.split(command, comments=True)
     verb = argv[1] if len(argv) > 1 else None
     if verb is None or "--help" in argv:
@@ -247,7 +289,7 @@ def check_output(command, stdout, clone):
 def _run(args, clone, env, what):
     proc = subprocess.run(args, cwd=clone, env=env, capture_output=True, text=True,
                           timeout=TIMEOUT, stdin=subprocess.DEVNULL, check=False)
-    assert proc.returncode == 0, (f"README command failed (exit {proc.returncode}): {what}\n"
+    assert proc.returncode == 0, (f"documented command failed (exit {proc.returncode}): {what}\n"
                                   f"--- stdout\n{proc.stdout[-3000:]}\n"
                                   f"--- stderr\n{proc.stderr[-3000:]}")
     return proc.stdout
@@ -280,7 +322,8 @@ def test_readme_walk_through(clone):
     installed = subprocess.run([sys.executable, "-P", "-c", "import bucksim"], cwd=clone,
                                env=env, capture_output=True, check=False).returncode == 0
     py_env = dict(env, PYTHONSAFEPATH="1") if installed else dict(env, PYTHONPATH=str(clone))
-    snippets = [lines for _, lang, lines in readme_blocks() if lang == "python"]
+    snippets = list(dict.fromkeys(tuple(lines) for _, lang, lines in readme_blocks()
+                                  if lang == "python"))
     assert snippets
     for k, lines in enumerate(snippets):
         script = clone / f"readme_snippet_{k}.py"
