@@ -33,10 +33,10 @@ import numpy as np  # noqa: E402
 from scipy.integrate import solve_ivp  # noqa: E402
 
 import bucksim  # noqa: E402
-from bucksim.engine import build_table, integrate  # noqa: E402
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet,  # noqa: E402
+from bucksim.engine.driver import build_table, integrate  # noqa: E402
+from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet,  # noqa: E402
                            RunSettings, Scenario, Supply, Switching)
-from bucksim.stage import Stage  # noqa: E402
+from bucksim.model.stage import Stage  # noqa: E402
 
 
 def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9)) -> Scenario:
@@ -75,7 +75,7 @@ def closed_loop_rate(cycles: int, repeats: int = 3, implementation: str = "digit
     zero-current event every period."""
     import dataclasses
 
-    from bucksim.control import design
+    from bucksim.model.compensator import design
     from bucksim.engine.controlled import integrate_closed_loop
 
     sc = rail("diode-emulation", 30.0, cycles)
@@ -103,7 +103,7 @@ def ode_reference(scenario: Scenario, cycles: int):
     ton = scenario.control.duty * T
     tf, tr = scenario.switching.dead_time
     edges = [0.0, ton, ton + tf, T - tr, T]
-    from bucksim.stage import HIGH, HIGH_DIODE, LOW, LOW_DIODE
+    from bucksim.model.stage import HIGH, HIGH_DIODE, LOW, LOW_DIODE
     z = np.array([0.0, 0.0, 1.0])
     n_rhs = 0
     for c in range(cycles):

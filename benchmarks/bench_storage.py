@@ -36,7 +36,7 @@ REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
 def rail(cycles: int):
     """A 12 V -> 3.3 V, 500 kHz forced-PWM rail (invented demo values)."""
-    from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load,  # noqa: I001
+    from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load,  # noqa: I001
                                Mosfet, RunSettings, Scenario, Supply, Switching)
     return Scenario(
         "bench storage", Supply(12.0), Switching(500e3, "forced-pwm", (20e-9, 25e-9)),
@@ -57,8 +57,9 @@ def child(case: str, cycles: int, path: str) -> dict:
     import h5py  # noqa: F401  (every case pays for the HDF5 library, baseline too)
 
     from bucksim.simulation import simulate
-    from bucksim.storage import open_run, simulate_to_file
-    from bucksim.stored import summarize_file
+    from bucksim.simulation import simulate_to_file
+    from bucksim.waveforms import open_run
+    from bucksim.analysis.stored import summarize_file
 
     simulate(rail(10))  # load or compile the kernels outside the timed part
     out = {"case": case}

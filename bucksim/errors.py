@@ -81,3 +81,7 @@ class StorageError(ValueError):
 
     def __reduce__(self):  # keep pickling (process pools) working
         return (StorageError, (self.path, self.problem))
+
+
+class SweepError(ValueError):
+    """A sweep cannot run as asked (bad keys or values, a table from another sweep)."""

@@ -2,14 +2,22 @@
 
 from __future__ import annotations
 
+import dataclasses
+import os
+
 import numpy as np
 
-from .engine import build_table, integrate
-from .errors import ScenarioError, SimulationError
-from .limits import check_run_fits
-from .scenario import locate_in, require_scenario
-from .stage import Stage
-from .waveforms import Run
+from bucksim.engine.controlled import integrate_closed_loop
+from bucksim.engine.driver import build_table, integrate
+from bucksim.engine.limits import check_run_fits
+from bucksim.errors import ScenarioError, SimulationError
+from bucksim.io.hdf5 import report, streamed_run
+from bucksim.model.compensator import design
+from bucksim.model.scenario import locate_in, require_scenario
+from bucksim.model.stage import Stage
+from bucksim.steady.result import periodic_scenario
+from bucksim.steady.solve import steady_state
+from bucksim.waveforms import Run
 
 
 def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> "Run":
@@ -18,12 +26,12 @@ def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> "Run":
     Parameters
     ----------
     scenario : Scenario
-        From :func:`bucksim.load_scenario` or built from :mod:`bucksim.parts`.
+        From :func:`bucksim.load_scenario` or built from :mod:`bucksim.model.parts`.
     x0 : array_like, optional
         Initial ``[iL [A], vC [V]]``; default from ``scenario.run``
         (``initial_current``, ``initial_voltage``; zero = start from rest),
         or the periodic steady state when ``run.start = "steady-state"``
-        (then ``run.steady_state`` holds the :class:`~bucksim.steady.SteadyState`).
+        (then ``run.steady_state`` holds the :class:`~bucksim.steady.result.SteadyState`).
     check : bool
         Raise :class:`~bucksim.errors.SimulationError` if the run did not
         complete (by default the Run carries ``status``/``message``).
@@ -65,7 +73,7 @@ def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> "Run":
 
 
 def _check_fits(scenario, n_states):
-    """:func:`bucksim.limits.check_run_fits`, its refusal placed at the key's line."""
+    """:func:`bucksim.engine.limits.check_run_fits`, its refusal placed at the key's line."""
     try:
         check_run_fits(scenario, n_states)
     except ScenarioError as err:
@@ -80,9 +88,6 @@ def simulate_settled(scenario, cycles: int | None = None) -> "Run":
     so every metric describes the settled operating point. The run's
     ``steady_state`` attribute holds the shooting result.
     """
-    import dataclasses
-
-    from .steady import periodic_scenario
 
     require_scenario(scenario, "simulate_settled")
     ss = _steady(scenario, "settled operating point")
@@ -107,7 +112,6 @@ def _steady(scenario, context):
     started there nor a summary of it describes an operating point. (An
     open-loop stage is passive; its multipliers are never outside.)
     """
-    from .steady import steady_state
 
     ss = steady_state(scenario)
     where = f"{scenario.source or scenario.title}: {context}"
@@ -132,8 +136,6 @@ def unstable_multiplier(ss) -> float:
 
 
 def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
-    from .control import design
-    from .engine.controlled import integrate_closed_loop
 
     stage = Stage(scenario)
     _check_fits(scenario, stage.n)
@@ -255,3 +257,64 @@ def _check_state_range(run):
         status, message = state_range_verdict(run.x_end, run.status)
     if message is not None:
         run.status, run.message = status, message
+
+
+def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | None = None,
+                     progress=None) -> dict:
+    """Simulate ``scenario`` and stream its segments into the HDF5 file ``path``.
+
+    Memory stays bounded by one engine chunk (``chunk_cycles`` periods,
+    default the engine's) whatever the run length. The file is written
+    atomically as by :func:`bucksim.io.hdf5.save_run` (``compression`` as there), and
+    :func:`bucksim.open_run` reads it the same. Open or closed loop, from rest, a
+    given state or (``run.start = "steady-state"``) the periodic steady
+    state, found first as :func:`bucksim.simulate` does. A closed loop that
+    ends limit-cycling gets the same status 3, "control loop did not
+    settle", as in memory (:func:`bucksim.simulation.loop_settle_verdict`).
+
+    Returns
+    -------
+    dict
+        ``path``, ``n_segments``, ``t_end`` [s], ``status``, ``message``.
+
+    Raises
+    ------
+    ScenarioError
+        Before anything is written, when the run's segments would not fit
+        on the disk that holds ``path`` (naming ``run.cycles`` or
+        ``run.duration`` and the size it would need).
+    SimulationError
+        When ``run.start = "steady-state"`` and there is no periodic steady state.
+    """
+
+    stage = Stage(scenario)
+    folder = os.path.dirname(os.path.abspath(os.fspath(path)))
+    check_run_fits(scenario, len(stage.state_names), stream=True,
+                   directory=folder if os.path.isdir(folder) else None)
+    x0 = state = None
+    if scenario.run.start == "steady-state":
+        steady = _steady(scenario, "run.start = 'steady-state'")
+        x0 = steady.x
+        if scenario.control.mode != "open-loop":
+            state = steady.controller
+    table = build_table(stage.matrices, scenario.period)
+    options = {} if chunk_cycles is None else {"chunk_cycles": int(chunk_cycles)}
+    # nominal segments per cycle: 2 phases (asynchronous) or 4 (with dead times)
+    rows = scenario.n_cycles * (2 if scenario.switching.strategy == "asynchronous" else 4)
+    with streamed_run(path, scenario, table, compression, rows, stage.state_names) as writer:
+        if scenario.control.mode == "open-loop":
+            res = integrate(stage, x0, table=table, sink=writer.append, progress=progress,
+                            **options)
+            status, message = res.status, res.message
+        else:
+            comp = None if stage.analog else design(scenario.control.compensator,
+                                                    scenario.period)
+            res, _, duty, _ = integrate_closed_loop(stage, comp, x0, state, table=table,
+                                                    sink=writer.append, progress=progress,
+                                                    **options)
+            status, verdict = loop_settle_verdict(scenario.control, duty, res.status)
+            message = res.message if verdict is None else verdict
+        writer.finish(res.t_end, res.x_end, status, message)
+    return report(path, writer.n, res.t_end, status, message)
+
+

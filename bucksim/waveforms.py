@@ -12,22 +12,20 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .engine import EngineResult, TransitionTable
-from .engine.kernels import STATUS_DIVERGED, evaluate
-from .errors import SimulationError
-from .stage import CONDUCTION_NAMES, STATE_NAMES, Stage
+from bucksim.engine.driver import EngineResult, TransitionTable
+from bucksim.engine.kernels import STATUS_DIVERGED, evaluate
+from bucksim.errors import SimulationError
+from bucksim.analysis.summarize import summarize
+from bucksim.io.hdf5 import save_run
+from bucksim.io.runfile import read_run
+from bucksim.model.stage import CONDUCTION_NAMES, STATE_NAMES, UNITS, Stage
 
-#: Signals every run can evaluate (see :meth:`bucksim.stage.Stage.signal`).
+#: Signals every run can evaluate (see :meth:`bucksim.model.stage.Stage.signal`).
 SIGNALS = ("iL", "vC", "vo", "io", "ic", "iin", "vsw", "vin",
            "high_side", "low_side", "high_side_body_diode", "low_side_body_diode")
 
 #: Further signals of an analog closed loop: compensator output and reference [V].
 LOOP_SIGNALS = ("u", "vref")
-
-UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw": "V",
-         "vin": "V", "high_side": "A", "low_side": "A", "high_side_body_diode": "A",
-         "low_side_body_diode": "A", "t": "s", "u": "V", "vref": "V"}
-
 
 @dataclass(frozen=True)
 class SegmentTable:
@@ -211,7 +209,6 @@ class Run:
         (energies and loss integrals square the states): such a run is marked
         diverged (``status`` 1, ``message``) rather than summarised with NaN.
         """
-        from .measure import summarize
         try:
             # overflow yields inf/NaN, which the check below reports in plain words
             with np.errstate(over="ignore", invalid="ignore"):
@@ -231,9 +228,20 @@ class Run:
         return out
 
     def save(self, path, compression=None):
-        """Write this run to the HDF5 file ``path`` (see :mod:`bucksim.storage`)."""
-        from .storage import save_run
+        """Write this run to the HDF5 file ``path`` (see :mod:`bucksim.io.hdf5`)."""
         return save_run(self, path, compression)
+
+
+def open_run(path) -> Run:
+    """Open a run file written by :meth:`Run.save` or :func:`bucksim.simulation.simulate_to_file`.
+
+    The scenario is rebuilt from its stored values, the stage from the
+    scenario, and the transition table is the stored one, so
+    ``open_run(p).summary()`` equals the summary of the run that was saved.
+    Refusals (StorageError, FileNotFoundError) are those of
+    :func:`bucksim.io.runfile.read_run`.
+    """
+    return Run(*read_run(path))
 
 
 def first_non_finite(tree, path=""):
@@ -254,4 +262,4 @@ def first_non_finite(tree, path=""):
     return None
 
 
-__all__ = ["Run", "SegmentTable", "SIGNALS", "LOOP_SIGNALS", "UNITS", "STATE_NAMES"]
+__all__ = ["Run", "SegmentTable", "open_run", "SIGNALS", "LOOP_SIGNALS", "UNITS", "STATE_NAMES"]

@@ -136,7 +136,7 @@ def circuit_of(scenario):
     (Constant supply and load; dead times shorter than half a period, since the
     stage is read through an open-loop copy at duty 0.5. ``Circuit.duty`` is unused.)
     """
-    from bucksim.parts import Control
+    from bucksim.model.parts import Control
     plant = dataclasses.replace(scenario, control=Control(duty=0.5))
     return Circuit.from_scenario(plant)
 

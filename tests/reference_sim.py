@@ -102,7 +102,7 @@ class Circuit:
 
     @classmethod
     def from_scenario(cls, s):
-        """Read a :class:`bucksim.parts.Scenario` (open loop, no steps)."""
+        """Read a :class:`bucksim.model.parts.Scenario` (open loop, no steps)."""
         if s.control.mode != "open-loop" or s.control.soft_start:
             raise ValueError("reference covers open loop without soft start")
         if s.supply.steps or s.load.steps:
@@ -419,12 +419,12 @@ def buck_scenario(*, vin, duty, frequency, strategy, inductance, capacitance, dc
                   resistance=None, current=0.0, rs=0.0, rds_hs=1e-3, rds_ls=1e-3,
                   vf_hs=0.7, r_hs=0.0, vf_ls=0.7, r_ls=0.0, dead_time=(0.0, 0.0),
                   cycles=1000, summary_cycles=20, x0=(0.0, 0.0), title="reference check"):
-    """Build an open-loop :class:`bucksim.parts.Scenario` from flat values [SI units].
+    """Build an open-loop :class:`bucksim.model.parts.Scenario` from flat values [SI units].
 
     In the asynchronous stage ``vf_ls``/``r_ls`` describe the freewheel diode;
     otherwise the low-side body diode.
     """
-    from bucksim import parts as p
+    from bucksim.model import parts as p
 
     sync = strategy != "asynchronous"
     high = p.Mosfet(rds_hs, p.Diode(vf_hs, r_hs, section="high_side"), section="high_side")

@@ -29,11 +29,11 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim.control import compensator_tf
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
+from bucksim.model.compensator import compensator_tf
+from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
                            RunSettings, Scenario, Supply, Switching)
-from bucksim.scenario import loads_scenario
-from bucksim.steady_loop import closed_loop_steady_state
+from bucksim.model.scenario import loads_scenario
+from bucksim.steady.closed_loop import closed_loop_steady_state
 from reference_analog import compensator_polynomials, compensator_ss, reference_loop
 from reference_compensator import FREE, HELD_HIGH, HELD_LOW, integrator_limits
 from reference_sim import simulate_expm
@@ -136,7 +136,7 @@ def test_reference_compensator_is_the_table_transfer_function(spec):
     """The reference's own realisation of Gc (integrator state, then a cascade of
     first-order sections) has the frequency response of the formula written out term by term
     (Erickson & Maksimovic ch. 9), evaluated with python-control; its polynomials
-    are those the project reads from the same table (bucksim.control.compensator_tf).
+    are those the project reads from the same table (bucksim.model.compensator.compensator_tf).
     With an integrator, the first state is a pure integrator of gain x e (the
     anti-windup contract's x_I)."""
     Ac, Bc, Cc, Dc = compensator_ss(spec)

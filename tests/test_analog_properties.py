@@ -14,7 +14,7 @@ import pytest
 
 import bucksim
 from bucksim.errors import ScenarioError
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
+from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
                            RunSettings, Scenario, Supply, Switching)
 
 

@@ -16,10 +16,10 @@ from scipy import signal
 from scipy.linalg import expm
 
 import bucksim
-from bucksim.control import analog_realization
+from bucksim.model.compensator import analog_realization
 from bucksim.errors import ScenarioError
-from bucksim.parts import Control
-from bucksim.stage import IDLE, LOW, N_CONDUCTION, Stage
+from bucksim.model.parts import Control
+from bucksim.model.stage import IDLE, LOW, N_CONDUCTION, Stage
 
 SPECS = [
     {"gain": 2000.0, "zeros": [2000.0]},                                       # PI
@@ -179,7 +179,7 @@ def test_integrator_holds_at_its_limits_exactly():
     into a light load drives the integrator to its lower limit, where it holds
     exactly (its row of the held systems is zero, checked against scipy's expm of
     those systems) while the error stays negative; it never leaves [0, max_duty ramp]."""
-    from bucksim.parts import (Capacitor, Diode, Inductor, Load, Mosfet, RunSettings,
+    from bucksim.model.parts import (Capacitor, Diode, Inductor, Load, Mosfet, RunSettings,
                                Scenario, Supply, Switching)
 
     hs = Mosfet(0.01, Diode(0.7, 0.01, section="high_side.body_diode"), section="high_side")

@@ -19,7 +19,7 @@ from reference_analog import reference_loop
 import bucksim
 import bucksim.simulation
 from bucksim.errors import ScenarioError, SimulationError
-from bucksim.parts import (
+from bucksim.model.parts import (
     Capacitor,
     Control,
     Diode,
@@ -31,7 +31,7 @@ from bucksim.parts import (
     Supply,
     Switching,
 )
-from bucksim.scenario import replace_key
+from bucksim.model.scenario import replace_key
 
 CORE = "scenarios/core_rail_1v0.toml"
 TELEMETRY = "scenarios/telemetry_rail_1v8_analog.toml"
@@ -133,7 +133,8 @@ def test_segment_buffer_growth_is_capped_by_the_memory_budget(monkeypatch):
     """Reserve one row a period so every chunk fills and its buffer doubles: with a
     normal budget the run is the same as without the squeeze; with a budget the
     doubled buffer exceeds, a SimulationError names the memory it would need."""
-    from bucksim import engine, limits
+    from bucksim.engine import driver as engine
+    from bucksim.engine import limits
 
     sc = short(cycles=400)
     ref = bucksim.simulate(sc)

@@ -19,8 +19,8 @@ import h5py
 import numpy as np
 import pytest
 
-from bucksim.cli import build_parser, main
-from bucksim.parts import (
+from bucksim.cli.main import build_parser, main
+from bucksim.model.parts import (
     Capacitor,
     Control,
     Diode,
@@ -158,7 +158,7 @@ def test_compare_load_count_is_capped(capsys):
 # ----------------------------------------------------------------------------- JSON, divergence
 
 def test_json_output_has_no_nan():
-    from bucksim.cli import json_ready
+    from bucksim.cli.common import json_ready
     data = {"a": math.nan, "b": [1.0, math.inf, {"c": -math.inf}], "d": np.float64("nan"),
             "e": 2.5, "f": None}
     text = json.dumps(json_ready(data), allow_nan=False)
@@ -310,14 +310,14 @@ def test_report_refuses_a_file_still_being_written(stored, tmp_path, capsys):
 
 
 def test_main_maps_library_errors_to_user_errors(capsys, monkeypatch):
-    from bucksim import cli
+    from bucksim.cli import cache as cache_verb
     from bucksim.errors import ScenarioError, SimulationError, StorageError
 
     for exc in (StorageError("x.h5", "broken"), SimulationError("diverged"),
                 ScenarioError("run.cycles", "too big", 1), MemoryError()):
         def boom(args, exc=exc):
             raise exc
-        monkeypatch.setattr(cli, "_cmd_cache", boom)
+        monkeypatch.setattr(cache_verb, "_cmd_cache", boom)
         code, _, err = run_cli(capsys, ["cache", "clear"])
         assert_plain_refusal(code, err, "bucksim: error:")
 
@@ -326,7 +326,8 @@ def test_main_maps_library_errors_to_user_errors(capsys, monkeypatch):
 
 def test_streamed_unstable_loop_has_the_in_memory_status(tmp_path):
     from bucksim.simulation import STATUS_LOOP_UNSETTLED, simulate
-    from bucksim.storage import open_run, simulate_to_file
+    from bucksim.simulation import simulate_to_file
+    from bucksim.waveforms import open_run
 
     sc = unstable_loop()
     run = simulate(sc)
@@ -338,7 +339,7 @@ def test_streamed_unstable_loop_has_the_in_memory_status(tmp_path):
 
 
 def test_cli_says_the_loop_did_not_settle_in_run_stream_and_report(tmp_path, capsys):
-    from bucksim.scenario import dump_scenario
+    from bucksim.model.scenario import dump_scenario
 
     toml = tmp_path / "loop.toml"
     dump_scenario(unstable_loop(), toml)
@@ -354,7 +355,8 @@ def test_cli_says_the_loop_did_not_settle_in_run_stream_and_report(tmp_path, cap
 @pytest.mark.parametrize("mode", ["open-loop", "closed-loop"])
 def test_stream_starts_in_steady_state_like_simulate(tmp_path, mode):
     from bucksim.simulation import simulate
-    from bucksim.storage import open_run, simulate_to_file
+    from bucksim.simulation import simulate_to_file
+    from bucksim.waveforms import open_run
 
     base = unstable_loop(cycles=40)
     if mode == "open-loop":
@@ -372,7 +374,7 @@ def test_stream_starts_in_steady_state_like_simulate(tmp_path, mode):
         assert np.array_equal(getattr(back.segments, col), getattr(run.segments, col)), col
     assert np.array_equal(back.x_end, run.x_end)
     # started settled: no start-up event, in memory and from the file alike
-    from bucksim.stored import summarize_file
+    from bucksim.analysis.stored import summarize_file
     assert summarize_file(tmp_path / "ss.h5").to_dict() == run.summary().to_dict()
 
 
@@ -380,7 +382,7 @@ def test_stream_starts_in_steady_state_like_simulate(tmp_path, mode):
 
 def _load_step_rail(cycles=3000):
     sc = unstable_loop(cycles)
-    from bucksim.parts import LoadStep
+    from bucksim.model.parts import LoadStep
     return dataclasses.replace(
         sc, control=Control(duty=0.3),
         load=Load(0.66, steps=(LoadStep(time=2e-3, resistance=1.32),
@@ -391,9 +393,9 @@ def _load_step_rail(cycles=3000):
 def test_file_summary_equals_the_in_memory_summary(tmp_path, monkeypatch, block):
     """Read in blocks, the summary (window metrics and every event's metrics) is
     the in-memory one to the bit."""
-    from bucksim import stored
+    from bucksim.analysis import stored
     from bucksim.simulation import simulate
-    from bucksim.storage import save_run
+    from bucksim.io.hdf5 import save_run
 
     monkeypatch.setattr(stored, "BLOCK_ROWS", block)
     for k, sc in enumerate([_load_step_rail(), unstable_loop(400)]):
@@ -419,8 +421,9 @@ def _peak(f, *args):
 def test_file_summary_memory_is_bounded(tmp_path, monkeypatch):
     """The summary of a stored run holds a few blocks, not the run: its peak does
     not grow with the run length, where opening the whole run's does."""
-    from bucksim import stored
-    from bucksim.storage import open_run, simulate_to_file
+    from bucksim.analysis import stored
+    from bucksim.simulation import simulate_to_file
+    from bucksim.waveforms import open_run
 
     monkeypatch.setattr(stored, "BLOCK_ROWS", 4096)
     peaks = {}

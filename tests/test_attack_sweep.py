@@ -34,8 +34,8 @@ from test_sweep import RAIL_TOML, rail
 
 import bucksim
 from bucksim.errors import ScenarioError
-from bucksim.sweep import SweepError, sweep
-from bucksim.sweep_table import SweepTable
+from bucksim.sweeps.plan import SweepError, sweep
+from bucksim.sweeps.table import SweepTable
 
 REPO = Path(__file__).resolve().parents[1]
 LINUX = sys.platform.startswith("linux")
@@ -75,7 +75,7 @@ PROBE = textwrap.dedent("""\
     """)
 
 RECORDER = PROBE + textwrap.dedent("""\
-    import bucksim.sweep_exec as _exec  # light: loads no numerical library
+    import bucksim.sweeps.execute as _exec  # light: loads no numerical library
     _real = _exec.run_point
 
     def _recording(*args):
@@ -90,7 +90,7 @@ RECORDER = PROBE + textwrap.dedent("""\
         import sys
         sys.path.insert(0, os.environ["TESTS_DIR"])
         from test_sweep import rail
-        from bucksim.sweep import sweep
+        from bucksim.sweeps.plan import sweep
         vary = {"load.resistance": [1.0, 2.5, 6.0, 9.0]}
         sweep(rail(), vary, workers=1, progress=False)
         sweep(rail(), vary, workers=2, batch=1, progress=False)
@@ -122,7 +122,7 @@ BIT_IDENTITY = textwrap.dedent("""\
     import sys
     import numpy as np
     from test_sweep import rail
-    from bucksim.sweep import sweep
+    from bucksim.sweeps.plan import sweep
 
     if __name__ == "__main__":
         vary = {"load.resistance": [0.7, 3.0, 20.0], "inductor.inductance": [2.2e-6, 10e-6]}
@@ -160,7 +160,7 @@ def test_rows_are_bit_identical_in_process_in_a_pool_and_on_dask(tmp_path):
 ORPHAN = textwrap.dedent("""\
     import numpy as np
     from test_sweep import rail
-    from bucksim.sweep import sweep
+    from bucksim.sweeps.plan import sweep
 
     if __name__ == "__main__":
         sweep(rail(), {"load.resistance": list(np.linspace(1.0, 2.0, 2000))}, workers=2,
@@ -222,7 +222,7 @@ def test_oversized_monte_carlo_is_refused_before_drawing():
 
 
 def test_cli_refuses_an_oversized_axis_before_making_it(tmp_path, capsys):
-    from bucksim.sweep_cli import main
+    from bucksim.cli.sweep import main
     scen = tmp_path / "rail.toml"
     scen.write_text(RAIL_TOML, encoding="utf-8")
     code = main([str(scen), "--vary", "load.resistance=1:2:100000000000", "--workers", "1",
@@ -291,7 +291,7 @@ def _stored_run(path):
 
 
 def test_resume_over_a_stored_run_is_refused(tmp_path, capsys):
-    from bucksim.sweep_cli import main
+    from bucksim.cli.sweep import main
     scen = tmp_path / "rail.toml"
     scen.write_text(RAIL_TOML, encoding="utf-8")
     target = tmp_path / "x.h5"
@@ -321,7 +321,7 @@ def test_api_resume_over_a_stored_run_is_refused(tmp_path):
 
 
 def test_resume_with_force_is_refused(tmp_path, capsys):
-    from bucksim.sweep_cli import main
+    from bucksim.cli.sweep import main
     scen = tmp_path / "rail.toml"
     scen.write_text(RAIL_TOML, encoding="utf-8")
     out = tmp_path / "s.csv"
@@ -342,7 +342,7 @@ def test_threadpoolctl_limits_are_applied_and_restored_when_installed(monkeypatc
     # restore_original_limits() undoes it
     import types
 
-    from bucksim import sweep_exec
+    from bucksim.sweeps import execute as sweep_exec
 
     calls = []
 
@@ -364,7 +364,7 @@ def test_threadpoolctl_limits_are_applied_and_restored_when_installed(monkeypatc
 
 def test_resume_onto_a_file_that_is_not_a_sweep_csv_leaves_it_untouched(tmp_path, capsys):
     # a resume used to cut the file at its last newline before reading its header
-    from bucksim.sweep_cli import main
+    from bucksim.cli.sweep import main
     scen = tmp_path / "rail.toml"
     scen.write_text(RAIL_TOML, encoding="utf-8")
     for name, content in (("run.csv", None), ("notes.csv", b"\n\nsome notes, no newline")):

@@ -6,7 +6,7 @@ import sys
 
 import pytest
 
-from bucksim.cli import main
+from bucksim.cli.main import main
 
 SCENARIOS = "scenarios"
 

@@ -16,10 +16,10 @@ import pytest
 from scipy import signal
 
 import bucksim
-from bucksim.control import design
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
+from bucksim.model.compensator import design
+from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
                            RunSettings, Scenario, Supply, Switching)
-from bucksim.steady_loop import closed_loop_steady_state
+from bucksim.steady.closed_loop import closed_loop_steady_state
 
 FS = 500e3
 

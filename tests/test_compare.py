@@ -28,17 +28,12 @@ import json
 import pytest
 import tomli_w
 
-from bucksim import parts as p
-from bucksim.compare import (
-    compare,
-    load_scenario_and_profile,
-    make_profile,
-    parse_diode,
-    parse_sweep,
-    read_profile,
-)
+from bucksim.model import parts as p
+from bucksim.cli.compare import parse_diode, parse_sweep
+from bucksim.studies.compare import compare
+from bucksim.studies.profile import load_scenario_and_profile, make_profile, read_profile
 from bucksim.errors import ScenarioError
-from bucksim.scenario import scenario_to_dict
+from bucksim.model.scenario import scenario_to_dict
 
 
 def core_rail():
@@ -217,7 +212,7 @@ def test_argument_parsers_and_rejections():
 def _cli(args):
     import argparse
 
-    from bucksim.compare import register
+    from bucksim.cli.compare import register
     parser = argparse.ArgumentParser(prog="bucksim")
     register(parser.add_subparsers())
     ns = parser.parse_args(args)
@@ -225,7 +220,7 @@ def _cli(args):
 
 
 def test_cli_compare(tmp_path, capsys):
-    from bucksim.scenario import dump_scenario
+    from bucksim.model.scenario import dump_scenario
     path = tmp_path / "rail.toml"
     dump_scenario(pol_rail(), path)
     pf = tmp_path / "profile.toml"

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim.parts import (
+from bucksim.model.parts import (
     Capacitor,
     Control,
     Diode,
@@ -90,15 +90,15 @@ def _sink_rail(io):
 
 def test_summary_and_reverse_tool_agree_at_the_reversal_boundary():
     """Loads that put the lowest iL just below zero, at 0.1x and 10x the one
-    threshold (bucksim.stage.REVERSE_CURRENT_THRESHOLD) of the current scale:
+    threshold (bucksim.model.stage.REVERSE_CURRENT_THRESHOLD) of the current scale:
     the summary's ``reverse_current`` and the reverse tool's ``reverses`` give the
     same answer, and it is the threshold's. The boundary is found by secant steps
     on the simulated minimum, starting from the closed form Io = dI / 2
     (Erickson & Maksimovic ch. 2 and 5; forced PWM reverses below it: common
     practice)."""
-    from bucksim.levels import periodic_run
-    from bucksim.reverse import reverse_current
-    from bucksim.stage import REVERSE_CURRENT_THRESHOLD
+    from bucksim.studies.levels import periodic_run
+    from bucksim.studies.reverse import reverse_current
+    from bucksim.model.stage import REVERSE_CURRENT_THRESHOLD
 
     def extremes(io):
         _, run = periodic_run(_sink_rail(io))
@@ -138,7 +138,7 @@ def test_settling_exit_between_samples_is_found(depth):
     (the crossing) on the run's own exact evaluation give it independently."""
     from scipy.optimize import brentq, minimize_scalar
 
-    from bucksim.transients import transients
+    from bucksim.analysis.transients import transients
 
     run = bucksim.simulate(_ringing_start())
     start, = transients(run)               # the start-up event, window [0, t_end]
@@ -164,7 +164,7 @@ def test_settling_exit_between_samples_is_found(depth):
 def test_a_run_started_in_steady_state_has_no_start_up_event():
     """Started on its periodic steady state, the run has no start-up transient; a
     load step in it is still reported, and the same run from rest reports both."""
-    from bucksim.parts import LoadStep
+    from bucksim.model.parts import LoadStep
 
     base = rail(Control(duty=0.3), cycles=400)
     base = dataclasses.replace(base, load=Load(0.66, steps=(LoadStep(400e-6, 1.32),)))
@@ -182,7 +182,7 @@ def test_capacitor_mean_current_in_steady_state_prints_as_zero():
     rounding of ~1e-14 of its RMS, which the table must print as 0, while the
     summary's data keep the computed value. A real mean (the inductor's, the load
     current) prints as computed."""
-    from bucksim.units import format_si
+    from bucksim.model.units import format_si
 
     sc = rail(Control(duty=0.3), cycles=50)
     sc = dataclasses.replace(sc, run=dataclasses.replace(sc.run, start="steady-state"))
@@ -207,7 +207,7 @@ def test_slope_compensation_threshold_is_m2_2d_minus_1_over_2d():
     down-slope, the shooting's Floquet multipliers are inside the unit circle; 10 %
     below it one leaves the circle on the negative real axis (period doubling)."""
     from bucksim.simulation import simulate_settled
-    from bucksim.steady_loop import closed_loop_steady_state
+    from bucksim.steady.closed_loop import closed_loop_steady_state
 
     sc = bucksim.load_scenario("scenarios/pcm_rail_3v3_high_duty.toml")
     d = float(simulate_settled(sc, cycles=1).duty[0])
@@ -232,8 +232,8 @@ def test_reverse_figure_names_the_strategy_once(strategy):
     import matplotlib
 
     matplotlib.use("Agg")
-    from bucksim.plots import reverse_figure
-    from bucksim.reverse import reverse_current
+    from bucksim.plotting import reverse_figure
+    from bucksim.studies.reverse import reverse_current
 
     sc = bucksim.load_scenario("scenarios/core_rail_1v0.toml")
     sc = dataclasses.replace(sc, switching=dataclasses.replace(sc.switching, strategy=strategy))

@@ -32,14 +32,14 @@ from scipy.integrate import quad
 from scipy.optimize import minimize_scalar
 
 import bucksim
-from bucksim.coreloss import (
+from bucksim.analysis.coreloss import (
     core_loss,
     cos_power_integral,
     igse_coefficient,
     igse_power_density,
 )
-from bucksim.measure import window_pieces
-from bucksim.parts import (
+from bucksim.analysis.windows import window_pieces
+from bucksim.model.parts import (
     Capacitor,
     Control,
     CoreLoss,
@@ -315,7 +315,7 @@ def test_two_zeros_in_one_chunk_are_both_found():
     # f = cos t - 1/2 on [-1.2, 1.2]: equal (negative) end values, but its
     # maximum f(0) = 1/2 lies above zero, so it crosses at t = -pi/3 and pi/3
     # (cos(pi/3) = 1/2). Only the derivative's sign change reveals the pair.
-    from bucksim.coreloss import _zeros_in_chunk
+    from bucksim.analysis.coreloss import _zeros_in_chunk
 
     a, b = -1.2, 1.2
 

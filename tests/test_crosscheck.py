@@ -11,11 +11,11 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim.crosscheck import crosscheck
-from bucksim.estimate import estimate
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
+from bucksim.analysis.crosscheck import crosscheck
+from bucksim.analysis.budget import estimate
+from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
                            Scenario, Supply, Switching)
-from bucksim.stage import HIGH, LOW_DIODE
+from bucksim.model.stage import HIGH, LOW_DIODE
 
 
 def rail(strategy="forced-pwm", R=0.33, L=22e-6, dead=(20e-9, 25e-9)):
@@ -78,7 +78,7 @@ def test_energy_balance_certifies_the_waveform_integrals_with_switching_and_core
     loss, so the balance cannot see an error in them; they are checked against
     their own formulas elsewhere (test_overlap_energy_uses_the_exact_edge_currents,
     the crosscheck rows, tests/test_coreloss.py)."""
-    from bucksim.parts import CoreLoss
+    from bucksim.model.parts import CoreLoss
     sc = rail()
     sc = dataclasses.replace(sc, inductor=Inductor(22e-6, 0.01, core=CoreLoss(
         k=3.0, alpha=1.4, beta=2.5, volume=1e-6, turns=10, area=5e-5)))  # invented core

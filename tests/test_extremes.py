@@ -33,7 +33,7 @@ from reference_sim import buck_scenario
 
 import bucksim
 from bucksim.errors import SimulationError
-from bucksim.parts import (
+from bucksim.model.parts import (
     Capacitor,
     Control,
     Diode,

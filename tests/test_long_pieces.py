@@ -2,7 +2,7 @@
 
 A stage whose output filter rings at 1e11 Hz (1 pH, 1 pF) holds millions of
 lobes in every segment. The summary's extrema and the iGSE core loss look
-only where a lobe can stand above rounding (measure.piece_extrema and
+only where a lobe can stand above rounding (analysis.extrema.piece_extrema and
 coreloss._decayed_end, Notes there): the first and last lobes of a ringing
 piece (turning values of ``B e^{sigma t} cos(omega t - psi)`` are monotone in
 magnitude), or the first 40 slow time constants of a decaying one. The
@@ -16,9 +16,11 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim import coreloss, measure
-from bucksim.measure import piece_extrema, window_pieces
-from bucksim.scenario import DEFAULT_SCENARIO_PATH, replace_key
+from bucksim.analysis import coreloss
+from bucksim.analysis import extrema
+from bucksim.analysis.extrema import piece_extrema
+from bucksim.analysis.windows import window_pieces
+from bucksim.model.scenario import DEFAULT_SCENARIO_PATH, replace_key
 
 
 def _stage(inductance, capacitance, cycles=40, **keys):
@@ -41,8 +43,8 @@ def test_end_windows_find_the_same_extrema_as_the_full_search(monkeypatch, induc
     run = bucksim.simulate(_stage(inductance, capacitance, load__resistance=load))
     idx, tau_a, tau_b, _ = window_pieces(run, run.t_end - 5 * run.scenario.period)
     lo, hi = piece_extrema(run, signal, idx, tau_a, tau_b)
-    monkeypatch.setattr(measure, "_END_LOBES", np.inf)
-    monkeypatch.setattr(measure, "_END_DECAYS", np.inf)
+    monkeypatch.setattr(extrema, "_END_LOBES", np.inf)
+    monkeypatch.setattr(extrema, "_END_DECAYS", np.inf)
     lo_full, hi_full = piece_extrema(run, signal, idx, tau_a, tau_b)
     scale = max(np.abs(lo_full).max(), np.abs(hi_full).max())
     # the same turning points, refined the same way: equal to rounding
@@ -87,7 +89,7 @@ def test_picohenry_stage_summarises_under_a_cap_on_work(monkeypatch):
 
     # every evaluation of the exact solution by the post-processing goes through
     # engine.kernels.evaluate(..., seg_idx, tau, out): count the offsets
-    monkeypatch.setattr(measure, "evaluate", counted(measure.evaluate))
+    monkeypatch.setattr(extrema, "evaluate", counted(extrema.evaluate))
     monkeypatch.setattr(coreloss, "evaluate", counted(coreloss.evaluate))
     s = run.summary(cycles=2)
     assert budget["points"] <= cap, budget

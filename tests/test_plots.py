@@ -16,8 +16,10 @@ import pytest
 from test_compare import pol_rail
 
 import bucksim
-from bucksim.compare import STRATEGY_NAMES, compare, item_label
-from bucksim.plots import (
+from bucksim.analysis.summary import item_label
+from bucksim.model.parts import STRATEGY_NAMES
+from bucksim.studies.compare import compare
+from bucksim.plotting import (
     STATE_LABELS,
     efficiency_figure,
     loss_breakdown_figure,
@@ -25,8 +27,8 @@ from bucksim.plots import (
     save_png,
     waveform_figure,
 )
-from bucksim.reverse import reverse_current
-from bucksim.steady import steady_state
+from bucksim.studies.reverse import reverse_current
+from bucksim.steady.solve import steady_state
 
 CYCLES = 6
 
@@ -129,7 +131,7 @@ def test_loss_breakdown_figure_data(comparison):
 
 
 def test_reverse_figure_data():
-    sc = dataclasses.replace(pol_rail(), inductor=bucksim.parts.Inductor(2.2e-6, 25e-3))
+    sc = dataclasses.replace(pol_rail(), inductor=bucksim.model.parts.Inductor(2.2e-6, 25e-3))
     res = reverse_current(sc, load=[0.3, 2.0])
     fig = reverse_figure(res)
     ax, = fig.axes
@@ -144,7 +146,7 @@ def test_reverse_figure_data():
 def _cli(args):
     import argparse
 
-    from bucksim.plots import register
+    from bucksim.cli.plot import register
     parser = argparse.ArgumentParser(prog="bucksim")
     register(parser.add_subparsers())
     ns = parser.parse_args(args)

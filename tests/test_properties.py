@@ -52,7 +52,7 @@ from reference_sim import buck_scenario
 
 import bucksim
 from bucksim.errors import ScenarioError
-from bucksim.scenario import (
+from bucksim.model.scenario import (
     DEFAULT_SCENARIO_PATH,
     loads_scenario,
     replace_key,

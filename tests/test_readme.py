@@ -182,8 +182,8 @@ def test_sections_in_order_and_every_command_is_bucksim():
 
 
 def test_every_scenario_key_is_documented():
-    from bucksim import scenario
-    from bucksim.control import COMPENSATOR_KEYS
+    from bucksim.model import scenario
+    from bucksim.model.compensator import COMPENSATOR_KEYS
 
     reference = SCENARIO_REFERENCE.read_text(encoding="utf-8")
     keys = set(scenario.TOP_KEYS[:2])

@@ -23,9 +23,9 @@ import math
 import pytest
 from scipy.optimize import brentq
 
-from bucksim import parts as p
+from bucksim.model import parts as p
 from bucksim.errors import ScenarioError
-from bucksim.reverse import LoadLevel, find_boundary, parse_levels, reverse_current
+from bucksim.studies.reverse import LoadLevel, find_boundary, parse_levels, reverse_current
 
 VIN, D, FS, L, C = 12.0, 0.3, 500e3, 4.7e-6, 47e-6
 T = 1.0 / FS
@@ -201,7 +201,7 @@ def test_load_levels():
 def _cli(args):
     import argparse
 
-    from bucksim.reverse import register
+    from bucksim.cli.reverse import register
     parser = argparse.ArgumentParser(prog="bucksim")
     register(parser.add_subparsers())
     ns = parser.parse_args(args)
@@ -209,7 +209,7 @@ def _cli(args):
 
 
 def test_cli_reverse(tmp_path, capsys):
-    from bucksim.scenario import dump_scenario
+    from bucksim.model.scenario import dump_scenario
     path = tmp_path / "rail.toml"
     dump_scenario(stage(), path)
     assert _cli(["reverse", str(path), "--load", "0.2", "0.8 A", "--json"]) == 0

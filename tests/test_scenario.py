@@ -16,11 +16,11 @@ import pytest
 import tomli_w
 
 from bucksim.errors import ScenarioError
-from bucksim.keylines import key_lines, line_of
-from bucksim.parts import Diode, Mosfet, Scenario
-from bucksim.scenario import (DEFAULT_SCENARIO_PATH, dump_scenario, load_scenario,
+from bucksim.model.keylines import key_lines, line_of
+from bucksim.model.parts import Diode, Mosfet, Scenario
+from bucksim.model.scenario import (DEFAULT_SCENARIO_PATH, dump_scenario, load_scenario,
                               loads_scenario, replace_key, scenario_to_dict)
-from bucksim.units import format_si, parse_quantity
+from bucksim.model.units import format_si, parse_quantity
 
 ROOT = Path(__file__).resolve().parent.parent
 BUNDLED = sorted((ROOT / "scenarios").glob("*.toml")) + [DEFAULT_SCENARIO_PATH]

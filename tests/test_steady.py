@@ -14,7 +14,7 @@ import pytest
 from scipy.linalg import expm
 
 import bucksim
-from bucksim.steady import steady_state
+from bucksim.steady.solve import steady_state
 from reference_sim import HIGH, LOW, LOW_DIODE, Circuit, buck_scenario
 
 CASES = {

@@ -20,11 +20,13 @@ import numpy as np
 import pytest
 
 from bucksim.errors import StorageError
-from bucksim.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
+from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
                            Scenario, Supply, Switching)
-from bucksim.scenario import load_scenario, scenario_to_dict
+from bucksim.model.scenario import load_scenario, scenario_to_dict
 from bucksim.simulation import simulate
-from bucksim.storage import open_run, save_run, simulate_to_file
+from bucksim.io.hdf5 import save_run
+from bucksim.simulation import simulate_to_file
+from bucksim.waveforms import open_run
 
 REPO = Path(__file__).resolve().parents[1]
 COLUMNS = ("t0", "dt", "conduction", "system", "x0")
@@ -203,7 +205,7 @@ def test_save_replaces_atomically_and_leaves_nothing_else(runs, tmp_path):
 
 @pytest.mark.parametrize("exc", [KeyboardInterrupt, RuntimeError])
 def test_failed_save_keeps_old_file_and_removes_partial(runs, tmp_path, monkeypatch, exc):
-    from bucksim import storage
+    from bucksim.io import hdf5 as storage
 
     path = tmp_path / "rail.h5"
     save_run(runs["forced-pwm"][0], path)
@@ -269,8 +271,8 @@ def test_streaming_memory_is_bounded(tmp_path):
 WRITER = """
 import signal, sys
 signal.signal(signal.SIGINT, signal.default_int_handler)  # as at an interactive prompt
-from bucksim.parts import *
-from bucksim.storage import simulate_to_file
+from bucksim.model.parts import *
+from bucksim.simulation import simulate_to_file
 sc = Scenario("killed", Supply(12.0), Switching(500e3, "forced-pwm", (20e-9, 20e-9)),
               Inductor(4.7e-6, 0.01), Capacitor(47e-6, 0.005),
               Mosfet(0.01, Diode(0.7, 0.01, section="high_side.body_diode"), section="high_side"),
@@ -345,7 +347,7 @@ def test_interrupted_writers_leave_no_final_file(tmp_path):
 
 
 def test_ctrl_c_is_held_until_the_writer_can_stop(tmp_path, monkeypatch):
-    from bucksim import storage
+    from bucksim.io import hdf5 as storage
 
     seen = []
     original = storage._RunWriter.append

@@ -33,9 +33,9 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim import parts as p
-from bucksim.sweep import SweepError, draw_factors, sweep
-from bucksim.sweep_table import SweepTable
+from bucksim.model import parts as p
+from bucksim.sweeps.plan import SweepError, draw_factors, sweep
+from bucksim.sweeps.table import SweepTable
 
 REPO = Path(__file__).resolve().parents[1]
 SUMMARY_CYCLES = 5
@@ -118,8 +118,8 @@ def test_grid_order_and_rows_are_the_points(grid_serial):
     got = list(zip(t.column("load.resistance"), t.column("inductor.inductance")))
     assert got == want
     # a row is that point's own result: recompute two points directly
-    from bucksim.scenario import replace_key
-    from bucksim.steady import steady_state
+    from bucksim.model.scenario import replace_key
+    from bucksim.steady.solve import steady_state
     for i in (0, 137):
         sc = rail()
         for key, v in zip(GRID, want[i]):
@@ -158,14 +158,14 @@ def test_local_cluster_and_any_executor_give_identical_rows():
 
 
 def test_missing_dask_names_the_extra(monkeypatch):
-    from bucksim.sweep_exec import Runner
+    from bucksim.sweeps.execute import Runner
     monkeypatch.setitem(sys.modules, "distributed", None)  # import now fails
     with pytest.raises(ImportError, match=r"pip install bucksim\[cluster\]"):
         Runner(cluster="local")
 
 
 def test_importing_sweep_starts_no_cluster():
-    code = ("import sys, bucksim.sweep, bucksim.sweep_exec, bucksim.sweep_cli; "
+    code = ("import sys, bucksim.sweeps.plan, bucksim.sweeps.execute, bucksim.cli.sweep; "
             "print(sorted(m for m in ('distributed', 'dask') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          env=_env(), check=True).stdout
@@ -307,14 +307,14 @@ def _data_rows(path):
 
 
 def test_cli_kill_and_resume(tmp_path, capsys):
-    from bucksim.sweep_cli import main
+    from bucksim.cli.sweep import main
     scen = tmp_path / "rail.toml"
     scen.write_text(RAIL_TOML, encoding="utf-8")
     args = [str(scen), "--vary", "load.resistance=0.5:40:30", "--log", "load.resistance",
             "--vary", "inductor.inductance=2.2 uH:10 uH:5", "--batch", "3"]
     total = 150
     out = tmp_path / "killed.csv"
-    code = "import sys; from bucksim.sweep_cli import main; sys.exit(main(sys.argv[1:]))"
+    code = "import sys; from bucksim.cli.sweep import main; sys.exit(main(sys.argv[1:]))"
     proc = subprocess.Popen([sys.executable, "-c", code, *args, "--workers", "1", "--quiet",
                              "--out", str(out)], env=_env(), stderr=subprocess.PIPE)
     try:
@@ -350,7 +350,7 @@ def test_cli_kill_and_resume(tmp_path, capsys):
 def test_cli_values_and_errors(tmp_path, capsys):
     import argparse
 
-    from bucksim.sweep_cli import main, parse_tolerance, parse_vary, register
+    from bucksim.cli.sweep import main, parse_tolerance, parse_vary, register
     sc = rail()
     v = parse_vary(sc, ["inductor.inductance=1 uH:10 uH:4", "load.resistance=1,2.5,4 ohm"])
     assert v["inductor.inductance"] == list(np.linspace(1e-6, 10e-6, 4))

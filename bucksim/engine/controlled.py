@@ -17,9 +17,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import CHUNK_CYCLES, LoopArgs, nominal_phases, run_chunks, run_span
-from .cycles import CONTROL_ANALOG, CONTROL_DIGITAL
-from .tables import build_table, phase_exponentials
+from bucksim.engine.driver import CHUNK_CYCLES, LoopArgs, nominal_phases, run_chunks, run_span
+from bucksim.engine.cycles import CONTROL_ANALOG, CONTROL_DIGITAL
+from bucksim.engine.tables import build_table, phase_exponentials
 
 
 @dataclass

@@ -35,7 +35,7 @@ Controllers (``control``):
   compensator stepped (voltage mode: a duty with delay and quantisation;
   peak-current mode: a comparator level ``iL + (Se/Ri)(t - t_k) = u/Ri``);
 * analog: the compensator is part of the state; the comparator is the
-  event ``Cthr[level] . z + ramp (t - t_k) = 0`` (see :mod:`bucksim.stage`).
+  event ``Cthr[level] . z + ramp (t - t_k) = 0`` (see :mod:`bucksim.model.stage`).
 
 The phase logic is written once, inline: calling a per-phase function with
 its dozen array arguments cost more than the propagation itself (measured
@@ -56,7 +56,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .bounds import (
+from bucksim.engine.bounds import (
     clear_between,
     current_row_norms,
     growth,
@@ -64,7 +64,7 @@ from .bounds import (
     system_bounds,
     third_norms,
 )
-from .kernels import (
+from bucksim.engine.kernels import (
     ASYNC,
     EMULATION,
     GATE_HIGH,

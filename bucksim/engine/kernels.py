@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .bounds import (
+from bucksim.engine.bounds import (
     event_derivatives,
     growth,
     reach3,
@@ -27,7 +27,7 @@ from .bounds import (
     velocity_norm,
 )
 
-# conduction codes (mirrors bucksim.stage; numba needs plain module constants)
+# conduction codes (mirrors bucksim.model.stage; numba needs plain module constants)
 HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = 0, 1, 2, 3, 4
 N_CONDUCTION = 5
 GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2

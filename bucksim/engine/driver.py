@@ -1,0 +1,342 @@
+"""The cycle-by-cycle engine: exact piecewise-linear propagation with events.
+
+:func:`integrate` prepares the transition tables for a :class:`~bucksim.model.stage.Stage`
+and runs the numba cycle loop in chunks, so memory per call stays bounded and
+a caller can stream segments to disk as they come.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from bucksim.engine.cycles import CONTROL_OPEN, N_PHASES, run_cycles
+from bucksim.engine.kernels import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
+from bucksim.engine.tables import TransitionTable, build_table, phase_exponentials
+
+__all__ = ["EngineResult", "integrate", "build_table", "TransitionTable", "duty_schedule"]
+
+STATUS_MESSAGES = {
+    STATUS_OK: "run completed",
+    STATUS_DIVERGED: "state diverged (non-finite values); segments up to that point are kept",
+}
+
+#: Cycles per kernel call: bounds the segment buffer to ~8 segments per cycle.
+CHUNK_CYCLES = 1 << 15
+#: Periods of the duty and control logs a streamed closed loop keeps (its end).
+STREAM_LOG_TAIL = 1024
+#: Segment rows reserved per period and integrator mode before a chunk runs:
+#: two high-side pieces (blanked, live) and each off phase split at most once
+#: by a zero-current event (asynchronous: 4). A chunk that needs more is run
+#: again with twice the rows, up to the memory budget (see :func:`run_chunks`).
+ROWS_PER_PERIOD = {"synchronous": 8, "asynchronous": 4}
+
+
+@dataclass
+class EngineResult:
+    """What the engine returns; mirrors ``scipy.integrate.OdeResult`` manners.
+
+    Attributes
+    ----------
+    t0, dt : ndarray
+        Start time and duration of each segment [s].
+    conduction : ndarray of int8
+        Conduction state of each segment (codes in :mod:`bucksim.model.stage`).
+    system : ndarray of int32
+        System id (level and conduction) of each segment.
+    x0 : ndarray, shape (n_seg, n)
+        State at the start of each segment.
+    x_end : ndarray, shape (n,)
+        State at ``t_end``.
+    t_end : float
+        Time reached [s].
+    status : int
+        0 completed, 1 diverged.
+    message : str
+    success : bool
+    """
+
+    t0: np.ndarray
+    dt: np.ndarray
+    conduction: np.ndarray
+    system: np.ndarray
+    x0: np.ndarray
+    x_end: np.ndarray
+    t_end: float
+    status: int
+    message: str
+
+    @property
+    def success(self) -> bool:
+        return self.status == STATUS_OK
+
+
+def duty_schedule(scenario, n_cycles: int) -> np.ndarray:
+    """High-side on-time per cycle [s] for open-loop control.
+
+    A constant duty gives a one-element array. With ``control.soft_start``
+    the duty rises linearly from 0 at t = 0 to ``control.duty`` at
+    ``soft_start``, evaluated at the start of each cycle.
+    """
+    T = scenario.period
+    duty = scenario.control.duty
+    ss = scenario.control.soft_start
+    if ss <= 0:
+        return np.array([duty * T])
+    start = np.arange(n_cycles) * T
+    return duty * T * np.minimum(1.0, start / ss)
+
+
+def phase_durations(scenario, on_time: float) -> list[float]:
+    """Nominal phase durations [s] of one cycle at high-side on-time ``on_time``."""
+    T = scenario.period
+    if scenario.switching.strategy == "asynchronous":
+        return [on_time, T - on_time]
+    tf, tr = scenario.switching.dead_time
+    return [on_time, tf, max(0.0, T - on_time - tf - tr), tr]
+
+
+def run_span(scenario, n_cycles=None, t_end=None, x0=None):
+    """``(n_cycles, t_end [s], x0)`` of a run: the scenario's unless overridden."""
+    if n_cycles is None:
+        n_cycles = scenario.n_cycles
+    if t_end is None:
+        t_end = scenario.duration if n_cycles == scenario.n_cycles else n_cycles * scenario.period
+    if x0 is None:
+        x0 = [scenario.run.initial_current, scenario.run.initial_voltage]
+    return n_cycles, t_end, x0
+
+
+def integrate(stage, x0=None, *, on_times=None, table: TransitionTable | None = None,
+              chunk_cycles: int = CHUNK_CYCLES, sink=None, n_cycles: int | None = None,
+              t_end: float | None = None, phase_cache: dict | None = None,
+              progress=None) -> EngineResult:
+    """Simulate ``stage.scenario`` from ``x0`` for its run duration.
+
+    Parameters
+    ----------
+    stage : bucksim.model.stage.Stage
+    x0 : array_like, shape (2,), optional
+        ``[iL [A], vC [V]]`` at t = 0; default from ``scenario.run``.
+        The stage runs in open loop (a closed-loop scenario's controller is
+        not applied here: see :mod:`bucksim.engine.controlled`).
+    on_times : ndarray, optional
+        High-side on-time per cycle [s]; default :func:`duty_schedule`.
+    table : TransitionTable, optional
+        Reuse tables from an earlier call on the same stage.
+    sink : callable, optional
+        Called as ``sink(t0, dt, conduction, system, x0)`` with each chunk of
+        segments instead of keeping them; the result then holds no segments.
+    n_cycles, t_end : optional
+        Override the scenario's run length (cycles, and the time to stop [s]).
+    phase_cache : dict, optional
+        Keeps the fixed-phase exponentials between calls (keyed on the
+        nominal durations), for callers that integrate one stage many times.
+    progress : callable, optional
+        Called as ``progress(cycles_done, n_cycles)`` after each chunk.
+    """
+    sc = stage.scenario
+    T = sc.period
+    n_cycles, t_end, x0 = run_span(sc, n_cycles, t_end, x0)
+    if on_times is None:
+        on_times = duty_schedule(sc, n_cycles)
+    on_times = np.ascontiguousarray(on_times, dtype=float)
+    if table is None:
+        table = build_table(stage.matrices, T)
+    nominal = nominal_phases(sc, float(on_times[-1]))
+    key = tuple(nominal)
+    if phase_cache is not None and key in phase_cache:
+        P = phase_cache[key]
+    else:
+        P = phase_exponentials(table.matrices, nominal)
+        if phase_cache is not None:
+            phase_cache[key] = P
+    controller = LoopArgs(control=CONTROL_OPEN, on_times=on_times)
+    result, _, _ = run_chunks(stage, table, P, nominal, x0, controller, n_cycles, t_end,
+                              sink, chunk_cycles, progress)
+    return result
+
+
+def nominal_phases(scenario, on_time: float | None) -> np.ndarray:
+    """Nominal duration [s] of each phase of :mod:`~bucksim.engine.cycles`' program.
+
+    ``on_time=None`` (closed loop): only the dead times are fixed. A phase
+    whose nominal duration is not positive is never taken from the cache.
+    """
+    out = np.full(N_PHASES, -1.0)
+    T = scenario.period
+    if scenario.switching.strategy == "asynchronous":
+        if on_time is not None:
+            out[0], out[2] = on_time, T - on_time
+        return out
+    tf, tr = scenario.switching.dead_time
+    out[2], out[4] = tf, tr
+    if on_time is not None:
+        out[0], out[3] = on_time, max(0.0, T - on_time - tf - tr)
+    return out
+
+
+@dataclass
+class LoopArgs:
+    """Controller arguments of :func:`~bucksim.engine.cycles.run_cycles` (see there)."""
+
+    control: int
+    peak: bool = False
+    on_times: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    Cvo: np.ndarray | None = None
+    reference: float = 0.0
+    soft_start: float = 0.0
+    sense_gain: float = 1.0
+    Ad: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    Bd: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    Cd: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    Dd: float = 0.0
+    w: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    queue: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    duty_bits: int = 0
+    Cu: np.ndarray | None = None
+    Cthr: np.ndarray | None = None
+    thr_ramp: float = 0.0
+    ramp_v: float = 1.0
+    ri: float = 1.0
+    se: float = 0.0
+    i_limit: float = np.inf
+    max_duty: float = 1.0
+    min_on: float = 0.0
+    skip: bool = False
+    n_modes: int = 1
+    i_w: int = -1
+    w_lo: float = -np.inf
+    w_hi: float = np.inf
+    Ce: np.ndarray | None = None
+
+    def kernel_args(self, m: int):
+        """The kernel's controller arguments; absent rows become a dummy of width ``m``."""
+        def rows(a):
+            return np.zeros((1, m)) if a is None else a
+
+        return (self.control, self.peak, self.on_times, rows(self.Cvo), float(self.reference),
+                float(self.soft_start), float(self.sense_gain), self.Ad, self.Bd, self.Cd,
+                float(self.Dd), self.w, self.queue, int(self.duty_bits), rows(self.Cu),
+                rows(self.Cthr), float(self.thr_ramp), float(self.ramp_v), float(self.ri),
+                float(self.se), float(self.i_limit), float(self.max_duty), float(self.min_on),
+                bool(self.skip), int(self.n_modes), int(self.i_w), float(self.w_lo),
+                float(self.w_hi), rows(self.Ce))
+
+
+def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_end, sink=None,
+               chunk_cycles=CHUNK_CYCLES, progress=None):
+    """Run :func:`~bucksim.engine.cycles.run_cycles` in chunks of ``chunk_cycles`` periods.
+
+    Returns ``(EngineResult, duty per period, control value per period)``;
+    with ``sink`` the segments go there chunk by chunk instead. The two logs
+    are kept whole for a closed loop run in memory; a streamed closed loop
+    keeps their last :data:`STREAM_LOG_TAIL` periods (enough to judge whether
+    the loop settled); open loop keeps none.
+    """
+    from bucksim.model.stage import STRATEGY_CODES
+
+    sc = stage.scenario
+    T = sc.period
+    strategy = STRATEGY_CODES[sc.switching.strategy]
+    tf, tr = sc.switching.dead_time if strategy != 0 else (0.0, 0.0)
+    level_times = np.array([lev.time for lev in stage.levels])
+    z = np.append(stage.initial_state(x0), 1.0)
+    n = stage.n
+    args = controller.kernel_args(n + 1)
+    # the per-period logs serve a closed-loop Run in memory; streamed or open-loop
+    # runs drop them so memory stays bounded by one chunk
+    keep_logs = sink is None and controller.control != CONTROL_OPEN
+    pieces, duty_log, u_log = [], [np.zeros(0)], [np.zeros(0)]
+    level, status, t, c = 0, STATUS_OK, 0.0, 0
+    held = 0        # bytes of segments kept so far (in memory only)
+    while c < n_cycles and status == STATUS_OK:
+        c_stop = min(n_cycles, c + chunk_cycles)
+        k = c_stop - c
+        # rows per period (ROWS_PER_PERIOD), plus the splits at level changes; an
+        # analog integrator's holds add a few more
+        rows = ROWS_PER_PERIOD["synchronous" if strategy != 0 else "asynchronous"]
+        rows *= controller.n_modes
+        saved = (z.copy(), controller.w.copy(), controller.queue.copy(), level)
+        while True:
+            cap = k * rows + 2 * len(level_times) + 8
+            _refuse_buffer(sc, cap, n, k, rows, c, held)
+            bufs = segment_buffers(cap, n)
+            dl, ul = np.full(k, np.nan), np.full(k, np.nan)
+            nseg, level_out, status, t = run_cycles(
+                table.matrices, table.exponentials, table.steps, P, nominal, table.guard,
+                table.taylor_gap, T, strategy, float(tf), float(tr), level_times, level, z, c,
+                c_stop, float(t_end), *args, *bufs, dl, ul)
+            if status != STATUS_FULL:
+                level = level_out
+                break
+            # more events than the bound allows (e.g. many integrator holds): run
+            # the chunk again from its start with a larger buffer
+            z[:], controller.w[:], controller.queue[:], level = (saved[0], saved[1], saved[2],
+                                                                  saved[3])
+            rows *= 2
+        piece = tuple(b[:nseg] for b in bufs)
+        if sink is not None:
+            sink(*piece)
+        else:
+            # copies, not views: a view would keep the whole reserved buffer alive
+            pieces.append(tuple(col.copy() for col in piece))
+            held += nseg * segment_row_bytes(n)
+        if keep_logs:
+            duty_log.append(dl)
+            u_log.append(ul)
+            held += 2 * 8 * k
+        elif controller.control != CONTROL_OPEN:  # streamed: a bounded tail only
+            duty_log = [np.concatenate(duty_log + [dl])[-STREAM_LOG_TAIL:]]
+            u_log = [np.concatenate(u_log + [ul])[-STREAM_LOG_TAIL:]]
+        c = c_stop
+        if progress is not None:
+            progress(c, n_cycles)
+        if t >= t_end:
+            break
+    res = EngineResult(*join_segments(pieces, n), x_end=z[:n].copy(), t_end=float(t),
+                       status=int(status), message=STATUS_MESSAGES[int(status)])
+    return res, np.concatenate(duty_log), np.concatenate(u_log)
+
+
+def _refuse_buffer(scenario, cap, n, k, rows, c, held):
+    """Raise SimulationError when a chunk's segment buffer would not fit in memory.
+
+    The buffer doubles each time a chunk finds more segments per period than
+    it reserved (events that come ever closer, e.g. a hold that chatters);
+    without a bound that grows until the operating system ends the process.
+    """
+    from bucksim.errors import SimulationError
+    from bucksim.engine.limits import format_bytes, memory_budget
+
+    need = held + cap * segment_row_bytes(n) + 2 * 8 * k
+    budget = memory_budget()
+    if need <= budget:
+        return
+    raise SimulationError(
+        f"{scenario.source or scenario.title}: periods {c} to {c + k}: the segment buffer "
+        f"({rows} rows a period) would need about {format_bytes(need)} with the "
+        f"{format_bytes(held)} of segments already kept, more than the {format_bytes(budget)} "
+        f"this machine allows; the run was stopped there. Either events crowd together "
+        f"(more segments a period than a buck has) or the run is too long: shorten "
+        f"run.cycles / run.duration, or stream it to a file")
+
+
+def segment_row_bytes(n: int) -> int:
+    """Bytes of one segment row in memory (t0, dt, conduction, system, ``n`` states)."""
+    from bucksim.engine.limits import segment_row_bytes as row_bytes
+    return row_bytes(n)
+
+
+def segment_buffers(cap: int, n: int):
+    """Empty segment columns (t0, dt, conduction, system, x0) for ``cap`` rows."""
+    return (np.empty(cap), np.empty(cap), np.empty(cap, np.int8), np.empty(cap, np.int32),
+            np.empty((cap, n)))
+
+
+def join_segments(pieces, n: int):
+    """Concatenate chunks of segment columns (empty columns when there are none)."""
+    if pieces:
+        return [np.concatenate(col) for col in zip(*pieces)]
+    return list(segment_buffers(0, n))

@@ -1,0 +1,1 @@
+"""HDF5 storage of runs: atomic and streamed writing, guarded reading, block summaries."""

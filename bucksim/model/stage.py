@@ -1,0 +1,389 @@
+"""Conduction states of the buck power stage as linear systems.
+
+The stage has two energy-storage states, ``x = [iL, vC]``: the inductor
+current (positive toward the load) and the voltage across the ideal part of
+the output capacitor. Within one conduction state the circuit is linear,
+``x' = A x + b``. The engine works on the augmented state ``z = [iL, vC, 1]``
+with ``z' = M z``, ``M = [[A, b], [0, 0]]``, which treats singular ``A`` (the
+idle state, a load with no resistor) without special cases.
+
+Circuit (all values from the scenario)::
+
+    Vin --Rs--+--[high side]--+-- sw --L--DCR--+--+-- vo
+              |               |                |  |
+                        [low side]          ESR  load (R || Icc)
+                              |              C    |
+    gnd ------+---------------+----------------+--+
+
+Output voltage with ESR ``rC`` and load conductance ``g``:
+``vo = (vC + rC (iL - Icc)) / (1 + rC g)``; load current ``io = g vo + Icc``;
+capacitor current ``iC = iL - io``.
+
+Switch-node voltage per conduction state (``iL`` sign in brackets):
+
+===========  =================================  ==========================
+state        vsw                                current through the part
+===========  =================================  ==========================
+HIGH         Vin - (Rs + Rds_hs) iL             high-side channel: iL
+LOW          -Rds_ls iL                         low-side channel: iL
+LOW_DIODE    -Vf_ls - r_ls iL      (iL > 0)     low-side diode: iL
+HIGH_DIODE   Vin + Vf_hs - (Rs + r_hs) iL (iL<0) high-side body diode: -iL
+IDLE         vo (iL = 0, held)                  none
+===========  =================================  ==========================
+
+Analog closed loop (``control.implementation = "analog"``): the compensator
+``w' = Ac w + Bc e``, ``u = Cc w + Dc e`` (:func:`bucksim.model.compensator.analog_realization`)
+with ``e = H (vref - vo)`` joins the state, and so does the reference ``vref``
+(it rises at ``reference / soft_start`` until ``soft_start``, then holds):
+``x = [iL, vC, w_1 .. w_k, vref]``. The plant rows do not depend on the
+controller's states, so within a segment the plant evolves as in open loop;
+the controller acts only through the switching instants. With an integrator,
+every system has a second copy with the integrator held (anti-windup, see
+:meth:`Stage.integrator_limits`): system id
+``s = (level * n_modes + held) * N_CONDUCTION + conduction``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from bucksim.model.parts import STRATEGIES, Diode, Mosfet, Scenario
+
+HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = range(5)
+N_CONDUCTION = 5
+CONDUCTION_NAMES = ("high", "low", "low-diode", "high-diode", "idle")
+
+#: Gate commands of a switching phase.
+GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2
+
+STRATEGY_CODES = {name: code for code, name in enumerate(STRATEGIES)}
+
+N_STATES = 2
+STATE_NAMES = ("iL", "vC")
+#: Units of the controller states appended in an analog loop.
+CONTROLLER_UNIT = "V"
+
+#: The inductor current "reverses" when its minimum lies below
+#: ``-REVERSE_CURRENT_THRESHOLD`` times the window's current scale
+#: ``max(|min iL|, |max iL|)``. The one definition for the summary and the
+#: light-load tools. Why 1e-9: a current that the stage holds at zero is
+#: computed to rounding only, and that rounding grows beyond the 1e-16 of one
+#: evaluation: an event instant rounded to the spacing of absolute time leaves
+#: ``|diL/dt| ulp(t)`` (about 1e-16 of the ripple per elapsed period), and a
+#: periodic state from shooting carries the solve's residual, ~1e-12 of the
+#: scale and more in high-Q stages. A reversal of one part in 1e9 of the peak
+#: current returns no charge anyone could measure, so the flag is robust on
+#: both sides.
+REVERSE_CURRENT_THRESHOLD = 1e-9
+
+
+def current_reverses(il_min: float, il_max: float) -> bool:
+    """True when the inductor current goes negative by more than rounding.
+
+    Parameters
+    ----------
+    il_min, il_max : float
+        Exact minimum and maximum of ``iL`` [A] over the window.
+
+    Notes
+    -----
+    ``il_min < -REVERSE_CURRENT_THRESHOLD max(|il_min|, |il_max|)``.
+    """
+    scale = max(abs(il_min), abs(il_max))
+    return bool(il_min < -REVERSE_CURRENT_THRESHOLD * scale)
+
+
+@dataclass(frozen=True)
+class Level:
+    """Supply and load values that hold from ``time`` [s] to the next level."""
+
+    time: float
+    vin: float
+    conductance: float
+    current: float
+    ref_slope: float = 0.0
+
+
+def is_analog_loop(scenario: Scenario) -> bool:
+    """True when the scenario's compensator runs as analog states of the stage."""
+    ctl = scenario.control
+    return ctl.mode != "open-loop" and ctl.implementation == "analog"
+
+
+def operating_levels(scenario: Scenario) -> list[Level]:
+    """Merge supply and load steps into one list of piecewise-constant levels.
+
+    In an analog loop the end of the soft-start ramp is a level change too:
+    before it the reference state rises at ``reference / soft_start`` [V/s].
+    """
+    supply = [(0.0, scenario.supply.voltage)] + [(s.time, s.voltage) for s in scenario.supply.steps]
+    load = scenario.load.levels()
+    times = {t for t, _ in supply} | {t for t, _, _ in load}
+    ctl = scenario.control
+    ramp_end = ctl.soft_start if is_analog_loop(scenario) else 0.0
+    if ramp_end > 0:
+        times.add(ramp_end)
+    out = []
+    for t in sorted(times):
+        vin = [v for ts, v in supply if ts <= t][-1]
+        g, i = [(g, i) for ts, g, i in load if ts <= t][-1]
+        slope = ctl.reference / ramp_end if t < ramp_end else 0.0
+        out.append(Level(float(t), float(vin), float(g), float(i), float(slope)))
+    return out
+
+
+class Stage:
+    """Linear systems and output maps for every (level, conduction state).
+
+    System id ``s = (level * n_modes + held) * N_CONDUCTION + conduction``
+    (``n_modes = 1`` but for an analog integrator). ``matrices[s]`` is the
+    augmented ``M`` (``m x m``, ``m = n + 1``; 3 x 3 without an analog loop).
+    :meth:`signal` returns a row vector ``c`` such that a signal equals
+    ``c @ z`` in that system.
+
+    Attributes
+    ----------
+    n : int
+        Number of states: 2, plus ``k + 1`` in an analog loop.
+    state_names : tuple of str
+        ``("iL", "vC")``, then ``"w1" .. "wk"`` and ``"vref"`` in an analog loop.
+    plant_index : ndarray of int
+        Positions of ``iL``, ``vC`` and the constant 1 in ``z``; every power
+        signal lives there, so measurements may work on that block alone.
+    loop : AnalogCompensator or None
+    """
+
+    def __init__(self, scenario: Scenario):
+        self.scenario = scenario
+        self.levels = operating_levels(scenario)
+        self.analog = is_analog_loop(scenario)
+        self.loop = None
+        k = 0
+        if self.analog:
+            from bucksim.model.compensator import analog_realization
+            self.loop = analog_realization(scenario.control.compensator)
+            k = self.loop.order
+        self.n_controller = k
+        self.n = N_STATES + (k + 1 if self.analog else 0)
+        self.state_names = STATE_NAMES + (tuple(f"w{i + 1}" for i in range(k)) + ("vref",)
+                                          if self.analog else ())
+        self.plant_index = np.array([0, 1, self.n])
+        # anti-windup of an analog integrator: a second copy of every system
+        # with the integrator held (its row zeroed), see integrator_limits
+        self.n_modes = 2 if self.analog and scenario.control.compensator.get(
+            "integrator", True) else 1
+        ind, cap = scenario.inductor, scenario.output_capacitor
+        self.L, self.dcr = ind.inductance, ind.dcr
+        self.C, self.esr = cap.capacitance, cap.esr
+        self.rs = scenario.supply.resistance
+        hs, ls = scenario.high_side, scenario.low_side
+        self.rds_hs = hs.rds_on
+        self.vf_hs, self.r_hs = hs.body_diode.vf, hs.body_diode.r
+        if isinstance(ls, Mosfet):
+            self.rds_ls = ls.rds_on
+            self.vf_ls, self.r_ls = ls.body_diode.vf, ls.body_diode.r
+        else:
+            assert isinstance(ls, Diode)
+            self.rds_ls = 0.0  # no channel: the LOW state is never entered
+            self.vf_ls, self.r_ls = ls.vf, ls.r
+        self.matrices = np.array([self._matrix(lev, k, held) for lev in self.levels
+                                  for held in range(self.n_modes)
+                                  for k in range(N_CONDUCTION)])
+
+    # -- maps ----------------------------------------------------------------
+    def system_id(self, level: int, conduction: int, held: int = 0) -> int:
+        """System id of a level, a conduction state and (analog loop) the integrator hold."""
+        return (level * self.n_modes + held) * N_CONDUCTION + conduction
+
+    def split_id(self, system: int) -> tuple[int, int]:
+        """Return ``(level, conduction)`` of a system id."""
+        group, conduction = divmod(int(system), N_CONDUCTION)
+        return group // self.n_modes, conduction
+
+    @property
+    def integrator_index(self) -> int:
+        """Position of the analog compensator's integrator in ``z`` (-1: none)."""
+        return 2 if self.n_modes == 2 else -1
+
+    def integrator_limits(self) -> tuple[float, float]:
+        """Range [V] of the analog integrator state (anti-windup).
+
+        The integrator holds at a limit while the error pushes it further:
+        ``[0, max_duty * ramp]`` in voltage mode and ``[0, inf)`` in
+        peak-current mode, the range the compensator output spans at a steady
+        state (each further section has unity gain at DC), as the digital
+        controller's conditional integration does.
+        """
+        ctl = self.scenario.control
+        if ctl.mode == "peak-current":
+            return 0.0, np.inf
+        return 0.0, ctl.max_duty * ctl.ramp
+
+    def error_row(self, level: int) -> np.ndarray:
+        """Row with the loop error ``e = H (vref - vo) = row @ z`` at ``level`` [V]."""
+        return self._error_row(self.levels[level])
+
+    def _error_row(self, lev: Level) -> np.ndarray:
+        gain = self.scenario.control.sense_gain
+        row = -gain * self._embed(self._vo(lev))
+        row[self.n - 1] += gain
+        return row
+
+    def _vo(self, lev: Level):
+        den = 1.0 + self.esr * lev.conductance
+        return np.array([self.esr, 1.0, -self.esr * lev.current]) / den
+
+    def _embed(self, row3: np.ndarray) -> np.ndarray:
+        """A row over ``[iL, vC, 1]`` as a row over the whole augmented state."""
+        if not self.analog:
+            return row3
+        out = np.zeros(self.n + 1)
+        out[self.plant_index] = row3
+        return out
+
+    def initial_state(self, x0) -> np.ndarray:
+        """Full state at t = 0 from ``[iL, vC]`` (controller at rest) or a full state.
+
+        At rest the compensator states are zero and the reference is 0 with a
+        soft-start ramp, else ``control.reference``.
+        """
+        x0 = np.asarray(x0, dtype=float).ravel()
+        if x0.shape[0] == self.n:
+            return x0.copy()
+        if x0.shape[0] != N_STATES:
+            raise ValueError(f"initial state must have {N_STATES} or {self.n} entries "
+                             f"({', '.join(self.state_names)}), got {x0.shape[0]}")
+        out = np.zeros(self.n)
+        out[:N_STATES] = x0
+        if self.analog:
+            ctl = self.scenario.control
+            out[-1] = 0.0 if ctl.soft_start > 0 else ctl.reference
+        return out
+
+    def control_output(self, level: int) -> np.ndarray:
+        """Row ``c_u`` with the analog compensator output ``u = c_u @ z`` at ``level`` [V]."""
+        row = self.loop.D * self.error_row(level)
+        row[2:2 + self.n_controller] += self.loop.C
+        return row
+
+    def _vsw(self, lev: Level, k: int, vo: np.ndarray):
+        if k == HIGH:
+            return np.array([-(self.rs + self.rds_hs), 0.0, lev.vin])
+        if k == LOW:
+            return np.array([-self.rds_ls, 0.0, 0.0])
+        if k == LOW_DIODE:
+            return np.array([-self.r_ls, 0.0, -self.vf_ls])
+        if k == HIGH_DIODE:
+            return np.array([-(self.rs + self.r_hs), 0.0, lev.vin + self.vf_hs])
+        return vo.copy()  # idle: inductor voltage is zero
+
+    def _matrix(self, lev: Level, k: int, held: int = 0) -> np.ndarray:
+        vo = self._vo(lev)
+        io = lev.conductance * vo + np.array([0.0, 0.0, lev.current])
+        ic = np.array([1.0, 0.0, 0.0]) - io
+        if k == IDLE:
+            di = np.zeros(3)  # iL is held at exactly zero
+        else:
+            di = (self._vsw(lev, k, vo) - vo - np.array([self.dcr, 0.0, 0.0])) / self.L
+        dv = ic / self.C
+        if not self.analog:
+            return np.array([di, dv, [0.0, 0.0, 0.0]])
+        m = self.n + 1
+        q = self.n_controller
+        M = np.zeros((m, m))
+        M[0], M[1] = self._embed(di), self._embed(dv)
+        # compensator: w' = Ac w + Bc e, e = H (vref - vo)
+        e_row = self._error_row(lev)
+        for i in range(q):
+            M[2 + i] = self.loop.B[i] * e_row
+            M[2 + i, 2:2 + q] += self.loop.A[i]
+        M[2 + q, m - 1] = lev.ref_slope
+        if held:
+            M[2] = 0.0      # the integrator (first section) holds its value
+        return M
+
+    def signal(self, name: str, system: int) -> np.ndarray:
+        """Row vector ``c`` with ``signal = c @ z`` in ``system``.
+
+        Names: ``iL``, ``vC``, ``vo``, ``io``, ``ic``, ``iin`` (current drawn
+        from the ideal source), ``vsw``, ``vin``, and the device currents
+        ``high_side``, ``low_side``, ``high_side_body_diode``,
+        ``low_side_body_diode`` (each positive in its conducting direction:
+        channels carry iL, the high-side body diode carries -iL). In an
+        analog loop also ``u`` (compensator output [V]) and ``vref`` [V].
+        """
+        return self._embed(self._signal3(name, system)) if name not in ("u", "vref") \
+            else self._controller_signal(name, system)
+
+    def _controller_signal(self, name: str, system: int) -> np.ndarray:
+        if not self.analog:
+            raise KeyError(f"signal {name!r} exists only in an analog closed loop")
+        level, _ = self.split_id(system)
+        if name == "u":
+            return self.control_output(level)
+        row = np.zeros(self.n + 1)
+        row[self.n - 1] = 1.0
+        return row
+
+    def _signal3(self, name: str, system: int) -> np.ndarray:
+        level, k = self.split_id(system)
+        lev = self.levels[level]
+        il = np.array([1.0, 0.0, 0.0])
+        zero = np.zeros(3)
+        vo = self._vo(lev)
+        if name == "iL":
+            return il
+        if name == "vC":
+            return np.array([0.0, 1.0, 0.0])
+        if name == "vo":
+            return vo
+        if name == "io":
+            return lev.conductance * vo + np.array([0.0, 0.0, lev.current])
+        if name == "ic":
+            return il - (lev.conductance * vo + np.array([0.0, 0.0, lev.current]))
+        if name == "iin":
+            return il if k in (HIGH, HIGH_DIODE) else zero
+        if name == "vsw":
+            return self._vsw(lev, k, vo)
+        if name == "vin":
+            return np.array([0.0, 0.0, lev.vin])
+        asynchronous = self.scenario.switching.strategy == "asynchronous"
+        if name == "high_side":
+            return il if k == HIGH else zero
+        if name == "high_side_body_diode":
+            return -il if k == HIGH_DIODE else zero
+        if name == "low_side":
+            if asynchronous:
+                return il if k == LOW_DIODE else zero
+            return il if k == LOW else zero
+        if name == "low_side_body_diode":
+            return il if (k == LOW_DIODE and not asynchronous) else zero
+        raise KeyError(f"unknown signal {name!r}")
+
+    def device_models(self):
+        """Per device: ``(name, resistance [ohm], forward drop [V])`` of its conduction loss.
+
+        The conduction loss of a device is ``r * i**2 + vf * i`` with its
+        current ``i`` from :meth:`signal`.
+        """
+        asynchronous = self.scenario.switching.strategy == "asynchronous"
+        out = [("high_side", self.rds_hs, 0.0),
+               ("high_side_body_diode", self.r_hs, self.vf_hs)]
+        if asynchronous:
+            out.append(("low_side", self.r_ls, self.vf_ls))
+        else:
+            out += [("low_side", self.rds_ls, 0.0),
+                    ("low_side_body_diode", self.r_ls, self.vf_ls)]
+        return out
+
+    def stored_energy(self, x: np.ndarray) -> float:
+        """Energy in L and C [J] for state ``x = [iL, vC, ...]``."""
+        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2
+
+
+#: Unit of each signal and state a run can evaluate.
+UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw": "V",
+         "vin": "V", "high_side": "A", "low_side": "A", "high_side_body_diode": "A",
+         "low_side_body_diode": "A", "t": "s", "u": "V", "vref": "V"}

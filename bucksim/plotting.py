@@ -1,0 +1,295 @@
+"""Figures: waveforms, efficiency across load, loss breakdown, reverse current.
+
+Every function returns a :class:`matplotlib.figure.Figure` built without
+pyplot's global state, so it is safe under any backend (Agg in tests and on
+servers) and never opens a window. Axes carry engineering units
+(:class:`matplotlib.ticker.EngFormatter`); :func:`save_png` writes PNG files
+without a software stamp, so the same figure gives the same bytes.
+
+Waveforms are drawn from the exact segment table: points are placed inside
+each segment, both ends included with the segment's own (left-limit) value
+at its end, so switch-node edges are vertical and never smeared by resampling.
+"""
+
+from __future__ import annotations
+
+
+import numpy as np
+
+# matplotlib and the engine are imported inside the functions, so that
+# registering the `plot` verb keeps `bucksim --help` fast
+
+# A plain palette of our own: muted, distinguishable in grey-scale print.
+STATE_COLOURS = ("#c8553d", "#2e86ab", "#f2a541", "#8e6c8a", "#d9d9d9")
+STATE_LABELS = ("high side on", "low side on", "low-side diode", "high-side diode",
+                "idle (both off)")
+STRATEGY_STYLE = {"asynchronous": ("#8c5e34", "s", "-"),
+                  "forced-pwm": ("#3b6ea5", "o", "-"),
+                  "diode-emulation": ("#4f9d69", "^", "--")}
+ITEM_COLOURS = ("#3b6ea5", "#9cc3e6", "#7b5ea7", "#8c5e34", "#c8553d", "#f0a58f",
+                "#e4c35b", "#4f9d69", "#a8d5a2", "#8c8c8c", "#5b5b5b")
+SIGNAL_NAMES = {"iL": "inductor current iL", "vsw": "switch node vsw", "vo": "output vo",
+                "vC": "capacitor voltage vC", "io": "load current io",
+                "ic": "capacitor current iC", "iin": "supply current iin",
+                "vin": "supply voltage vin", "high_side": "high-side current",
+                "low_side": "low-side current",
+                "high_side_body_diode": "high-side body-diode current",
+                "low_side_body_diode": "low-side body-diode current",
+                "u": "compensator output u", "vref": "reference vref"}
+_SHORT_NAMES = {"asynchronous": "async.\n", "forced-pwm": "forced\nPWM",
+                "diode-emulation": "diode\nemulation"}
+_MAX_POINTS = 1_000_000  # per signal
+
+
+def save_png(fig, path, dpi: int = 100):
+    """Write ``fig`` to ``path`` as PNG with no software metadata; returns ``path``."""
+    fig.savefig(path, format="png", dpi=dpi, metadata={"Software": None})
+    return path
+
+
+def _figure(size):
+    from matplotlib.figure import Figure
+    return Figure(figsize=size, layout="constrained")
+
+
+def _eng_axis(axis, unit):
+    from matplotlib.ticker import EngFormatter
+    axis.set_major_formatter(EngFormatter(unit=unit))
+
+
+def _label(text, unit):
+    return f"{text} [{unit}]"
+
+
+# ----------------------------------------------------------------------------- waveforms
+
+def waveform_points(run, signals, window=None):
+    """Exact waveform points: ``{"t": times [s], name: values, "segments": (t0, dt, code)}``.
+
+    Each segment inside ``window = (start, stop)`` [s] (default: the whole
+    run) gets ``k`` points from its start to its end, the end evaluated in
+    the segment itself, so a discontinuous signal (``vsw``) has a vertical
+    edge at every segment boundary.
+    """
+    from bucksim.studies.levels import segment_values
+
+    seg = run.segments
+    t_first, t_last = float(seg.t0[0]), float(run.t_end)
+    start, stop = (t_first, t_last) if window is None else (float(window[0]), float(window[1]))
+    if not (t_first <= start < stop <= t_last * (1 + 1e-12)):
+        raise ValueError(f"window must satisfy {t_first:.6g} <= start < stop <= "
+                         f"{t_last:.6g} s, got ({start:.6g}, {stop:.6g})")
+    ends = seg.t0 + seg.dt
+    rows = np.nonzero((ends > start) & (seg.t0 < stop) & (seg.dt > 0))[0]
+    a = np.maximum(seg.t0[rows], start)
+    b = np.minimum(ends[rows], stop)
+    k = int(min(12, max(2, _MAX_POINTS // max(rows.shape[0], 1))))
+    frac = np.linspace(0.0, 1.0, k)
+    times = (a[:, None] + (b - a)[:, None] * frac[None, :]).ravel()
+    idx = np.repeat(rows, k)
+    tau = times - seg.t0[idx]
+    out = {"t": times}
+    for name in signals:
+        out[name] = segment_values(run, name, idx, tau)
+    out["segments"] = (a, b - a, seg.conduction[rows])
+    return out
+
+
+def _state_band(ax, segments):
+    from matplotlib.patches import Patch
+
+    from bucksim.model.stage import N_CONDUCTION
+
+    t0, dt, code = segments
+    present = []
+    for c in range(N_CONDUCTION):
+        m = code == c
+        if np.any(m):
+            ax.broken_barh(list(zip(t0[m], dt[m])), (0, 1), facecolors=STATE_COLOURS[c],
+                           edgecolors="none", label=STATE_LABELS[c])
+            present.append(c)
+    ax.set_ylim(0, 1)
+    ax.set_yticks([])
+    ax.set_ylabel("state", rotation=0, ha="right", va="center")
+    handles = [Patch(facecolor=STATE_COLOURS[c], label=STATE_LABELS[c]) for c in present]
+    ax.figure.legend(handles=handles, loc="outside lower center", ncol=min(len(handles), 5),
+                     frameon=False, fontsize="small")
+
+
+def waveform_figure(run, signals=("iL", "vsw", "vo"), window=None, *, size=(8.0, 6.0)):
+    """Stacked waveforms over a time window, with a band showing the conduction state.
+
+    Parameters
+    ----------
+    run : Run
+    signals : sequence of str
+        Names from ``run.signals`` (:data:`bucksim.waveforms.SIGNALS`, plus ``u``
+        and ``vref`` in an analog loop), one axes each, top to bottom.
+    window : (float, float), optional
+        ``(start, stop)`` [s]; default the whole run.
+    size : (float, float)
+        Figure size [inch] (pixels = inches x dpi of :func:`save_png`).
+
+    Returns
+    -------
+    Figure
+        Axes ``fig.axes[:len(signals)]`` hold one line each (x: time [s]);
+        the last axes is the conduction-state band.
+    """
+    from bucksim.waveforms import UNITS
+
+    signals = list(signals)
+    if not signals:
+        raise ValueError("signals must name at least one signal")
+    for name in signals:
+        if name not in run.signals:
+            raise ValueError(f"unknown signal {name!r}; known: " + ", ".join(run.signals))
+    pts = waveform_points(run, signals, window)
+    fig = _figure(size)
+    ratios = [3] * len(signals) + [0.35]
+    axes = fig.subplots(len(signals) + 1, 1, sharex=True,
+                        gridspec_kw={"height_ratios": ratios})
+    for ax, name in zip(axes, signals):
+        unit = UNITS[name]
+        ax.plot(pts["t"], pts[name], color="#1f3b57", linewidth=1.0)
+        ax.set_ylabel(_label(SIGNAL_NAMES.get(name, name), unit))
+        _eng_axis(ax.yaxis, unit)
+        ax.grid(True, color="#e3e3e3", linewidth=0.6)
+    band = axes[-1]
+    _state_band(band, pts["segments"])
+    band.set_xlabel(_label("time", "s"))
+    _eng_axis(band.xaxis, "s")
+    band.set_xlim(pts["t"][0], pts["t"][-1])
+    fig.suptitle(run.scenario.title, fontsize="medium")
+    return fig
+
+
+# ----------------------------------------------------------------------------- comparison
+
+def efficiency_figure(comparison, log=None, *, size=(8.0, 5.0)):
+    """Efficiency [%] vs mean load current [A], one line per strategy.
+
+    ``log`` (default: the comparison's own setting) puts the load on a log axis.
+    Profile levels, when present, are marked with their share of time.
+    """
+    from matplotlib.ticker import PercentFormatter
+
+    log = comparison.log if log is None else log
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    from bucksim.model.parts import STRATEGY_NAMES
+    for s in comparison.strategies:
+        rows = comparison.rows[s]
+        colour, marker, style = STRATEGY_STYLE[s]
+        ax.plot([r.load_current for r in rows], [100 * r.efficiency for r in rows],
+                color=colour, marker=marker, linestyle=style, markersize=4,
+                label=STRATEGY_NAMES[s])
+    if comparison.profile is not None:
+        pr = comparison.profile
+        first = pr.rows[comparison.strategies[0]]
+        for r, share in zip(first, pr.profile.shares):
+            ax.axvline(r.load_current, color="#b0b0b0", linewidth=0.8, linestyle=":",
+                       label="_profile")
+            ax.annotate(f"{100 * share:.0f} % of time", (r.load_current, 0.02),
+                        xycoords=("data", "axes fraction"), rotation=90, fontsize="x-small",
+                        color="#707070", ha="right", va="bottom")
+    if log:
+        ax.set_xscale("log")
+    ax.set_xlabel(_label("load current", "A"))
+    ax.set_ylabel(_label("efficiency", "%"))
+    _eng_axis(ax.xaxis, "A")
+    ax.yaxis.set_major_formatter(PercentFormatter(100))
+    ax.grid(True, which="both", color="#e3e3e3", linewidth=0.6)
+    ax.legend(frameon=False)
+    title = comparison.title
+    if comparison.target_voltage is not None:
+        title += f" (Vo held at {comparison.target_voltage:.4g} V)"
+    ax.set_title(title, fontsize="medium")
+    return fig
+
+
+def loss_breakdown_figure(comparison, loads, *, size=(9.0, 5.5)):
+    """Stacked loss items [W] per strategy at the chosen sweep loads.
+
+    Parameters
+    ----------
+    comparison : Comparison
+    loads : sequence
+        Load levels of the comparison's sweep (values or strings such as
+        ``"0.3 A"``); a level not in the sweep raises ``KeyError``.
+
+    Returns
+    -------
+    Figure
+        One bar per (load, strategy); ``ax.containers`` holds one
+        ``BarContainer`` per loss item, labelled with the item's key.
+    """
+    from bucksim.analysis.summary import LOSS_ITEMS, item_label
+    from bucksim.model.units import format_si
+
+    picks = [comparison.level_index(lv) for lv in loads]
+    if not picks:
+        raise ValueError("loads must name at least one load level of the comparison")
+    strategies = comparison.strategies
+    n_s = len(strategies)
+    x, labels, bars = [], [], []
+    for g, k in enumerate(picks):
+        for j, s in enumerate(strategies):
+            x.append(g * (n_s + 1) + j)
+            r = comparison.rows[s][k]
+            # the load goes under the middle bar of its group, as the group's label
+            group = f"\n\n{format_si(r.load_current, 'A', 3)}" if j == n_s // 2 else ""
+            labels.append(_SHORT_NAMES[s] + group)
+            bars.append(r)
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    bottom = np.zeros(len(bars))
+    for n, item in enumerate(LOSS_ITEMS):
+        h = np.array([r.losses.get(item, 0.0) for r in bars])
+        if not np.any(h > 0):
+            continue
+        ax.bar(x, h, bottom=bottom, width=0.8, color=ITEM_COLOURS[n % len(ITEM_COLOURS)],
+               label=item_label(item), gid=item)
+        bottom += h
+    ax.set_xticks(x, labels, fontsize="x-small")
+    ax.set_ylabel(_label("loss", "W"))
+    _eng_axis(ax.yaxis, "W")
+    ax.grid(True, axis="y", color="#e3e3e3", linewidth=0.6)
+    ax.set_axisbelow(True)
+    ax.legend(frameon=False, fontsize="small", loc="upper left")
+    ax.set_title(f"{comparison.title}: loss breakdown", fontsize="medium")
+    return fig
+
+
+def reverse_figure(result, *, size=(8.0, 5.0)):
+    """Minimum inductor current [A] vs mean load current [A], with the boundaries."""
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    pts = result.points
+    ax.plot([p.load_current for p in pts], [p.min_current for p in pts], color="#1f3b57",
+            marker="o", markersize=4, label="minimum iL (simulated)")
+    ax.axhline(0.0, color="#8c8c8c", linewidth=0.8)
+    b = result.boundary
+    word = "reversal" if b.kind == "reversal" else "DCM"
+    ax.axvline(b.closed_form, color="#c8553d", linestyle="--", linewidth=1.0,
+               label=f"{word} boundary, closed form dI/2")
+    if b.simulated is not None:
+        ax.axvline(b.simulated, color="#4f9d69", linestyle="-", linewidth=1.0,
+                   label=f"{word} boundary, simulated")
+    ax.set_xlabel(_label("load current", "A"))
+    ax.set_ylabel(_label("minimum inductor current", "A"))
+    _eng_axis(ax.xaxis, "A")
+    _eng_axis(ax.yaxis, "A")
+    ax.grid(True, color="#e3e3e3", linewidth=0.6)
+    ax.legend(frameon=False)
+    ax.set_title(_with_strategy(result.title, result.strategy), fontsize="medium")
+    return fig
+
+
+def _with_strategy(title: str, strategy: str) -> str:
+    """The title, naming the strategy once: appended only when the title does not
+    name it already (scenario titles often do, e.g. "..., forced PWM)")."""
+    words = strategy.replace("-", " ")
+    if words.lower() in title.lower().replace("-", " "):
+        return title
+    return f"{title} ({words.replace('pwm', 'PWM')})"

@@ -1,0 +1,1 @@
+"""Periodic steady state by shooting-Newton on the exact period map, open and closed loop."""

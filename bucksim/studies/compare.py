@@ -1,0 +1,469 @@
+"""The three switching strategies on the same parts, across load and over a load profile.
+
+For one set of parts, :func:`compare` evaluates in periodic steady state
+
+* the asynchronous stage: high-side MOSFET and a freewheel diode (by default
+  a diode with the low-side MOSFET's body-diode values);
+* forced PWM: synchronous, the low-side channel on for the whole off-time;
+* diode emulation: synchronous, the low side turned off at zero current;
+
+at each load level: efficiency and the loss of every device (conduction and
+switching), the inductor (DCR, and core loss when the scenario gives core
+data), the output capacitor (ESR) and the supply resistance.
+
+By default the duty is trimmed at each point so that the mean output voltage
+equals the scenario's own (an ideal regulator), so every strategy delivers
+the same power to the same load and efficiencies compare like for like;
+``regulate=False`` keeps the scenario's duty.
+
+A load profile (levels and the share of time the rail spends at each) gives
+each strategy's energy-weighted efficiency ``sum(share P_out) / sum(share
+P_in)`` and its energy lost per day, names the best strategy and the one
+number that decides it.
+
+Load levels are written as in :mod:`bucksim.studies.reverse` (``"0.3 A"``,
+``"2 ohm"`` or a number in the scenario's load unit).
+
+References
+----------
+.. [1] R. W. Erickson and D. Maksimovic, *Fundamentals of Power Electronics*,
+   3rd ed., Springer, 2020, ch. 4-5 (switch realisation, DCM). From memory.
+.. [2] Diode emulation avoids forced PWM's circulating current at light load;
+   at low output voltage and high current a freewheel diode's ``Vf Io (1-D)``
+   is a large share of the output power: common practice.
+"""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import io
+import math
+from dataclasses import dataclass
+
+
+from bucksim.errors import ScenarioError, SimulationError
+from bucksim.studies.levels import (
+    LoadLevel,
+    load_kind,
+    parse_level,
+    parse_levels,
+    periodic_run,
+    require_open_loop,
+    with_level,
+)
+from bucksim.analysis.summary import LOSS_ITEMS
+from bucksim.model.parts import STRATEGIES, STRATEGY_NAMES, Diode, Mosfet
+from bucksim.studies.profile import (
+    ProfileResult,
+    _profile_result,
+    make_profile,
+)
+from bucksim.studies.reverse import CAUTION, cycle_mean
+from bucksim.model.units import format_si, parse_quantity
+
+STRATEGY_ORDER = STRATEGIES
+
+# ----------------------------------------------------------------------------- strategies
+
+def strategy_scenario(scenario, strategy: str, diode: Diode | None = None):
+    """The scenario's parts run with ``strategy``.
+
+    The synchronous strategies need a low-side MOSFET in the scenario; the
+    asynchronous one uses ``diode`` (default: the scenario's own freewheel
+    diode, else the low-side MOSFET's body diode) and no dead time.
+    """
+    rep = dataclasses.replace
+    ls = scenario.low_side
+    if strategy == "asynchronous":
+        if diode is None:
+            diode = ls if isinstance(ls, Diode) else ls.body_diode
+        diode = Diode(diode.vf, diode.r, diode.qrr, section="low_side")
+        return rep(scenario, low_side=diode,
+                   switching=rep(scenario.switching, strategy=strategy, dead_time=(0.0, 0.0)))
+    if not isinstance(ls, Mosfet):
+        raise ScenarioError("low_side.device", "must be \"mosfet\" to compare the synchronous "
+                            "strategies (describe the low-side MOSFET; give the freewheel "
+                            "diode with diode=... or --diode)", "diode")
+    return rep(scenario, switching=rep(scenario.switching, strategy=strategy))
+
+
+def _duty_limits(scenario):
+    T = scenario.period
+    if scenario.switching.strategy == "asynchronous":
+        return 1e-5, 1.0 - 1e-6
+    tf, tr = scenario.switching.dead_time
+    return 1e-5, 1.0 - (tf + tr) / T - 1e-6
+
+
+def regulated_point(scenario, target: float, guess: float | None = None):
+    """Duty giving mean output voltage ``target`` [V] in steady state.
+
+    Returns ``(scenario at that duty, SteadyState, Run over one period)``.
+
+    Notes
+    -----
+    The mean output voltage rises monotonically with the duty (CCM: about
+    ``Vin`` per unit duty, Erickson ch. 2; DCM: ch. 5); the root is bracketed
+    from a step of ``(target - Vo) / Vin`` and found by ``brentq`` to 1e-12
+    in duty.
+    """
+    from scipy.optimize import brentq
+
+    rep = dataclasses.replace
+    lo, hi = _duty_limits(scenario)
+    memo = {}
+
+    def at(d):
+        if d not in memo:
+            sc = rep(scenario, control=rep(scenario.control, duty=float(d)))
+            ss, run = periodic_run(sc)
+            memo[d] = (cycle_mean(run, "vo") - target, sc, ss, run)
+        return memo[d][0]
+
+    a = min(max(scenario.control.duty if guess is None else guess, lo), hi)
+    fa = at(a)
+    step = -fa / scenario.supply.voltage
+    b = min(max(a + 1.2 * step, lo), hi)
+    if b == a:
+        b = min(max(a - math.copysign(1e-3, fa), lo), hi)
+    fb = at(b)
+    for _ in range(40):
+        if fa * fb <= 0:
+            break
+        if b in (lo, hi):
+            vmax = "the lowest" if b == lo else "the highest"
+            strategy = scenario.switching.strategy
+            raise ScenarioError("output_voltage", f"must be reachable with {strategy} at "
+                                f"this load ({vmax} duty gives {fb + target:.6g} V)", target)
+        a, fa, b = b, fb, min(max(b + 2.0 * (b - a), lo), hi)
+        fb = at(b)
+    if fa == 0 or fb == 0:
+        d = a if fa == 0 else b
+    else:
+        d = brentq(at, min(a, b), max(a, b), xtol=1e-12, rtol=1e-12)
+    at(d)
+    _, sc, ss, run = memo[d]
+    return sc, ss, run
+
+
+# ----------------------------------------------------------------------------- rows
+
+def loss_items(summary: dict, strategy: str) -> dict:
+    """Loss items [W] of a summary dict (keys of :data:`LOSS_ITEMS`); they add up to
+    ``power.loss``."""
+    d = summary["devices"]
+    out = {}
+    for dev in ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode"):
+        if dev not in d:
+            continue
+        if dev == "low_side" and strategy == "asynchronous":
+            # a diode: its reverse recovery is dissipated in (and booked to) the high side
+            out["freewheel_diode.conduction"] = d[dev]["conduction_loss"]
+            continue
+        out[f"{dev}.conduction"] = d[dev]["conduction_loss"]
+        if not dev.endswith("body_diode"):
+            out[f"{dev}.switching"] = d[dev]["switching_loss"]
+    out["inductor.dcr"] = d["inductor"]["conduction_loss"]
+    if "core_loss" in d["inductor"]:
+        out["inductor.core"] = d["inductor"]["core_loss"]
+    out["output_capacitor.esr"] = d["output_capacitor"]["conduction_loss"]
+    if "supply" in d:
+        out["supply.resistance"] = d["supply"]["conduction_loss"]
+    return out
+
+
+@dataclass(frozen=True)
+class Row:
+    """One strategy at one load level, in steady state (SI units).
+
+    ``losses`` maps each item of :data:`LOSS_ITEMS` present to its power [W].
+    """
+
+    strategy: str
+    level: LoadLevel
+    duty: float
+    load_current: float
+    output_voltage: float
+    mode: str
+    reverse_current: bool
+    efficiency: float
+    input_power: float
+    output_power: float
+    loss: float
+    losses: dict
+    energy_balance_error: float
+    error: str | None = None
+
+    @property
+    def ok(self) -> bool:
+        """True for an evaluated point; False when the point failed (see ``error``)."""
+        return self.error is None
+
+    @classmethod
+    def failed(cls, strategy, level, error: str) -> Row:
+        """A point that could not be evaluated: every metric NaN, ``error`` says why."""
+        nan = math.nan
+        return cls(strategy=strategy, level=level, duty=nan, load_current=nan,
+                   output_voltage=nan, mode="", reverse_current=False, efficiency=nan,
+                   input_power=nan, output_power=nan, loss=nan, losses={},
+                   energy_balance_error=nan, error=str(error))
+
+    def to_dict(self) -> dict:
+        return {"strategy": self.strategy, "load": self.level.to_dict(), "error": self.error,
+                "duty": self.duty,
+                "load_current": self.load_current, "output_voltage": self.output_voltage,
+                "mode": self.mode, "reverse_current": self.reverse_current,
+                "efficiency": self.efficiency,
+                "power": {"input": self.input_power, "output": self.output_power,
+                          "loss": self.loss},
+                "losses": dict(self.losses),
+                "energy_balance_error": self.energy_balance_error}
+
+
+def _row(scenario, strategy, level, target, guess):
+    sc = with_level(scenario, level)
+    if target is None:
+        _, run = periodic_run(sc)
+    else:
+        sc, _, run = regulated_point(sc, target, guess)
+    s = run.summary(1).to_dict()
+    p = s["power"]
+    return Row(strategy=strategy, level=level, duty=sc.control.duty,
+               load_current=cycle_mean(run, "io"), output_voltage=s["output_voltage"]["mean"],
+               mode=s["mode"], reverse_current=s["reverse_current"],
+               efficiency=s["efficiency"], input_power=p["input"], output_power=p["output"],
+               loss=p["input"] - p["output"], losses=loss_items(s, strategy),
+               energy_balance_error=float(s["energy_balance_error"]))
+
+
+# ----------------------------------------------------------------------------- profile
+
+@dataclass(frozen=True)
+class Comparison:
+    """Result of :func:`compare`.
+
+    Attributes
+    ----------
+    title : str
+    strategies : tuple of str
+    levels : tuple of LoadLevel     the sweep's load levels
+    rows : dict                     strategy -> tuple of Row, one per level
+    diode : Diode                   freewheel diode of the asynchronous stage
+    target_voltage : float or None  regulated mean output voltage [V]
+    log : bool                      loads spaced / plotted on a log axis
+    profile : ProfileResult or None
+    """
+
+    title: str
+    strategies: tuple
+    levels: tuple
+    rows: dict
+    diode: Diode
+    target_voltage: float | None
+    log: bool = False
+    profile: ProfileResult | None = None
+
+    @property
+    def failures(self) -> list:
+        """The rows that could not be evaluated (sweep and profile levels)."""
+        rows = [r for rs in self.rows.values() for r in rs]
+        if self.profile is not None:
+            rows += [r for rs in self.profile.rows.values() for r in rs]
+        seen, out = set(), []
+        for r in rows:
+            if not r.ok and (r.strategy, r.level) not in seen:
+                seen.add((r.strategy, r.level))
+                out.append(r)
+        return out
+
+    def row(self, strategy: str, level) -> Row:
+        """The row of ``strategy`` at sweep level ``level`` (equal to 1e-6 relative)."""
+        k = self.level_index(level)
+        return self.rows[strategy][k]
+
+    def level_index(self, level) -> int:
+        kind = self.levels[0].key
+        lv = parse_level(level, kind)
+        for k, have in enumerate(self.levels):
+            if have.key == lv.key and math.isclose(have.value, lv.value, rel_tol=1e-6):
+                return k
+        raise KeyError(f"load level {lv} is not in the comparison; evaluated: "
+                       + ", ".join(str(x) for x in self.levels))
+
+    def to_dict(self) -> dict:
+        return {"title": self.title, "strategies": list(self.strategies),
+                "levels": [lv.to_dict() for lv in self.levels],
+                "target_voltage": self.target_voltage,
+                "diode": {"vf": self.diode.vf, "r": self.diode.r, "qrr": self.diode.qrr},
+                "rows": {s: [r.to_dict() for r in rows] for s, rows in self.rows.items()},
+                "profile": None if self.profile is None else self.profile.to_dict(),
+                "caution": CAUTION}
+
+    def to_csv(self, path=None) -> str:
+        """One line per strategy and load; powers [W], current [A], voltage [V].
+
+        Writes ``path`` when given; returns the CSV text either way.
+        """
+        present = [it for it in LOSS_ITEMS
+                   if any(it in r.losses for rows in self.rows.values() for r in rows)]
+        head = ["strategy", "load_key", "load_value", "load_current_A", "output_voltage_V",
+                "duty", "mode", "reverse_current", "efficiency", "input_W", "output_W",
+                "loss_W"] + [f"{it}_W" for it in present] + ["error"]
+        buf = io.StringIO()
+        w = csv.writer(buf, lineterminator="\n")
+        w.writerow(head)
+        for s in self.strategies:
+            for r in self.rows[s]:
+                w.writerow([s, r.level.key, repr(r.level.value), repr(r.load_current),
+                            repr(r.output_voltage), repr(r.duty), r.mode,
+                            int(r.reverse_current), repr(r.efficiency), repr(r.input_power),
+                            repr(r.output_power), repr(r.loss)]
+                           + [repr(r.losses.get(it, 0.0 if r.ok else math.nan))
+                              for it in present] + [r.error or ""])
+        text = buf.getvalue()
+        if path is not None:
+            with open(path, "w", encoding="utf-8", newline="") as f:
+                f.write(text)
+        return text
+
+    def table(self) -> str:
+        """Readable report: efficiency and loss per load, the profile verdict, a caution."""
+        head = f"{'load':>10}{'Io':>10}" + "".join(
+            f"{STRATEGY_NAMES[s]:>24}" for s in self.strategies)
+        sub = " " * 20 + "".join(f"{'efficiency':>13}{'loss':>11}" for _ in self.strategies)
+        lines = [self.title]
+        if self.target_voltage is not None:
+            lines.append(f"duty trimmed to hold Vo = {format_si(self.target_voltage, 'V')} "
+                         "at every point")
+        d = self.diode
+        lines += [(f"asynchronous stage: freewheel diode Vf {format_si(d.vf, 'V')}, "
+                   f"r {format_si(d.r, 'ohm')}, Qrr {format_si(d.qrr, 'C')}"), "", head, sub]
+        for k, lv in enumerate(self.levels):
+            ok = [self.rows[s][k] for s in self.strategies if self.rows[s][k].ok]
+            io = format_si(ok[0].load_current, 'A', 3) if ok else "-"
+            cells = "".join(_cells(self.rows[s][k]) for s in self.strategies)
+            lines.append(f"{lv!s:>10}{io:>10}{cells}")
+        if self.profile is not None:
+            pr = self.profile
+            lines += ["", "load profile: " + ", ".join(
+                f"{lv} {100 * sh:.0f} %" for lv, sh in zip(pr.profile.levels, pr.profile.shares))]
+            for s in self.strategies:
+                if not math.isfinite(pr.weighted_efficiency[s]):
+                    lines.append(f"  {STRATEGY_NAMES[s]:<18} not rated: a profile level "
+                                 "failed")
+                    continue
+                lines.append(f"  {STRATEGY_NAMES[s]:<18} weighted efficiency "
+                             f"{100 * pr.weighted_efficiency[s]:.2f} %   lost "
+                             f"{format_si(pr.energy_lost_per_day[s], 'Wh', 4)}/day")
+            lines += ["", f"best: {pr.decision}"]
+        failed = self.failures
+        if failed:
+            lines += ["", "failed points:"] + [f"  {r.error}" for r in failed]
+        lines += ["", CAUTION]
+        return "\n".join(lines)
+
+    def __str__(self):
+        return self.table()
+
+    def efficiency_figure(self, log=None):
+        from bucksim.plotting import efficiency_figure
+        return efficiency_figure(self, log=log)
+
+    def loss_breakdown_figure(self, loads):
+        from bucksim.plotting import loss_breakdown_figure
+        return loss_breakdown_figure(self, loads)
+
+
+def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
+            regulate=True, strategies=STRATEGY_ORDER, log=False) -> Comparison:
+    """Efficiency and losses of the three strategies across load, on the same parts.
+
+    Parameters
+    ----------
+    scenario : Scenario
+        Open loop, with a low-side MOSFET (its body diode is the default
+        freewheel diode).
+    loads : list, dict or value
+        Sweep load levels (see :func:`bucksim.studies.reverse.parse_levels`).
+    diode : Diode, optional
+        Freewheel diode of the asynchronous stage: ``vf`` [V], ``r`` [ohm],
+        ``qrr`` [C].
+    profile : Profile or list of (level, share), optional
+        Load profile for the weighted efficiency and energy lost per day.
+    output_voltage : float, optional
+        Mean output voltage [V] to hold at every point; default the
+        scenario's own (steady state at its duty and t = 0 load).
+    regulate : bool
+        Trim the duty to hold the output voltage (default); ``False`` keeps
+        the scenario's duty.
+    strategies : sequence of str
+    log : bool
+        Loads meant for a logarithmic axis (figures follow it).
+
+    Returns
+    -------
+    Comparison
+        A point that has no periodic steady state (or whose output voltage
+        the duty cannot reach) is kept as a row with ``error`` set and every
+        metric NaN; :attr:`Comparison.failures` lists them.
+    """
+    require_open_loop(scenario)
+    for s in strategies:
+        if s not in STRATEGY_ORDER:
+            raise ScenarioError("strategies", "must name only " + ", ".join(STRATEGY_ORDER), s)
+    levels = parse_levels(loads, scenario, "loads")
+    variants = {s: strategy_scenario(scenario, s, diode) for s in strategies}
+    if "asynchronous" in variants:
+        used_diode = variants["asynchronous"].low_side
+    else:
+        used_diode = strategy_scenario(scenario, "asynchronous", diode).low_side
+    target = None
+    if regulate:
+        if output_voltage is not None:
+            target = parse_quantity(output_voltage, "V", "output_voltage")
+            if not 0 < target < scenario.supply.voltage:
+                raise ScenarioError("output_voltage", f"must lie between 0 and the supply "
+                                    f"voltage {scenario.supply.voltage:g} V", output_voltage)
+        else:
+            _, run = periodic_run(with_level(scenario, _own_level(scenario)))
+            target = cycle_mean(run, "vo")
+    cache = {}
+
+    def rows_for(strategy, lvls):
+        out, guess = [], None
+        for lv in lvls:
+            key = (strategy, lv.key, lv.value)
+            if key not in cache:
+                try:
+                    cache[key] = _row(variants[strategy], strategy, lv, target, guess)
+                except (SimulationError, ScenarioError) as exc:
+                    # one point without a steady state (or out of the duty's reach)
+                    # must not hide the others: its row carries the reason
+                    cache[key] = Row.failed(strategy, lv, f"{STRATEGY_NAMES[strategy]} at "
+                                            f"{lv}: {exc}")
+            out.append(cache[key])
+            if cache[key].ok:
+                guess = cache[key].duty
+        return tuple(out)
+
+    rows = {s: rows_for(s, levels) for s in strategies}
+    pres = None
+    if profile is not None:
+        prof = make_profile(profile, scenario)
+        pres = _profile_result(prof, {s: list(rows_for(s, prof.levels)) for s in strategies})
+    return Comparison(title=scenario.title, strategies=tuple(strategies), levels=tuple(levels),
+                      rows=rows, diode=used_diode, target_voltage=target, log=bool(log),
+                      profile=pres)
+
+
+def _cells(row) -> str:
+    if not row.ok:
+        return f"{'failed':>13}{'-':>11}"
+    return f"{100 * row.efficiency:>12.2f}%{format_si(row.loss, 'W', 3):>11}"
+
+
+def _own_level(scenario):
+    kind = load_kind(scenario)
+    value = scenario.load.current if kind == "current" else scenario.load.resistance
+    return LoadLevel(kind, float(value))
