@@ -3,7 +3,7 @@
 Build with ``python -m sphinx -W -b html docs docs/_build/html`` from the project folder
 (warnings are errors). The Markdown pages are read by MyST; the tutorial notebooks in
 ``notebooks/`` are rendered by myst-nb as they are committed (outputs stripped), never
-executed here: ``tests/test_notebooks.py`` executes them.
+executed here: ``tests/system/test_notebooks.py`` executes them.
 """
 
 from __future__ import annotations

@@ -3,7 +3,6 @@
 import atexit
 import os
 import shutil
-import sys
 import tempfile
 
 # Small-matrix LAPACK calls (expm of 3 x 3) run several times slower when
@@ -21,5 +20,3 @@ if "HYPOTHESIS_STORAGE_DIRECTORY" not in os.environ:
     os.environ["HYPOTHESIS_STORAGE_DIRECTORY"] = _hypothesis_dir
     atexit.register(shutil.rmtree, _hypothesis_dir, ignore_errors=True)
 
-# tests import the independent reference solver as a plain module
-sys.path.insert(0, os.path.dirname(__file__))

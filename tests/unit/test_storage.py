@@ -28,7 +28,7 @@ from bucksim.io.hdf5 import save_run
 from bucksim.simulation import simulate_to_file
 from bucksim.waveforms import open_run
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 COLUMNS = ("t0", "dt", "conduction", "system", "x0")
 
 

@@ -4,7 +4,7 @@ Sources: Aprille & Trick, Proc. IEEE 60(1), 1972 (shooting on the one-period
 map); the monodromy matrix of a piecewise-linear system with fixed switching
 times is the product of its state-transition matrices (Floquet theory), here
 computed independently with ``scipy.linalg.expm`` from the reference circuit
-of ``tests/reference_sim.py``.
+of ``tests/references/stage_solver.py``.
 """
 
 import dataclasses
@@ -15,7 +15,7 @@ from scipy.linalg import expm
 
 import bucksim
 from bucksim.steady.solve import steady_state
-from reference_sim import HIGH, LOW, LOW_DIODE, Circuit, buck_scenario
+from tests.references.stage_solver import HIGH, LOW, LOW_DIODE, Circuit, buck_scenario
 
 CASES = {
     # CCM, forced PWM with dead time on both edges
@@ -62,7 +62,7 @@ def test_floquet_multipliers_equal_expm_product(case):
     run = bucksim.simulate(dataclasses.replace(sc, run=dataclasses.replace(
         sc.run, initial_current=ss.x[0], initial_voltage=ss.x[1])))
     il_fall, il_rise = run.at([on, T - tr])[:, 0]
-    from reference_sim import HIGH_DIODE
+    from tests.references.stage_solver import HIGH_DIODE
     dead = [LOW_DIODE if i > 0 else HIGH_DIODE for i in (il_fall, il_rise)]
     sequence = [(HIGH, on), (dead[0], tf), (LOW, T - on - tf - tr), (dead[1], tr)]
     P = np.eye(2)

@@ -77,7 +77,7 @@ def test_energy_balance_certifies_the_waveform_integrals_with_switching_and_core
     exact edge currents and flux, booked both as energy drawn from the supply and as
     loss, so the balance cannot see an error in them; they are checked against
     their own formulas elsewhere (test_overlap_energy_uses_the_exact_edge_currents,
-    the crosscheck rows, tests/test_coreloss.py)."""
+    the crosscheck rows, tests/validation/test_coreloss.py)."""
     from bucksim.model.parts import CoreLoss
     sc = rail()
     sc = dataclasses.replace(sc, inductor=Inductor(22e-6, 0.01, core=CoreLoss(

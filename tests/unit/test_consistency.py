@@ -247,13 +247,13 @@ def test_telemetry_scenario_states_its_phase_margins():
     """The telemetry rail's comment states the phase margin at both load levels of
     the run. The averaged CCM buck with its parasitics (Erickson & Maksimovic ch. 7),
     closed by the same analog compensator, gives them with python-control's
-    stability_margins (tests/test_analog_loop.py builds that model), at the duty
+    stability_margins (tests/validation/test_analog_loop.py builds that model), at the duty
     of each settled operating point; the comment must match to 1 degree."""
     import math
     import re
 
     import control as ct
-    from test_analog_loop import averaged_loop
+    from tests.validation.test_analog_loop import averaged_loop
 
     from bucksim.simulation import simulate_settled
 

@@ -1,8 +1,8 @@
 """Analog closed-loop control: the engine against an independent reference and textbook models.
 
-The reference (tests/reference_analog.py) is written from the circuit and
+The reference (tests/references/analog_solver.py) is written from the circuit and
 control description alone: solve_ivp (DOP853, rtol 1e-12) on the plant plus our
-own state-space realisation of the compensator (tests/reference_compensator.py,
+own state-space realisation of the compensator (tests/references/compensator.py,
 integrator state explicit), restarted at every switching instant, with terminal
 events for the comparator, for iL = 0 and for the start and end of the
 integrator hold (anti-windup by conditional integration).
@@ -34,9 +34,9 @@ from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, Load
                            RunSettings, Scenario, Supply, Switching)
 from bucksim.model.scenario import loads_scenario
 from bucksim.steady.closed_loop import closed_loop_steady_state
-from reference_analog import compensator_polynomials, compensator_ss, reference_loop
-from reference_compensator import FREE, HELD_HIGH, HELD_LOW, integrator_limits
-from reference_sim import simulate_expm
+from tests.references.analog_solver import compensator_polynomials, compensator_ss, reference_loop
+from tests.references.compensator import FREE, HELD_HIGH, HELD_LOW, integrator_limits
+from tests.references.stage_solver import simulate_expm
 
 FS = 500e3
 T = 1 / FS
@@ -438,7 +438,7 @@ def test_soft_start_inrush_is_c_dv_dt_plus_load(spec, ss_time):
 def test_analog_is_a_scenario_key_and_refuses_sampled_settings(tmp_path):
     """[control] implementation = "analog" (default "digital"); delay and duty_bits
     describe a sampled controller and are errors with analog (the scenario contract)."""
-    with open(os.path.join(os.path.dirname(__file__), "..", "scenarios",
+    with open(os.path.join(os.path.dirname(__file__), "..", "..", "scenarios",
                            "startup_5v_softstart.toml")) as f:
         text = f.read()
     assert loads_scenario(text).control.implementation == "digital"

@@ -29,7 +29,7 @@ import math
 
 import numpy as np
 import pytest
-from reference_sim import buck_scenario
+from tests.references.stage_solver import buck_scenario
 
 import bucksim
 from bucksim.errors import SimulationError
@@ -169,7 +169,7 @@ def test_filter_resonance_far_above_the_switching_frequency():
     # eight times. Circuit theory: an underdamped series RLC driven by a step
     # overshoots its final value (~Vin here), so vo must exceed Vin. The peaks
     # are also taken from the independent reference solver (scipy expm).
-    from reference_sim import Circuit, simulate_expm
+    from tests.references.stage_solver import Circuit, simulate_expm
 
     vin, d, fs, L, C, R = 1.0, 0.5, 10e3, 1e-6, 1e-6, 50.0
     sc = buck_scenario(vin=vin, duty=d, frequency=fs, strategy="asynchronous", inductance=L,
@@ -352,7 +352,7 @@ def _loop_rail(compensator, cycles=2000):
 
 
 # An integrator with 1e9 /s against a ~1.5 kHz crossover design (PI gain 2000
-# /s in tests/test_closed_loop.py): the loop gain is ~1e6 times too high.
+# /s in tests/validation/test_closed_loop.py): the loop gain is ~1e6 times too high.
 _UNSTABLE = {"gain": 1e9}
 
 

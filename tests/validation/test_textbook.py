@@ -24,7 +24,7 @@ import math
 import pytest
 
 import bucksim
-from reference_sim import buck_scenario
+from tests.references.stage_solver import buck_scenario
 
 _IDEAL = dict(rds_hs=1e-6, rds_ls=1e-6, vf_hs=0.0, r_hs=0.0, vf_ls=0.0, r_ls=0.0)
 WINDOW = 20

@@ -22,7 +22,7 @@ from bucksim.model.scenario import (DEFAULT_SCENARIO_PATH, dump_scenario, load_s
                               loads_scenario, replace_key, scenario_to_dict)
 from bucksim.model.units import format_si, parse_quantity
 
-ROOT = Path(__file__).resolve().parent.parent
+ROOT = Path(__file__).resolve().parents[2]
 BUNDLED = sorted((ROOT / "scenarios").glob("*.toml")) + [DEFAULT_SCENARIO_PATH]
 OPEN_LOOP = [p for p in BUNDLED if 'mode = "open-loop"' in p.read_text()]
 

@@ -4,7 +4,7 @@ Each test reproduces a defect found by attacking the API (issue 11) and checks
 the contract that replaces it: a plain error naming what was wrong (TypeError,
 ValueError, ScenarioError or SimulationError), or a run whose ``status`` and
 ``message`` say what happened. External references: the independent solver
-``tests/reference_analog.py`` (solve_ivp + event location, Newton shooting
+``tests/references/analog_solver.py`` (solve_ivp + event location, Newton shooting
 after Aprille & Trick, Proc. IEEE 60(1), 1972) for the Floquet multipliers of
 an unstable loop; IEEE 754 double precision (largest finite value 1.8e308,
 so a square overflows above 1.34e154) for the state range.
@@ -14,7 +14,7 @@ import dataclasses
 
 import numpy as np
 import pytest
-from reference_analog import reference_loop
+from tests.references.analog_solver import reference_loop
 
 import bucksim
 import bucksim.simulation

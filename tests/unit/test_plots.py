@@ -13,7 +13,7 @@ import matplotlib
 import matplotlib.image
 import numpy as np
 import pytest
-from test_compare import pol_rail
+from tests.validation.test_compare import pol_rail
 
 import bucksim
 from bucksim.analysis.summary import item_label

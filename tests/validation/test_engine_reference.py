@@ -26,7 +26,7 @@ import numpy as np
 import pytest
 
 import bucksim
-from reference_sim import (HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, Circuit, buck_scenario,
+from tests.references.stage_solver import (HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, Circuit, buck_scenario,
                            simulate_expm, simulate_ivp)
 
 CYCLES = 1000

@@ -30,14 +30,14 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from test_sweep import RAIL_TOML, rail
+from tests.system.test_sweep import RAIL_TOML, rail
 
 import bucksim
 from bucksim.errors import ScenarioError
 from bucksim.sweeps.plan import SweepError, sweep
 from bucksim.sweeps.table import SweepTable
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 LINUX = sys.platform.startswith("linux")
 
 
@@ -45,7 +45,7 @@ def _env(**extra):
     """A child environment without the test session's BLAS pinning."""
     env = {k: v for k, v in os.environ.items()
            if k not in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")}
-    env["PYTHONPATH"] = os.pathsep.join([str(REPO), str(REPO / "tests"),
+    env["PYTHONPATH"] = os.pathsep.join([str(REPO),
                                          env.get("PYTHONPATH", "")])
     env.update(extra)
     return env
@@ -87,9 +87,7 @@ RECORDER = PROBE + textwrap.dedent("""\
     _exec.run_point = _recording  # also in spawned workers (they import __main__)
 
     if __name__ == "__main__":
-        import sys
-        sys.path.insert(0, os.environ["TESTS_DIR"])
-        from test_sweep import rail
+        from tests.system.test_sweep import rail
         from bucksim.sweeps.plan import sweep
         vary = {"load.resistance": [1.0, 2.5, 6.0, 9.0]}
         sweep(rail(), vary, workers=1, progress=False)
@@ -106,7 +104,7 @@ def test_every_blas_runs_one_thread_wherever_a_point_runs(tmp_path):
     # two threads by default, so one thread is something the sweep must set
     out = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
                          check=False, timeout=300, env=_env(OPENBLAS_NUM_THREADS="2", BLAS_LOG=str(log),
-                                               TESTS_DIR=str(REPO / "tests")))
+                                               PYTHONPATH=str(REPO)))
     assert out.returncode == 0, out.stderr[-3000:]
     records = [json.loads(line) for line in log.read_text().splitlines()]
     assert len(records) == 8
@@ -121,7 +119,7 @@ def test_every_blas_runs_one_thread_wherever_a_point_runs(tmp_path):
 BIT_IDENTITY = textwrap.dedent("""\
     import sys
     import numpy as np
-    from test_sweep import rail
+    from tests.system.test_sweep import rail
     from bucksim.sweeps.plan import sweep
 
     if __name__ == "__main__":
@@ -159,7 +157,7 @@ def test_rows_are_bit_identical_in_process_in_a_pool_and_on_dask(tmp_path):
 
 ORPHAN = textwrap.dedent("""\
     import numpy as np
-    from test_sweep import rail
+    from tests.system.test_sweep import rail
     from bucksim.sweeps.plan import sweep
 
     if __name__ == "__main__":

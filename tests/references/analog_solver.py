@@ -98,9 +98,9 @@ import numpy as np
 from scipy.integrate import solve_ivp
 from scipy.linalg import expm
 
-from reference_compensator import (FREE, HELD_HIGH, HELD_LOW, compensator_polynomials,
+from tests.references.compensator import (FREE, HELD_HIGH, HELD_LOW, compensator_polynomials,
                                    compensator_ss, hold_rule, integrator_limits)
-from reference_sim import _GATE_LOW, _GATE_OFF, HIGH, IDLE, Circuit
+from tests.references.stage_solver import _GATE_LOW, _GATE_OFF, HIGH, IDLE, Circuit
 
 __all__ = ["AnalogLoop", "Loop", "LoopTrace", "circuit_of", "compensator_polynomials",
            "compensator_ss", "reference_loop"]

@@ -29,7 +29,7 @@ example, not for a fixed list.
 
 Runs are bounded in count (``BUCKSIM_EXAMPLES_FACTOR`` multiplies every
 count, for a long search: ``BUCKSIM_EXAMPLES_FACTOR=20 pytest
-tests/test_properties.py``), use no example database, and each example has
+tests/validation/test_properties.py``), use no example database, and each example has
 a deadline so a hang fails instead of stalling.
 """
 
@@ -48,7 +48,7 @@ import pytest
 import tomli_w
 from hypothesis import HealthCheck, example, given, note, settings
 from hypothesis import strategies as st
-from reference_sim import buck_scenario
+from tests.references.stage_solver import buck_scenario
 
 import bucksim
 from bucksim.errors import ScenarioError
@@ -62,7 +62,7 @@ from bucksim.model.scenario import (
 ENERGY_TOL = 1e-9   # DESIGN.md: a residual above 1e-9 (relative) is a bug
 SOURCE = "mutant.toml"
 
-_SCENARIO_DIR = Path(__file__).resolve().parents[1] / "scenarios"
+_SCENARIO_DIR = Path(__file__).resolve().parents[2] / "scenarios"
 _BASE_PATHS = [Path(DEFAULT_SCENARIO_PATH)] + sorted(_SCENARIO_DIR.glob("*.toml"))
 BASES = {p.name: tomllib.loads(p.read_text(encoding="utf-8")) for p in _BASE_PATHS}
 

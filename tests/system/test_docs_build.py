@@ -24,7 +24,7 @@ from pathlib import Path
 
 import pytest
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 DOCS = REPO / "docs"
 README = REPO / "README.md"
 

@@ -37,7 +37,7 @@ from bucksim.model import parts as p
 from bucksim.sweeps.plan import SweepError, draw_factors, sweep
 from bucksim.sweeps.table import SweepTable
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 SUMMARY_CYCLES = 5
 
 

@@ -33,7 +33,7 @@ from bucksim.model.parts import (
     Switching,
 )
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 DEFAULT = REPO / "bucksim" / "data" / "default.toml"
 CORE = REPO / "scenarios" / "core_rail_1v0.toml"
 
@@ -68,7 +68,7 @@ def assert_plain_refusal(code, err, *names):
 
 def unstable_loop(cycles=600):
     """A voltage-mode loop with an integrator gain ~1e6 above a sane crossover
-    (invented values, as in tests/test_extremes.py): it bangs between its duty clamps."""
+    (invented values, as in tests/validation/test_extreme_designs.py): it bangs between its duty clamps."""
     hs = Mosfet(0.01, Diode(0.7, 0.01, section="high_side.body_diode"), section="high_side")
     ls = Mosfet(0.005, Diode(0.7, 0.01, section="low_side.body_diode"), section="low_side")
     return Scenario("unstable loop (invented)", Supply(12.0),
@@ -361,7 +361,7 @@ def test_stream_starts_in_steady_state_like_simulate(tmp_path, mode):
     base = unstable_loop(cycles=40)
     if mode == "open-loop":
         control = Control(duty=0.3)
-    else:  # the stable PI of tests/test_closed_loop.py
+    else:  # the stable PI of tests/validation/test_closed_loop.py
         control = Control(mode="voltage-mode", reference=3.3,
                           compensator={"gain": 2000.0, "zeros": [2000.0]})
     sc = dataclasses.replace(base, control=control,

@@ -21,7 +21,7 @@ import pytest
 nbclient = pytest.importorskip("nbclient")
 pytest.importorskip("ipykernel")
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 NOTEBOOKS = ROOT / "notebooks"
 NAMES = ("01_first_tour.ipynb", "02_strategy_for_a_rail.ipynb", "03_validate_loss_budget.ipynb")
 CELL_TIMEOUT = 120  # s per cell

@@ -39,7 +39,7 @@ from pathlib import Path
 
 import pytest
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 README = REPO / "README.md"
 DOCS = REPO / "docs"
 GETTING_STARTED = DOCS / "getting-started.md"

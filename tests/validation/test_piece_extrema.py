@@ -19,7 +19,7 @@ import math
 
 import numpy as np
 import pytest
-from reference_sim import Circuit, buck_scenario
+from tests.references.stage_solver import Circuit, buck_scenario
 from scipy.linalg import expm
 from scipy.optimize import brentq
 
