@@ -77,7 +77,7 @@ time = "1.5 ms"
 resistance = "2 ohm"
 
 [[load.steps]]
-time = "3 ms"
+time = "2.5 ms"
 current = "1 A"
 
 [control]
@@ -282,7 +282,7 @@ def test_base_scenario_values(tmp_path):
     assert s.low_side.rise_time == 0.0 and s.low_side.body_diode.qrr == 20e-9
     assert s.load.resistance == 1.0 and s.load.current == 0.5
     assert [(st.time, st.resistance, st.current) for st in s.load.steps] == [
-        (1.5e-3, 2.0, None), (3e-3, None, 1.0)]
+        (1.5e-3, 2.0, None), (2.5e-3, None, 1.0)]
     assert s.control.duty == 0.3 and s.control.soft_start == 100e-6
     assert s.run.cycles == 3000 and s.run.summary_cycles == 20
 
@@ -293,14 +293,14 @@ def test_defaults_of_optional_keys():
     text = edit('dead_time = ["20 ns", "30 ns"]\n', "", text)
     text = edit('resistance = "1 ohm"\ncurrent = "0.5 A"\n', "", text)
     text = edit("[run]\ncycles = 3000\nstart = \"rest\"\nsummary_cycles = 20\n",
-                '[run]\nduration = "2 ms"\n', text)
+                '[run]\nduration = "3 ms"\n', text)
     text = edit('mode = "open-loop"\n', "", text)
     s = loads_scenario(text)
     assert s.supply.resistance == 0.0 and s.supply.steps == ()
     assert s.switching.dead_time == (0.0, 0.0)
     assert s.load.resistance is None and s.load.current == 0.0
     assert s.control.mode == "open-loop"
-    assert s.run.duration == 2e-3 and s.run.cycles is None and s.run.summary_cycles == 20
+    assert s.run.duration == 3e-3 and s.run.cycles is None and s.run.summary_cycles == 20
     assert s.run.start == "rest"
 
 
@@ -337,7 +337,7 @@ def test_round_trip_of_a_scenario_using_every_key(tmp_path):
     # Plain numbers in SI base units, no strings left for quantities.
     assert d["inductor"]["inductance"] == 2.2e-6
     assert d["switching"]["dead_time"] == [20e-9, 30e-9]
-    assert d["load"]["steps"] == [{"time": 1.5e-3, "resistance": 2.0}, {"time": 3e-3, "current": 1.0}]
+    assert d["load"]["steps"] == [{"time": 1.5e-3, "resistance": 2.0}, {"time": 2.5e-3, "current": 1.0}]
     assert loads_scenario(tomli_w.dumps(d)) == s
     dump_scenario(s, tmp_path / "out.toml")
     assert load_scenario(tmp_path / "out.toml") == s
@@ -522,11 +522,23 @@ def test_non_physical_value_in_a_body_diode(tmp_path):
 
 
 def test_step_times_out_of_order_locate_the_step(tmp_path):
-    text = edit('time = "3 ms"', 'time = "1 ms"')
+    text = edit('time = "2.5 ms"', 'time = "1 ms"')
     path, err = load_error(tmp_path, text)
     n = line_no(text, 'time = "1 ms"')
     assert str(err) == (f"{path}:{n}: load.steps[1].time: "
                         "must be later than the previous step, got 0.001")
+
+
+def test_a_step_at_the_end_of_the_run_is_warned_about(tmp_path):
+    # 3000 cycles of 1 us end at 3 ms: a step there never happens. It is
+    # valid, so a warning naming the file and the key, not an error.
+    path = write(tmp_path, edit('time = "2.5 ms"', 'time = "3 ms"'))
+    with pytest.warns(UserWarning) as caught:
+        s = load_scenario(path)
+    assert s.load.steps[1].time == 3e-3
+    assert [str(w.message) for w in caught] == [
+        f"{path}: load.steps[1].time: the step at 3 ms is at or after the end of the run "
+        "(3 ms), so it never happens"]
 
 
 def test_dead_time_not_fitting_in_the_off_time(tmp_path):
