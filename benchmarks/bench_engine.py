@@ -24,19 +24,29 @@ import os
 # spreads them over threads on a busy machine
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
-import argparse  # noqa: E402
-import json  # noqa: E402
-import platform  # noqa: E402
-import time  # noqa: E402
+import argparse
+import json
+import platform
+import time
 
-import numpy as np  # noqa: E402
-from scipy.integrate import solve_ivp  # noqa: E402
+import numpy as np
+from scipy.integrate import solve_ivp
 
-import bucksim  # noqa: E402
-from bucksim.engine.driver import build_table, integrate  # noqa: E402
-from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet,  # noqa: E402
-                           RunSettings, Scenario, Supply, Switching)
-from bucksim.model.stage import Stage  # noqa: E402
+import bucksim
+from bucksim.engine.driver import build_table, integrate
+from bucksim.model.parts import (
+    Capacitor,
+    Control,
+    Diode,
+    Inductor,
+    Load,
+    Mosfet,
+    RunSettings,
+    Scenario,
+    Supply,
+    Switching,
+)
+from bucksim.model.stage import Stage
 
 
 def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9)) -> Scenario:
@@ -75,8 +85,8 @@ def closed_loop_rate(cycles: int, repeats: int = 3, implementation: str = "digit
     zero-current event every period."""
     import dataclasses
 
-    from bucksim.model.compensator import design
     from bucksim.engine.controlled import integrate_closed_loop
+    from bucksim.model.compensator import design
 
     sc = rail("diode-emulation", 30.0, cycles)
     sc = dataclasses.replace(sc, control=Control(mode="voltage-mode", reference=3.3,
@@ -115,7 +125,7 @@ def ode_reference(scenario: Scenario, cycles: int):
             else:
                 k = LOW_DIODE if z[0] > 0 else HIGH_DIODE
             M = stage.matrices[k]
-            sol = solve_ivp(lambda t, y: M @ y, (c * T + edges[p], c * T + edges[p + 1]), z,
+            sol = solve_ivp(lambda t, y, M=M: M @ y, (c * T + edges[p], c * T + edges[p + 1]), z,
                             method="RK45", rtol=1e-9, atol=1e-12)
             n_rhs += sol.nfev
             z = sol.y[:, -1]
@@ -145,7 +155,8 @@ def main(argv=None):
     err = float(np.max(np.abs(run.x_end - x_ode) / scale))
     # the engine's own accuracy: against the exact expm-stepping reference
     out = {
-        "machine": f"{platform.processor() or platform.machine()}, python {platform.python_version()}",
+        "machine": f"{platform.processor() or platform.machine()}, "
+                   f"python {platform.python_version()}",
         "forced_pwm_cycles_per_s": fpwm,
         "diode_emulation_dcm_cycles_per_s": de,
         "closed_loop_dcm_cycles_per_s": closed,
@@ -161,7 +172,8 @@ def main(argv=None):
     print(f"| engine, digital voltage-mode loop, diode emulation in DCM | {closed:.3g} cycles/s |")
     print(f"| engine, analog voltage-mode loop (PI, 4 states), diode emulation in DCM "
           f"| {analog:.3g} cycles/s |")
-    print(f"| solve_ivp RK45 rtol 1e-9, restarted per switching instant | {ode_rate:.3g} cycles/s |")
+    print(f"| solve_ivp RK45 rtol 1e-9, restarted per switching instant "
+          f"| {ode_rate:.3g} cycles/s |")
     print(f"| speed ratio engine / solve_ivp | {fpwm / ode_rate:.3g}x |")
     print(f"| final-state difference after {a.ode_cycles} cycles (relative) | {err:.2e} |")
     if a.json:

@@ -17,10 +17,10 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
-from reference_sim import buck_scenario  # noqa: E402
+from reference_sim import buck_scenario
 
-import bucksim  # noqa: E402
-from bucksim.steady.solve import steady_state  # noqa: E402
+import bucksim
+from bucksim.steady.solve import steady_state
 
 
 def brute_force_cycles(sc, target, tol=1e-9, chunk=500, limit=2_000_000):

@@ -56,10 +56,9 @@ def child(case: str, cycles: int, path: str) -> dict:
     """One measured case, inside a fresh process; returns its figures."""
     import h5py  # noqa: F401  (every case pays for the HDF5 library, baseline too)
 
-    from bucksim.simulation import simulate
-    from bucksim.simulation import simulate_to_file
-    from bucksim.waveforms import open_run
     from bucksim.analysis.stored import summarize_file
+    from bucksim.simulation import simulate, simulate_to_file
+    from bucksim.waveforms import open_run
 
     simulate(rail(10))  # load or compile the kernels outside the timed part
     out = {"case": case}

@@ -11,10 +11,10 @@ The engine (numba) is imported on first use, so importing the package and
 ``bucksim --help`` stay fast.
 """
 
-from bucksim.studies.compare import compare
+from bucksim.analysis.budget import estimate
 from bucksim.analysis.crosscheck import crosscheck
 from bucksim.errors import ScenarioError, SimulationError, StorageError
-from bucksim.analysis.budget import estimate
+from bucksim.studies.compare import compare
 from bucksim.studies.reverse import reverse_current
 from bucksim.sweeps.plan import sweep
 from bucksim.version import package_version
@@ -58,4 +58,5 @@ def __getattr__(name):
 
 
 __all__ = ["load_scenario", "simulate", "open_run", "steady_state", "estimate", "crosscheck",
-           "sweep", "reverse_current", "compare", "Run", "ScenarioError", "SimulationError", "StorageError", "__version__"]
+           "sweep", "reverse_current", "compare", "Run", "ScenarioError", "SimulationError",
+           "StorageError", "__version__"]

@@ -34,7 +34,8 @@ def summary_json(tree: Path, scenario: Path) -> str:
 
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    parser.add_argument("rev", help="git revision to compare against (e.g. the commit before a move)")
+    parser.add_argument("rev",
+                        help="git revision to compare against (e.g. the commit before a move)")
     parser.add_argument("--scenarios", nargs="*", type=Path,
                         default=[ROOT / "bucksim" / "data" / "default.toml",
                                  *sorted((ROOT / "scenarios").glob("*.toml"))])

@@ -20,10 +20,10 @@ a corrupt file is refused wherever the corruption lies.
 
 from __future__ import annotations
 
+from bucksim.analysis.summary import Summary
 from bucksim.engine.driver import EngineResult
 from bucksim.errors import StorageError
 from bucksim.io.runfile import guarded_read, open_run_file, read_rows
-from bucksim.analysis.summary import Summary
 from bucksim.waveforms import Run
 
 __all__ = ["BLOCK_ROWS", "read_run_info", "summarize_file"]

@@ -16,10 +16,10 @@ import traceback
 import warnings
 
 from bucksim.cli import cache, compare, crosscheck, plot, reverse, run, sweep
-from bucksim.cli.common import (EXIT_INTERNAL, EXIT_OK, EXIT_USER, ArgumentParser,
-                                UserError)
+from bucksim.cli.common import EXIT_INTERNAL, EXIT_OK, EXIT_USER, ArgumentParser, UserError
 from bucksim.errors import ScenarioError, SimulationError, StorageError
 from bucksim.version import package_version
+
 
 def build_parser() -> argparse.ArgumentParser:
     p = ArgumentParser(
@@ -80,7 +80,7 @@ def _dispatch(args) -> int:
     except KeyboardInterrupt:
         print("bucksim: interrupted", file=sys.stderr)
         return 130
-    except Exception as exc:  # noqa: BLE001 - an internal error: say so, keep the traceback
+    except Exception as exc:  # an internal error: say so, keep the traceback
         traceback.print_exc()
         print(f"bucksim: internal error: {exc!r} (please report it)", file=sys.stderr)
         return EXIT_INTERNAL

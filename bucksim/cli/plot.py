@@ -10,6 +10,7 @@ from bucksim.cli.common import int_option
 from bucksim.errors import ScenarioError, StorageError
 from bucksim.model.units import parse_quantity
 
+
 def parse_window(text: str):
     """``"START:STOP"`` [s] (prefixes allowed: ``"1 ms:1.02 ms"``) -> ``(start, stop)``."""
     parts = text.split(":")

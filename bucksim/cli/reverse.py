@@ -13,6 +13,7 @@ from bucksim.cli.common import emit
 from bucksim.errors import ScenarioError, SimulationError
 from bucksim.model.scenario import load_scenario
 
+
 def register(subparsers):
     """Add the ``reverse`` verb to the ``bucksim`` command."""
     p = subparsers.add_parser(

@@ -6,9 +6,17 @@ from __future__ import annotations
 import dataclasses
 import sys
 
-from bucksim.cli.common import (EXIT_OK, EXIT_USER, STATUS_DIVERGED, UserError,
-                                default_scenario_path, int_option, print_summary, progress_bar,
-                                refuse_overwrite)
+from bucksim.cli.common import (
+    EXIT_OK,
+    EXIT_USER,
+    STATUS_DIVERGED,
+    UserError,
+    default_scenario_path,
+    int_option,
+    print_summary,
+    progress_bar,
+    refuse_overwrite,
+)
 from bucksim.model.scenario import load_scenario
 
 # The engine and the stored-run readers load numba, scipy and h5py: each verb

@@ -49,7 +49,8 @@ def _add_arguments(p):
     p.add_argument("--monte-carlo", type=int, metavar="N", help="number of random draws")
     p.add_argument("--tolerance", action="append", default=[], metavar="KEY=10%",
                    help="relative spread of a key for --monte-carlo (repeatable)")
-    from bucksim.cli.common import int_option  # integers argparse refuses plainly, naming the option
+    # integers argparse refuses plainly, naming the option
+    from bucksim.cli.common import int_option
     p.add_argument("--seed", type=int_option(0), default=0,
                    help="seed of the draws, an integer >= 0 (default 0)")
     p.add_argument("--workers", type=int, metavar="N",
@@ -95,7 +96,7 @@ def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     try:
         return run_command(args)
-    except Exception as exc:  # noqa: BLE001 - internal error: say so, keep the traceback
+    except Exception as exc:  # an internal error: say so, keep the traceback
         import traceback
         traceback.print_exc()
         print(f"bucksim: internal error: {exc!r} (please report it)", file=sys.stderr)
@@ -110,8 +111,9 @@ def _split_assignment(option, text):
     key, sep, rhs = text.partition("=")
     key, rhs = key.strip(), rhs.strip()
     if not sep or not key or not rhs:
-        raise SweepError(f"{option} {text!r}: expected KEY=VALUES, e.g. "
-                         f"{'inductor.inductance=1uH:10uH:5' if option == '--vary' else 'inductor.inductance=10%'}")
+        example = ("inductor.inductance=1uH:10uH:5" if option == "--vary"
+                   else "inductor.inductance=10%")
+        raise SweepError(f"{option} {text!r}: expected KEY=VALUES, e.g. {example}")
     return key, rhs
 
 

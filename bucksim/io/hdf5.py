@@ -159,8 +159,8 @@ class _RunWriter:
                  latch: _InterruptLatch, state_names):
         import h5py
 
-        from bucksim.version import package_version
         from bucksim.model.scenario import scenario_to_dict
+        from bucksim.version import package_version
 
         self.f = f
         f.attrs["layout_version"] = LAYOUT_VERSION
@@ -207,7 +207,7 @@ class _RunWriter:
         if x0.shape != (k, n):
             raise ValueError(f"x0 must have shape ({k}, {n}), got {x0.shape}")
         cols = (t0, dt, conduction, system) + tuple(x0[:, j] for j in range(x0.shape[1]))
-        for ds, col in zip(self.columns, cols):
+        for ds, col in zip(self.columns, cols, strict=True):
             ds.resize((self.n + k,))
             ds[self.n:] = col
         self.n += k

@@ -21,7 +21,7 @@ import numpy as np
 
 from bucksim.engine.driver import EngineResult, TransitionTable
 from bucksim.errors import ScenarioError, StorageError
-from bucksim.model.stage import UNITS, CONTROLLER_UNIT, N_CONDUCTION, Stage
+from bucksim.model.stage import CONTROLLER_UNIT, N_CONDUCTION, UNITS, Stage
 
 __all__ = ["LAYOUT_VERSION", "RunHeader", "check_rows", "guarded_read", "read_run",
            "open_run_file", "read_rows"]
@@ -52,7 +52,9 @@ def _columns(state_names):
 
 
 def read_run(path):
-    """``(scenario, stage, table, EngineResult)`` of a run file written by :func:`save_run` or :func:`simulate_to_file`.
+    """``(scenario, stage, table, EngineResult)`` of a run file.
+
+    The file is one written by :func:`save_run` or :func:`simulate_to_file`.
 
     The scenario is rebuilt from its stored resolved values, the stage from
     the scenario, and the transition table is the stored one, so

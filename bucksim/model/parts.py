@@ -49,7 +49,8 @@ def _step_times(key, steps):
     for i, step in enumerate(steps):
         _non_negative(f"{key}[{i}].time", step.time, "s")
         if step.time <= last:
-            raise ScenarioError(f"{key}[{i}].time", "must be later than the previous step", step.time)
+            raise ScenarioError(f"{key}[{i}].time", "must be later than the previous step",
+                                step.time)
         last = step.time
 
 
@@ -94,7 +95,8 @@ class Switching:
         _positive("switching.frequency", self.frequency, "Hz")
         _choice("switching.strategy", self.strategy, STRATEGIES)
         if len(self.dead_time) != 2:
-            raise ScenarioError("switching.dead_time", "must be [falling, rising] in s", self.dead_time)
+            raise ScenarioError("switching.dead_time", "must be [falling, rising] in s",
+                                self.dead_time)
         for i, td in enumerate(self.dead_time):
             _non_negative(f"switching.dead_time[{i}]", td, "s")
 
@@ -365,7 +367,8 @@ class RunSettings:
             raise ScenarioError("run.cycles", "must be an integer >= 1", self.cycles)
         _choice("run.start", self.start, START_MODES)
         if not isinstance(self.summary_cycles, int) or self.summary_cycles < 1:
-            raise ScenarioError("run.summary_cycles", "must be an integer >= 1", self.summary_cycles)
+            raise ScenarioError("run.summary_cycles", "must be an integer >= 1",
+                                self.summary_cycles)
         _finite("run.initial_current", self.initial_current, "A")
         _finite("run.initial_voltage", self.initial_voltage, "V")
 

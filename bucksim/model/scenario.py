@@ -37,9 +37,14 @@ from pathlib import Path
 import tomli_w
 
 from bucksim.errors import ScenarioError
-from bucksim.model.keylines import key_lines, line_of, parse_key_path, toml_error, warn_steps_after_end
-from bucksim.model.parts import (Capacitor, Control, CoreLoss, Diode, Inductor, Load, LoadStep, Mosfet,
-                    RunSettings, Scenario, Supply, SupplyStep, Switching)
+from bucksim.model import parts
+from bucksim.model.keylines import (
+    key_lines,
+    line_of,
+    parse_key_path,
+    toml_error,
+    warn_steps_after_end,
+)
 from bucksim.model.units import example, parse_quantity
 
 SCHEMA = 1
@@ -195,7 +200,7 @@ def _build(doc, source=None, text=None):
         raise ScenarioError("schema", f"must be {SCHEMA} (the scenario schema this version "
                             "of bucksim reads)", schema)
     switching = _switching(top.table("switching", SWITCHING_KEYS, required=True))
-    return Scenario(
+    return parts.Scenario(
         title=top.string("title"),
         supply=_supply(top.table("supply", SUPPLY_KEYS, required=True)),
         switching=switching,
@@ -213,10 +218,10 @@ def _build(doc, source=None, text=None):
 
 
 def _supply(t):
-    steps = tuple(SupplyStep(time=s.quantity("time", "s"), voltage=s.quantity("voltage", "V"))
+    steps = tuple(parts.SupplyStep(time=s.quantity("time", "s"), voltage=s.quantity("voltage", "V"))
                   for s in t.tables("steps", SUPPLY_STEP_KEYS))
-    return Supply(voltage=t.quantity("voltage", "V"),
-                  resistance=t.quantity("resistance", "ohm", 0.0), steps=steps)
+    return parts.Supply(voltage=t.quantity("voltage", "V"),
+                        resistance=t.quantity("resistance", "ohm", 0.0), steps=steps)
 
 
 def _switching(t):
@@ -226,37 +231,37 @@ def _switching(t):
                             "e.g. [\"20 ns\", \"30 ns\"]", dead_time)
     dead_time = tuple(parse_quantity(v, "s", f"switching.dead_time[{i}]")
                       for i, v in enumerate(dead_time))
-    return Switching(frequency=t.quantity("frequency", "Hz"),
-                     strategy=t.string("strategy"), dead_time=dead_time)
+    return parts.Switching(frequency=t.quantity("frequency", "Hz"),
+                           strategy=t.string("strategy"), dead_time=dead_time)
 
 
 def _inductor(t):
     core = t.table("core", CORE_KEYS)
     if core is not None:
-        core = CoreLoss(k=core.quantity("k", "W/m^3"), alpha=core.quantity("alpha", ""),
-                        beta=core.quantity("beta", ""), volume=core.quantity("volume", "m^3"),
-                        turns=core.quantity("turns", ""), area=core.quantity("area", "m^2"))
-    return Inductor(inductance=t.quantity("inductance", "H"),
-                    dcr=t.quantity("dcr", "ohm", 0.0), core=core)
+        core = parts.CoreLoss(k=core.quantity("k", "W/m^3"), alpha=core.quantity("alpha", ""),
+                              beta=core.quantity("beta", ""), volume=core.quantity("volume", "m^3"),
+                              turns=core.quantity("turns", ""), area=core.quantity("area", "m^2"))
+    return parts.Inductor(inductance=t.quantity("inductance", "H"),
+                          dcr=t.quantity("dcr", "ohm", 0.0), core=core)
 
 
 def _capacitor(t):
-    return Capacitor(capacitance=t.quantity("capacitance", "F"),
-                     esr=t.quantity("esr", "ohm", 0.0))
+    return parts.Capacitor(capacitance=t.quantity("capacitance", "F"),
+                           esr=t.quantity("esr", "ohm", 0.0))
 
 
 def _diode(t):
-    return Diode(vf=t.quantity("vf", "V"), r=t.quantity("r", "ohm", 0.0),
-                 qrr=t.quantity("qrr", "C", 0.0), section=t.key)
+    return parts.Diode(vf=t.quantity("vf", "V"), r=t.quantity("r", "ohm", 0.0),
+                       qrr=t.quantity("qrr", "C", 0.0), section=t.key)
 
 
 def _mosfet(t):
     body = t.table("body_diode", DIODE_KEYS, required=True)
-    return Mosfet(rds_on=t.quantity("rds_on", "ohm"), body_diode=_diode(body),
-                  rise_time=t.quantity("rise_time", "s", 0.0),
-                  fall_time=t.quantity("fall_time", "s", 0.0),
-                  coss=t.quantity("coss", "F", 0.0), qg=t.quantity("qg", "C", 0.0),
-                  gate_voltage=t.quantity("gate_voltage", "V", 0.0), section=t.key)
+    return parts.Mosfet(rds_on=t.quantity("rds_on", "ohm"), body_diode=_diode(body),
+                        rise_time=t.quantity("rise_time", "s", 0.0),
+                        fall_time=t.quantity("fall_time", "s", 0.0),
+                        coss=t.quantity("coss", "F", 0.0), qg=t.quantity("qg", "C", 0.0),
+                        gate_voltage=t.quantity("gate_voltage", "V", 0.0), section=t.key)
 
 
 def _low_side(top):
@@ -279,42 +284,42 @@ def _low_side(top):
 
 
 def _load(t):
-    steps = tuple(LoadStep(time=s.quantity("time", "s"),
-                           resistance=s.quantity("resistance", "ohm", None),
-                           current=s.quantity("current", "A", None))
+    steps = tuple(parts.LoadStep(time=s.quantity("time", "s"),
+                                 resistance=s.quantity("resistance", "ohm", None),
+                                 current=s.quantity("current", "A", None))
                   for s in t.tables("steps", LOAD_STEP_KEYS))
-    return Load(resistance=t.quantity("resistance", "ohm", None),
-                current=t.quantity("current", "A", 0.0), steps=steps)
+    return parts.Load(resistance=t.quantity("resistance", "ohm", None),
+                      current=t.quantity("current", "A", 0.0), steps=steps)
 
 
 def _control(t):
     compensator = t.data.get("compensator")
     if compensator is not None and not isinstance(compensator, dict):
         raise ScenarioError("control.compensator", "must be a table", compensator)
-    return Control(mode=t.string("mode", "open-loop"), duty=t.quantity("duty", "", None),
-                   soft_start=t.quantity("soft_start", "s", 0.0),
-                   reference=t.quantity("reference", "V", None),
-                   compensator=copy.deepcopy(compensator),
-                   slope_compensation=t.quantity("slope_compensation", "V/s", 0.0),
-                   sense_gain=t.quantity("sense_gain", "", 1.0),
-                   ramp=t.quantity("ramp", "V", 1.0),
-                   current_sense=t.quantity("current_sense", "V/A", 0.0),
-                   current_limit=t.quantity("current_limit", "A", None),
-                   max_duty=t.quantity("max_duty", "", 0.95),
-                   min_on_time=t.quantity("min_on_time", "s", 0.0),
-                   pulse_skipping=t._get("pulse_skipping", False, "true or false"),
-                   delay=t.integer("delay", 0),
-                   duty_bits=t.integer("duty_bits", 0),
-                   implementation=t.string("implementation", "digital"))
+    return parts.Control(mode=t.string("mode", "open-loop"), duty=t.quantity("duty", "", None),
+                         soft_start=t.quantity("soft_start", "s", 0.0),
+                         reference=t.quantity("reference", "V", None),
+                         compensator=copy.deepcopy(compensator),
+                         slope_compensation=t.quantity("slope_compensation", "V/s", 0.0),
+                         sense_gain=t.quantity("sense_gain", "", 1.0),
+                         ramp=t.quantity("ramp", "V", 1.0),
+                         current_sense=t.quantity("current_sense", "V/A", 0.0),
+                         current_limit=t.quantity("current_limit", "A", None),
+                         max_duty=t.quantity("max_duty", "", 0.95),
+                         min_on_time=t.quantity("min_on_time", "s", 0.0),
+                         pulse_skipping=t._get("pulse_skipping", False, "true or false"),
+                         delay=t.integer("delay", 0),
+                         duty_bits=t.integer("duty_bits", 0),
+                         implementation=t.string("implementation", "digital"))
 
 
 def _run(t):
-    return RunSettings(duration=t.quantity("duration", "s", None),
-                       cycles=t.integer("cycles", None),
-                       start=t.string("start", "rest"),
-                       summary_cycles=t.integer("summary_cycles", 20),
-                       initial_current=t.quantity("initial_current", "A", 0.0),
-                       initial_voltage=t.quantity("initial_voltage", "V", 0.0))
+    return parts.RunSettings(duration=t.quantity("duration", "s", None),
+                             cycles=t.integer("cycles", None),
+                             start=t.string("start", "rest"),
+                             summary_cycles=t.integer("summary_cycles", 20),
+                             initial_current=t.quantity("initial_current", "A", 0.0),
+                             initial_voltage=t.quantity("initial_voltage", "V", 0.0))
 
 
 # ----------------------------------------------------------------------------- writing
@@ -350,7 +355,7 @@ def scenario_to_dict(scenario):
         c = s.inductor.core
         inductor["core"] = {"k": c.k, "alpha": c.alpha, "beta": c.beta, "volume": c.volume,
                             "turns": c.turns, "area": c.area}
-    if isinstance(s.low_side, Mosfet):
+    if isinstance(s.low_side, parts.Mosfet):
         low_side = {"device": "mosfet", **_mosfet_dict(s.low_side)}
     else:
         low_side = {"device": "diode", **_diode_dict(s.low_side)}
@@ -416,7 +421,7 @@ def require_scenario(obj, what: str):
     ``what`` names the function that was called, so the message says which
     call received what (a file name, None, ...) and how to get a Scenario.
     """
-    if isinstance(obj, Scenario):
+    if isinstance(obj, parts.Scenario):
         return obj
     hint = ""
     if isinstance(obj, (str, Path)):

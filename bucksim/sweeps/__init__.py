@@ -1,2 +1,6 @@
-"""Parameter and Monte Carlo sweeps (the package behind :func:`bucksim.sweep`): plan the points, execute them (in process, a pool or
-Dask) and collect the table."""
+"""Parameter and Monte Carlo sweeps (the package behind :func:`bucksim.sweep`).
+
+Plan the points (``plan``), execute them in process, in a pool of processes or
+on Dask (``execute``), collect the table (``table``); the CSV progress file and resume checks
+(``files``).
+"""

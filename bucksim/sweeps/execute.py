@@ -254,7 +254,7 @@ def run_point(scenario, index, draw, values):
                 f"grows and the circuit does not stay at this operating point")
         row.update(flatten(run.summary(cycles=n).to_dict()))
         error = ""
-    except Exception as exc:  # noqa: BLE001 - a bad point is data, the sweep goes on
+    except Exception as exc:  # a bad point is data, the sweep goes on
         error = _error_text(exc)
         if getattr(exc, "steady_state", None) is not None:  # refused after shooting
             steady = _steady_columns(exc.steady_state)
