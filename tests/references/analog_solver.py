@@ -98,8 +98,15 @@ import numpy as np
 from scipy.integrate import solve_ivp
 from scipy.linalg import expm
 
-from tests.references.compensator import (FREE, HELD_HIGH, HELD_LOW, compensator_polynomials,
-                                   compensator_ss, hold_rule, integrator_limits)
+from tests.references.compensator import (
+    FREE,
+    HELD_HIGH,
+    HELD_LOW,
+    compensator_polynomials,
+    compensator_ss,
+    hold_rule,
+    integrator_limits,
+)
 from tests.references.stage_solver import _GATE_LOW, _GATE_OFF, HIGH, IDLE, Circuit
 
 __all__ = ["AnalogLoop", "Loop", "LoopTrace", "circuit_of", "compensator_polynomials",
@@ -244,7 +251,7 @@ class AnalogLoop:
         """
         T, ts, events = self.T, self.loop.soft_start, list(events or ())
         cuts = [t0, t1] if not t0 < ts < t1 else [t0, ts, t1]
-        for a, b in zip(cuts[:-1], cuts[1:]):
+        for a, b in zip(cuts[:-1], cuts[1:], strict=True):
             z = np.array(z, float)
             self._set_hold(a, self._rule(a, z))
             while b > a:
@@ -258,7 +265,8 @@ class AnalogLoop:
                     fn.terminal, fn.direction = True, ev.direction
                     local.append(fn)
                 # steps <= T/16 while searching, so a root pair cannot hide inside one step
-                sol = solve_ivp(lambda s, y: T * (M @ y + q + r * self.vref(a + s * T)),
+                sol = solve_ivp(lambda s, y, M=M, q=q, r=r, a=a:
+                                T * (M @ y + q + r * self.vref(a + s * T)),
                                 (0.0, (b - a) / T), z, events=local or None,
                                 max_step=1 / 16 if local else np.inf, **self.opts)
                 hit = None

@@ -209,7 +209,7 @@ class Trace:
         idx = np.clip(np.searchsorted(self.seg_t0, times, side="right") - 1, 0, None)
         out = np.empty((times.size, 2))
         aug = _augmented(self.circuit)
-        for j, (t, i) in enumerate(zip(times, idx)):
+        for j, (t, i) in enumerate(zip(times, idx, strict=True)):
             out[j] = _step(aug[self.seg_code[i]], self.seg_x0[i], t - self.seg_t0[i])
         return out
 
@@ -319,7 +319,7 @@ class _ExpmPhase:
                 a, b = i * h, (i + 1) * h if i < n - 1 else length
                 M = self.aug[code]
 
-                def il(tau):
+                def il(tau, M=M):
                     return _step(M, x, tau)[0]
 
                 fb = il(b)

@@ -30,12 +30,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from tests.system.test_sweep import RAIL_TOML, rail
 
 import bucksim
 from bucksim.errors import ScenarioError
 from bucksim.sweeps.plan import SweepError, sweep
 from bucksim.sweeps.table import SweepTable
+from tests.system.test_sweep import RAIL_TOML, rail
 
 REPO = Path(__file__).resolve().parents[2]
 LINUX = sys.platform.startswith("linux")
@@ -103,8 +103,9 @@ def test_every_blas_runs_one_thread_wherever_a_point_runs(tmp_path):
     log = tmp_path / "blas.jsonl"
     # two threads by default, so one thread is something the sweep must set
     out = subprocess.run([sys.executable, str(script)], capture_output=True, text=True,
-                         check=False, timeout=300, env=_env(OPENBLAS_NUM_THREADS="2", BLAS_LOG=str(log),
-                                               PYTHONPATH=str(REPO)))
+                         check=False, timeout=300,
+                         env=_env(OPENBLAS_NUM_THREADS="2", BLAS_LOG=str(log),
+                                  PYTHONPATH=str(REPO)))
     assert out.returncode == 0, out.stderr[-3000:]
     records = [json.loads(line) for line in log.read_text().splitlines()]
     assert len(records) == 8

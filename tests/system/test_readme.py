@@ -133,7 +133,7 @@ def runnable_commands():
     """The commands the walk-through runs: everything but installing and the test suite,
     each once (in the order first shown)."""
     out = []
-    for section, command in bash_commands():
+    for _section, command in bash_commands():
         if "pip install" not in command:
             out.append(command)
             continue

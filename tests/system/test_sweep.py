@@ -115,14 +115,14 @@ def test_grid_order_and_rows_are_the_points(grid_serial):
     assert np.array_equal(t.column("point"), np.arange(200))
     # documented order: itertools.product, first key outermost
     want = list(itertools.product(*GRID.values()))
-    got = list(zip(t.column("load.resistance"), t.column("inductor.inductance")))
+    got = list(zip(t.column("load.resistance"), t.column("inductor.inductance"), strict=True))
     assert got == want
     # a row is that point's own result: recompute two points directly
     from bucksim.model.scenario import replace_key
     from bucksim.steady.solve import steady_state
     for i in (0, 137):
         sc = rail()
-        for key, v in zip(GRID, want[i]):
+        for key, v in zip(GRID, want[i], strict=True):
             sc = replace_key(sc, key, v)
         ss = steady_state(sc)
         run = bucksim.simulate(dataclasses.replace(sc, run=dataclasses.replace(

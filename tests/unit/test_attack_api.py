@@ -14,7 +14,6 @@ import dataclasses
 
 import numpy as np
 import pytest
-from tests.references.analog_solver import reference_loop
 
 import bucksim
 import bucksim.simulation
@@ -32,6 +31,7 @@ from bucksim.model.parts import (
     Switching,
 )
 from bucksim.model.scenario import replace_key
+from tests.references.analog_solver import reference_loop
 
 CORE = "scenarios/core_rail_1v0.toml"
 TELEMETRY = "scenarios/telemetry_rail_1v8_analog.toml"

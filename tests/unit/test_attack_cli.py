@@ -68,7 +68,8 @@ def assert_plain_refusal(code, err, *names):
 
 def unstable_loop(cycles=600):
     """A voltage-mode loop with an integrator gain ~1e6 above a sane crossover
-    (invented values, as in tests/validation/test_extreme_designs.py): it bangs between its duty clamps."""
+    (invented values, as in tests/validation/test_extreme_designs.py): it bangs between its
+    duty clamps."""
     hs = Mosfet(0.01, Diode(0.7, 0.01, section="high_side.body_diode"), section="high_side")
     ls = Mosfet(0.005, Diode(0.7, 0.01, section="low_side.body_diode"), section="low_side")
     return Scenario("unstable loop (invented)", Supply(12.0),
@@ -325,8 +326,7 @@ def test_main_maps_library_errors_to_user_errors(capsys, monkeypatch):
 # ----------------------------------------------------------------------------- closed loops
 
 def test_streamed_unstable_loop_has_the_in_memory_status(tmp_path):
-    from bucksim.simulation import STATUS_LOOP_UNSETTLED, simulate
-    from bucksim.simulation import simulate_to_file
+    from bucksim.simulation import STATUS_LOOP_UNSETTLED, simulate, simulate_to_file
     from bucksim.waveforms import open_run
 
     sc = unstable_loop()
@@ -354,8 +354,7 @@ def test_cli_says_the_loop_did_not_settle_in_run_stream_and_report(tmp_path, cap
 
 @pytest.mark.parametrize("mode", ["open-loop", "closed-loop"])
 def test_stream_starts_in_steady_state_like_simulate(tmp_path, mode):
-    from bucksim.simulation import simulate
-    from bucksim.simulation import simulate_to_file
+    from bucksim.simulation import simulate, simulate_to_file
     from bucksim.waveforms import open_run
 
     base = unstable_loop(cycles=40)
@@ -394,8 +393,8 @@ def test_file_summary_equals_the_in_memory_summary(tmp_path, monkeypatch, block)
     """Read in blocks, the summary (window metrics and every event's metrics) is
     the in-memory one to the bit."""
     from bucksim.analysis import stored
-    from bucksim.simulation import simulate
     from bucksim.io.hdf5 import save_run
+    from bucksim.simulation import simulate
 
     monkeypatch.setattr(stored, "BLOCK_ROWS", block)
     for k, sc in enumerate([_load_step_rail(), unstable_loop(400)]):
@@ -452,7 +451,8 @@ def test_duplicate_key_error_names_the_key(tmp_path, capsys):
 def test_load_step_after_the_end_warns_once(tmp_path, capsys):
     from bucksim import load_scenario
 
-    step = 'resistance = "660 mohm"         # 5 A at 3.3 V\nsteps = [{ time = "1 s", resistance = "1 ohm" }]'
+    step = ('resistance = "660 mohm"         # 5 A at 3.3 V\n'
+            'steps = [{ time = "1 s", resistance = "1 ohm" }]')
     toml = scenario_file(tmp_path, x=('resistance = "660 mohm"         # 5 A at 3.3 V', step))
     with pytest.warns(UserWarning, match=r"load\.steps\[0\]\.time"):
         load_scenario(toml)

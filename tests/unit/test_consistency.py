@@ -96,9 +96,9 @@ def test_summary_and_reverse_tool_agree_at_the_reversal_boundary():
     on the simulated minimum, starting from the closed form Io = dI / 2
     (Erickson & Maksimovic ch. 2 and 5; forced PWM reverses below it: common
     practice)."""
+    from bucksim.model.stage import REVERSE_CURRENT_THRESHOLD
     from bucksim.studies.levels import periodic_run
     from bucksim.studies.reverse import reverse_current
-    from bucksim.model.stage import REVERSE_CURRENT_THRESHOLD
 
     def extremes(io):
         _, run = periodic_run(_sink_rail(io))
@@ -253,9 +253,9 @@ def test_telemetry_scenario_states_its_phase_margins():
     import re
 
     import control as ct
-    from tests.validation.test_analog_loop import averaged_loop
 
     from bucksim.simulation import simulate_settled
+    from tests.validation.test_analog_loop import averaged_loop
 
     path = "scenarios/telemetry_rail_1v8_analog.toml"
     sc = bucksim.load_scenario(path)
@@ -265,7 +265,7 @@ def test_telemetry_scenario_states_its_phase_margins():
                       r"(\d+) degrees at 6 A", text)
     assert found, "the comment must state the margin at 1 A and at 6 A"
     stated = [float(found.group(1)), float(found.group(2))]
-    for resistance, want in zip((1.8, 0.3), stated):          # 1.8 V / 1 A, 1.8 V / 6 A
+    for resistance, want in zip((1.8, 0.3), stated, strict=True):  # 1.8 V / 1 A, 1.8 V / 6 A
         point = dataclasses.replace(sc, load=Load(resistance))
         duty = float(simulate_settled(point, cycles=1).duty[0])
         _, loop = averaged_loop(point, duty, sc.control.compensator)

@@ -83,7 +83,7 @@ def test_find_zero_catches_touch_and_return():
 
 @pytest.mark.parametrize("level, ramp", [(0.0, 0.0), (3.3, 0.0), (3.4, 2e5)])
 def test_taylor_finish_matches_brentq(level, ramp):
-    """Bisection finished by Newton on the 4th-order series (taylor_gap > 0) lands on
+    """Bisection finished by Newton on the 8th-order Taylor series (taylor_gap > 0) lands on
     the same zero as brentq on scipy's expm, to 1e-12 of the period; with a ramp,
     the event is a peak-current comparator iL + ramp t = level."""
     L, C = 4.7e-6, 47e-6

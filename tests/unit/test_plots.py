@@ -13,12 +13,10 @@ import matplotlib
 import matplotlib.image
 import numpy as np
 import pytest
-from tests.validation.test_compare import pol_rail
 
 import bucksim
 from bucksim.analysis.summary import item_label
 from bucksim.model.parts import STRATEGY_NAMES
-from bucksim.studies.compare import compare
 from bucksim.plotting import (
     STATE_LABELS,
     efficiency_figure,
@@ -27,8 +25,10 @@ from bucksim.plotting import (
     save_png,
     waveform_figure,
 )
-from bucksim.studies.reverse import reverse_current
 from bucksim.steady.solve import steady_state
+from bucksim.studies.compare import compare
+from bucksim.studies.reverse import reverse_current
+from tests.validation.test_compare import pol_rail
 
 CYCLES = 6
 
@@ -60,7 +60,7 @@ def test_waveform_figure_data_size_and_labels(run, tmp_path):
     assert img.shape[:2] == (600, 800)
     assert b"matplotlib" not in path.read_bytes().lower()  # no software stamp
     starts = run.segments.t0
-    for ax, name, unit in zip(fig.axes, signals, ("[A]", "[V]", "[V]")):
+    for ax, name, unit in zip(fig.axes, signals, ("[A]", "[V]", "[V]"), strict=True):
         line, = ax.lines
         t, y = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
         assert t[0] == pytest.approx(window[0], abs=1e-15) and t[-1] == pytest.approx(
@@ -120,7 +120,7 @@ def test_loss_breakdown_figure_data(comparison):
     for container in ax.containers:
         item = container.patches[0].get_gid()
         assert container.get_label() == item_label(item)
-        for k, (patch, (s, lv)) in enumerate(zip(container.patches, bars)):
+        for k, (patch, (s, lv)) in enumerate(zip(container.patches, bars, strict=True)):
             want = comparison.row(s, lv).losses.get(item, 0.0)
             assert patch.get_height() == pytest.approx(want, rel=1e-12, abs=1e-18)
             assert patch.get_y() == pytest.approx(total[k], rel=1e-12, abs=1e-15)

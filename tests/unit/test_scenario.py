@@ -18,8 +18,14 @@ import tomli_w
 from bucksim.errors import ScenarioError
 from bucksim.model.keylines import key_lines, line_of
 from bucksim.model.parts import Diode, Mosfet, Scenario
-from bucksim.model.scenario import (DEFAULT_SCENARIO_PATH, dump_scenario, load_scenario,
-                              loads_scenario, replace_key, scenario_to_dict)
+from bucksim.model.scenario import (
+    DEFAULT_SCENARIO_PATH,
+    dump_scenario,
+    load_scenario,
+    loads_scenario,
+    replace_key,
+    scenario_to_dict,
+)
 from bucksim.model.units import format_si, parse_quantity
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -337,7 +343,8 @@ def test_round_trip_of_a_scenario_using_every_key(tmp_path):
     # Plain numbers in SI base units, no strings left for quantities.
     assert d["inductor"]["inductance"] == 2.2e-6
     assert d["switching"]["dead_time"] == [20e-9, 30e-9]
-    assert d["load"]["steps"] == [{"time": 1.5e-3, "resistance": 2.0}, {"time": 2.5e-3, "current": 1.0}]
+    assert d["load"]["steps"] == [{"time": 1.5e-3, "resistance": 2.0},
+                                  {"time": 2.5e-3, "current": 1.0}]
     assert loads_scenario(tomli_w.dumps(d)) == s
     dump_scenario(s, tmp_path / "out.toml")
     assert load_scenario(tmp_path / "out.toml") == s
@@ -482,7 +489,8 @@ def test_wrong_type(tmp_path):
     assert str(err) == f"{path}:2: title: must be a string, got 42"
     text = edit("cycles = 3000", "cycles = 3000.5")
     path, err = load_error(tmp_path, text)
-    assert str(err) == f"{path}:{line_no(text, 'cycles')}: run.cycles: must be an integer, got 3000.5"
+    assert str(err) == (f"{path}:{line_no(text, 'cycles')}: run.cycles: "
+                        "must be an integer, got 3000.5")
     text = edit('dcr = "10 mohm"', "dcr = true")
     path, err = load_error(tmp_path, text)
     assert str(err).startswith(f"{path}:{line_no(text, 'dcr')}: inductor.dcr: must be a quantity")

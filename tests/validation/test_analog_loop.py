@@ -30,8 +30,19 @@ import pytest
 
 import bucksim
 from bucksim.model.compensator import compensator_tf
-from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
-                           RunSettings, Scenario, Supply, Switching)
+from bucksim.model.parts import (
+    Capacitor,
+    Control,
+    Diode,
+    Inductor,
+    Load,
+    LoadStep,
+    Mosfet,
+    RunSettings,
+    Scenario,
+    Supply,
+    Switching,
+)
 from bucksim.model.scenario import loads_scenario
 from bucksim.steady.closed_loop import closed_loop_steady_state
 from tests.references.analog_solver import compensator_polynomials, compensator_ss, reference_loop
@@ -114,7 +125,7 @@ HOLDS = {
 }
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def case(name):
     sc, n = CASES[name]()
     ref = reference_loop(sc)
@@ -254,7 +265,7 @@ def test_integrator_holds_where_the_reference_holds(name):
     edges = [t for t, _ in tr.holds] + [tr.t[-1]]
     assert [h for _, h in tr.holds] == [h for h, _ in HOLDS[name]]
     w1 = run.at(tr.t)[:, run.stage.state_names.index("w1")]
-    for (t0, hold), t1, (_, periods) in zip(tr.holds, edges[1:], HOLDS[name]):
+    for (t0, hold), t1, (_, periods) in zip(tr.holds, edges[1:], HOLDS[name], strict=True):
         assert t1 - t0 > periods * T, (hold, t0 / T, t1 / T)
         if hold != FREE:
             inside = (tr.t > t0) & (tr.t < t1)

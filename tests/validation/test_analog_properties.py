@@ -14,8 +14,19 @@ import pytest
 
 import bucksim
 from bucksim.errors import ScenarioError
-from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
-                           RunSettings, Scenario, Supply, Switching)
+from bucksim.model.parts import (
+    Capacitor,
+    Control,
+    Diode,
+    Inductor,
+    Load,
+    LoadStep,
+    Mosfet,
+    RunSettings,
+    Scenario,
+    Supply,
+    Switching,
+)
 
 
 def design(rng):

@@ -16,8 +16,8 @@ from scipy import signal
 from scipy.linalg import expm
 
 import bucksim
-from bucksim.model.compensator import analog_realization
 from bucksim.errors import ScenarioError
+from bucksim.model.compensator import analog_realization
 from bucksim.model.parts import Control
 from bucksim.model.stage import IDLE, LOW, N_CONDUCTION, Stage
 
@@ -179,8 +179,17 @@ def test_integrator_holds_at_its_limits_exactly():
     into a light load drives the integrator to its lower limit, where it holds
     exactly (its row of the held systems is zero, checked against scipy's expm of
     those systems) while the error stays negative; it never leaves [0, max_duty ramp]."""
-    from bucksim.model.parts import (Capacitor, Diode, Inductor, Load, Mosfet, RunSettings,
-                               Scenario, Supply, Switching)
+    from bucksim.model.parts import (
+        Capacitor,
+        Diode,
+        Inductor,
+        Load,
+        Mosfet,
+        RunSettings,
+        Scenario,
+        Supply,
+        Switching,
+    )
 
     hs = Mosfet(0.01, Diode(0.7, 0.01, section="high_side.body_diode"), section="high_side")
     ls = Mosfet(0.005, Diode(0.7, 0.01, section="low_side.body_diode"), section="low_side")

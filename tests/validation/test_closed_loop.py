@@ -17,8 +17,19 @@ from scipy import signal
 
 import bucksim
 from bucksim.model.compensator import design
-from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, LoadStep, Mosfet,
-                           RunSettings, Scenario, Supply, Switching)
+from bucksim.model.parts import (
+    Capacitor,
+    Control,
+    Diode,
+    Inductor,
+    Load,
+    LoadStep,
+    Mosfet,
+    RunSettings,
+    Scenario,
+    Supply,
+    Switching,
+)
 from bucksim.steady.closed_loop import closed_loop_steady_state
 
 FS = 500e3

@@ -28,12 +28,12 @@ import json
 import pytest
 import tomli_w
 
-from bucksim.model import parts as p
 from bucksim.cli.compare import parse_diode, parse_sweep
+from bucksim.errors import ScenarioError
+from bucksim.model import parts as p
+from bucksim.model.scenario import scenario_to_dict
 from bucksim.studies.compare import compare
 from bucksim.studies.profile import load_scenario_and_profile, make_profile, read_profile
-from bucksim.errors import ScenarioError
-from bucksim.model.scenario import scenario_to_dict
 
 
 def core_rail():
@@ -143,8 +143,8 @@ def test_profile_weighted_efficiency_by_hand(pol):
     lost = {}
     for s in pol.strategies:
         rows = [pol.row(s, lv) for lv in levels]
-        p_out = sum(w * r.output_power for w, r in zip(shares, rows))
-        p_in = sum(w * r.input_power for w, r in zip(shares, rows))
+        p_out = sum(w * r.output_power for w, r in zip(shares, rows, strict=True))
+        p_in = sum(w * r.input_power for w, r in zip(shares, rows, strict=True))
         assert pr.weighted_efficiency[s] == pytest.approx(p_out / p_in, rel=1e-12)
         lost[s] = 24 * (p_in - p_out)
         assert pr.energy_lost_per_day[s] == pytest.approx(lost[s], rel=1e-12)

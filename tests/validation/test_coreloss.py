@@ -240,7 +240,7 @@ def _reference_density(run, idx, tau_a, tau_b):
     scale = run.scenario.inductor.inductance / (core.turns * core.area)
     seg = run.segments
     integral, vals = 0.0, []
-    for k, a, b in zip(idx, tau_a, tau_b):
+    for k, a, b in zip(idx, tau_a, tau_b, strict=True):
         M = run.table.matrices[seg.system[k]]
         lam, V = np.linalg.eig(M)              # distinct eigenvalues in this stage
         c = np.linalg.solve(V, np.append(seg.x0[k], 1.0))

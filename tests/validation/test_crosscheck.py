@@ -11,10 +11,20 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim.analysis.crosscheck import crosscheck
 from bucksim.analysis.budget import estimate
-from bucksim.model.parts import (Capacitor, Control, Diode, Inductor, Load, Mosfet, RunSettings,
-                           Scenario, Supply, Switching)
+from bucksim.analysis.crosscheck import crosscheck
+from bucksim.model.parts import (
+    Capacitor,
+    Control,
+    Diode,
+    Inductor,
+    Load,
+    Mosfet,
+    RunSettings,
+    Scenario,
+    Supply,
+    Switching,
+)
 from bucksim.model.stage import HIGH, LOW_DIODE
 
 
@@ -59,7 +69,7 @@ def test_overlap_energy_uses_the_exact_edge_currents():
         sc.run, initial_current=ss.x[0], initial_voltage=ss.x[1]))
     run = bucksim.simulate(sc)
     seg = run.segments
-    on = np.nonzero((seg.conduction == HIGH))[0]
+    on = np.nonzero(seg.conduction == HIGH)[0]
     off = on + 1
     i_on, i_off = seg.x0[on, 0], seg.x0[off[off < len(seg)], 0]
     want = 0.5 * 12.0 * (np.sum(i_on) * 5e-9 + np.sum(i_off) * 4e-9) / (20 * sc.period)

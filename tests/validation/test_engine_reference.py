@@ -14,7 +14,8 @@ Tolerances, all over 1000 switching cycles from the given start:
   a period against the expm/brentq reference (solve_ivp's dense output locates
   events to ~1e-11 of a period only, so against it the times are checked at
   1e-9 of a period);
-* energy balance error (summary key): below 1e-9, the DESIGN.md criterion.
+* energy balance error (summary key): below 1e-9, the criterion of
+  docs/summary-reference.md (``energy_balance_error``).
 """
 
 from __future__ import annotations
@@ -26,8 +27,17 @@ import numpy as np
 import pytest
 
 import bucksim
-from tests.references.stage_solver import (HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, Circuit, buck_scenario,
-                           simulate_expm, simulate_ivp)
+from tests.references.stage_solver import (
+    HIGH,
+    HIGH_DIODE,
+    IDLE,
+    LOW,
+    LOW_DIODE,
+    Circuit,
+    buck_scenario,
+    simulate_expm,
+    simulate_ivp,
+)
 
 CYCLES = 1000
 STATE_RTOL = 1e-8
@@ -178,7 +188,7 @@ def test_dense_output_inside_segments(name):
 
 @names
 def test_energy_balance(name):
-    """Input energy = load + losses + stored-energy change (DESIGN.md, 1e-9)."""
+    """Input energy = load + losses + stored-energy change (docs/summary-reference.md, 1e-9)."""
     _, _, run, _ = _case(name)
     err = run.summary().to_dict()["energy_balance_error"]
     assert abs(err) < ENERGY_TOL

@@ -29,7 +29,6 @@ import math
 
 import numpy as np
 import pytest
-from tests.references.stage_solver import buck_scenario
 
 import bucksim
 from bucksim.errors import SimulationError
@@ -45,6 +44,7 @@ from bucksim.model.parts import (
     Supply,
     Switching,
 )
+from tests.references.stage_solver import buck_scenario
 
 ENERGY_TOL = 1e-9          # README criterion: a larger residual is a bug
 WINDOW = 20

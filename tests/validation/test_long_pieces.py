@@ -16,8 +16,7 @@ import numpy as np
 import pytest
 
 import bucksim
-from bucksim.analysis import coreloss
-from bucksim.analysis import extrema
+from bucksim.analysis import coreloss, extrema
 from bucksim.analysis.extrema import piece_extrema
 from bucksim.analysis.windows import window_pieces
 from bucksim.model.scenario import DEFAULT_SCENARIO_PATH, replace_key

@@ -19,11 +19,11 @@ import math
 
 import numpy as np
 import pytest
-from tests.references.stage_solver import Circuit, buck_scenario
 from scipy.linalg import expm
 from scipy.optimize import brentq
 
 import bucksim
+from tests.references.stage_solver import Circuit, buck_scenario
 
 # f0 = 1/(2 pi sqrt(L C)) for each case (a series RLC, Erickson and Maksimovic,
 # Fundamentals of Power Electronics, 3rd ed., ch. 8):
@@ -78,7 +78,7 @@ def _reference_extrema(run, circuit, start, stop):
             val, der = zs @ c, zs @ d
             lo, hi = val.min(), val.max()
             for i in np.nonzero(der[:-1] * der[1:] < 0)[0]:
-                t = brentq(lambda t: d @ expm(M * t) @ z0, grid[i], grid[i + 1],
+                t = brentq(lambda t, d=d, M=M, z0=z0: d @ expm(M * t) @ z0, grid[i], grid[i + 1],
                            xtol=1e-14 * (b - a), rtol=4 * np.finfo(float).eps)
                 v = c @ expm(M * t) @ z0
                 lo, hi = min(lo, v), max(hi, v)

@@ -4,17 +4,17 @@ Loader: mutants of the bundled scenario files (keys dropped, unknown keys
 added, values replaced by random numbers, negative/zero/huge/NaN/inf values,
 strings with the wrong unit, garbage text) must either load or raise
 :class:`~bucksim.errors.ScenarioError` whose message names the file and a
-dotted key (DESIGN.md, "Scenario file": a wrong unit, an unknown key, a
-missing key or a non-physical value is an error naming the file and the
-key) -- never another exception.
+dotted key (docs/scenario-reference.md, "Error messages": a wrong unit, an
+unknown key, a missing key or a non-physical value is an error naming the
+file and the key) -- never another exception.
 
 Simulation: legal designs drawn from the ranges a designer may give
 (10 kHz-10 MHz, 10 nH-10 mH, 1 uF-10 mF, 0-0.1 ohm parasitics, 1 mohm-0.1 ohm
 channels, 0-1 V diode drops, duty 0.01-0.99, 1 mA-500 A of load, dead times
 0-5 % of the period, all three strategies) either run with an energy balance
-below 1e-9 (DESIGN.md criterion) and no NaN in the summary, or are refused
-with a ScenarioError naming the key (the dead times must fit in the
-off-time). The checks on the numbers are laws, not values: conservation of
+below 1e-9 (docs/summary-reference.md, energy_balance_error) and no NaN in
+the summary, or are refused with a ScenarioError naming the key (the dead
+times must fit in the off-time). The checks on the numbers are laws, not values: conservation of
 energy, RMS >= |mean| (Cauchy-Schwarz), extrema bracket the mean and every
 sample of the waveform, resistors and diodes only dissipate (passive sign
 convention).
@@ -48,7 +48,6 @@ import pytest
 import tomli_w
 from hypothesis import HealthCheck, example, given, note, settings
 from hypothesis import strategies as st
-from tests.references.stage_solver import buck_scenario
 
 import bucksim
 from bucksim.errors import ScenarioError
@@ -58,8 +57,9 @@ from bucksim.model.scenario import (
     replace_key,
     scenario_to_dict,
 )
+from tests.references.stage_solver import buck_scenario
 
-ENERGY_TOL = 1e-9   # DESIGN.md: a residual above 1e-9 (relative) is a bug
+ENERGY_TOL = 1e-9   # docs/summary-reference.md: a residual above 1e-9 (relative) is a bug
 SOURCE = "mutant.toml"
 
 _SCENARIO_DIR = Path(__file__).resolve().parents[2] / "scenarios"
@@ -243,7 +243,7 @@ def test_mutated_scenario_loads_or_names_the_key(mutant):
     key = dotted(path)
     compensator = _under(path, _COMPENSATOR)
     if op == "add":
-        # DESIGN.md: an unknown key is an error naming it
+        # docs/scenario-reference.md, "Error messages": an unknown key is an error naming it
         assert isinstance(out, ScenarioError) and out.key == key, out
     if op == "wrong_unit":
         # units.py: "2.2 uF" given for an inductance is an error, not a wrong number
@@ -329,8 +329,9 @@ def test_replace_key_refuses_malformed_keys(key):
 @pytest.mark.parametrize("entry, value", [("bogus", 1.0), ("gain", -5.0), ("gain", math.nan),
                                           ("gain", "3 k"), ("poles", "x")])
 def test_compensator_is_checked_when_loading(entry, value):
-    # DESIGN.md: unknown keys and non-physical values are errors naming the
-    # file and the key, when the file is read (not later, when the run starts)
+    # docs/scenario-reference.md, "Error messages": unknown keys and non-physical
+    # values are errors naming the file and the key, when the file is read (not
+    # later, when the run starts)
     doc = copy.deepcopy(BASES[CLOSED_LOOP_BASE])
     doc["control"]["compensator"][entry] = value
     _, out = load_or_error(doc)
@@ -452,7 +453,8 @@ def check_laws(run, s):
         assert d["rms"] ** 2 >= d["mean"] ** 2 * (1 - 1e-9) - 1e-12 * i_nat ** 2, name
         # passive sign convention: resistances and forward drops only dissipate
         assert d["conduction_loss"] >= -ENERGY_TOL * power_scale, (name, d)
-    # DESIGN.md: the low side is the diode itself in the asynchronous stage
+    # docs/summary-reference.md (loss items): the low side is the freewheel diode
+    # itself in the asynchronous stage
     sync = run.scenario.switching.strategy != "asynchronous"
     assert ("low_side_body_diode" in dev) == sync
     assert {"high_side", "high_side_body_diode", "low_side", "inductor",

@@ -23,8 +23,8 @@ import math
 import pytest
 from scipy.optimize import brentq
 
-from bucksim.model import parts as p
 from bucksim.errors import ScenarioError
+from bucksim.model import parts as p
 from bucksim.studies.reverse import LoadLevel, find_boundary, parse_levels, reverse_current
 
 VIN, D, FS, L, C = 12.0, 0.3, 500e3, 4.7e-6, 47e-6
