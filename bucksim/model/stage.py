@@ -95,6 +95,61 @@ def current_reverses(il_min: float, il_max: float) -> bool:
     return bool(il_min < -REVERSE_CURRENT_THRESHOLD * scale)
 
 
+def zero_current_states(strategy: str) -> frozenset[int]:
+    """Conduction states that end when the inductor current reaches zero.
+
+    Parameters
+    ----------
+    strategy : str
+        ``switching.strategy``, one of :data:`bucksim.model.parts.STRATEGIES`.
+
+    Returns
+    -------
+    frozenset of int
+        ``{LOW_DIODE, HIGH_DIODE}``, and ``LOW`` too in diode emulation.
+
+    Notes
+    -----
+    A diode conducts one way only: the low-side diode (body diode, or the
+    freewheel diode of an asynchronous stage) while ``iL > 0``, the high-side
+    body diode while ``iL < 0``; either stops at ``iL = 0`` and the stage
+    idles. In diode emulation the low-side channel is turned off at zero
+    current as well; in forced PWM it conducts both ways (common practice).
+    The cycle loop (:mod:`bucksim.engine.cycles`) writes the same rule out
+    inline, where a set cannot be used.
+    """
+    if strategy not in STRATEGY_CODES:
+        raise ValueError(f"switching.strategy: expected one of {', '.join(STRATEGIES)}, "
+                         f"got {strategy!r}")
+    if strategy == "diode-emulation":
+        return frozenset((LOW, LOW_DIODE, HIGH_DIODE))
+    return frozenset((LOW_DIODE, HIGH_DIODE))
+
+
+def clamp_current(il, conduction, strategy: str) -> np.ndarray:
+    """``iL`` [A] with the sign its conduction state guarantees.
+
+    A state of :func:`zero_current_states` ends at ``iL = 0`` exactly, but
+    its end time is rounded to the spacing of absolute time, which can put
+    the evaluated end a few 1e-12 A past zero. The state fixes the sign:
+    ``iL >= 0`` in ``LOW_DIODE`` (and ``LOW`` in diode emulation), ``iL <= 0``
+    in ``HIGH_DIODE``; other states are left as they are.
+
+    Parameters
+    ----------
+    il : array_like
+        Inductor current [A].
+    conduction : array_like of int
+        Conduction state of each value (broadcast against ``il``).
+    strategy : str
+        ``switching.strategy``.
+    """
+    conduction = np.asarray(conduction)
+    from_above = sorted(zero_current_states(strategy) - {HIGH_DIODE})
+    il = np.where(np.isin(conduction, from_above), np.maximum(il, 0.0), il)
+    return np.where(conduction == HIGH_DIODE, np.minimum(il, 0.0), il)
+
+
 @dataclass(frozen=True)
 class Level:
     """Supply and load values that hold from ``time`` [s] to the next level."""
