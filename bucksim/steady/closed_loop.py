@@ -28,8 +28,8 @@ from bucksim.model.compensator import design
 from bucksim.engine.controlled import ControllerState, integrate_closed_loop
 from bucksim.engine.tables import build_table
 from bucksim.model.stage import Stage
-from bucksim.steady.result import (STEADY_FAILED, STEADY_FALLBACK, STEADY_OK, SteadyState, check_settings,
-                     periodic_scenario)
+from bucksim.steady.newton import shoot
+from bucksim.steady.result import SteadyState, check_settings, periodic_scenario
 
 
 class LoopMap:
@@ -201,65 +201,34 @@ def _averaged_guess(lm):
 
 
 def _solve(lm, y0, tol, max_iter, max_brute_cycles=0):
-    y = np.asarray(y0, dtype=float).copy()
-    n = y.shape[0]
-    method = "newton"
-    y1, res = lm(y)
-    scale = _scale(res, y, y1)
-    resid = float(np.max(np.abs(y1 - y) / scale))
-    it = 0
-    J = np.eye(n)
-    while resid > tol and it < max_iter:
-        J = lm.jacobian(y, scale)
-        try:
-            step = np.linalg.solve(J - np.eye(n), -(y1 - y))
-        except np.linalg.LinAlgError:
-            break
-        lam, accepted = 1.0, False
-        for _ in range(20):
-            yt = y + lam * step
-            yt1, rest = lm(yt)
-            rt = float(np.max(np.abs(yt1 - yt) / scale))
-            if np.isfinite(rt) and (rt < resid or rt <= tol):
-                accepted = True
-                break
-            lam *= 0.5
-            method = "damped-newton"
-        if not accepted:
-            break
-        y, y1, res, resid = yt, yt1, rest, rt
-        it += 1
-    status = STEADY_OK if method == "newton" else STEADY_FALLBACK
-    msg = f"converged by {method} in {it} updates (residual {resid:.2e}, tol {tol:g})"
-    newton_failed = (f"Newton did not converge in {it} of max_iter = {max_iter} updates "
-                     f"(residual {resid:.2e} > tol {tol:g})")
-    if resid > tol and max_brute_cycles == 0:
-        status, msg = STEADY_FAILED, newton_failed
-    if resid > tol and max_brute_cycles > 0:
-        y, resid, done = _brute_force(lm, y, tol, scale, max_brute_cycles)
-        method = "brute-force"
-        status = STEADY_FALLBACK if done else STEADY_FAILED
-        msg = (f"{newton_failed}; brute-force settling "
-               + (f"converged (residual {resid:.2e})" if done else
-                  f"did not converge in {max_brute_cycles} periods (residual {resid:.2e}): "
-                  f"the loop may be unstable or limit-cycling (check control.compensator)"))
+    """Shoot from ``y0`` (:func:`bucksim.steady.newton.shoot`), then linearise at the answer.
+
+    The scale is the starting point's throughout: it sizes the differenced
+    Jacobian's steps as well as the residual.
+    """
+    shot = shoot(lm, y0, jacobian=lambda y, y1, res, scale: lm.jacobian(y, scale),
+                 scale=_scale, tol=tol, max_iter=max_iter, max_halvings=20,
+                 max_brute_cycles=max_brute_cycles, frozen_scale=True,
+                 hint=": the loop may be unstable or limit-cycling (check control.compensator)")
+    y, n, msg = shot.x, shot.x.shape[0], shot.message
     if np.all(np.isfinite(y)):
-        J = lm.jacobian(y, scale)
+        J = lm.jacobian(y, shot.scale)
         mu = np.linalg.eigvals(J) if np.all(np.isfinite(J)) else np.full(n, np.nan)
     else:
         J, mu = np.full((n, n), np.nan), np.full(n, np.nan)
-    if status != STEADY_FAILED and not np.all(np.abs(mu) < 1.0):
+    if shot.success and not np.all(np.abs(mu) < 1.0):
         msg += (f"; unstable: largest |Floquet multiplier| {np.max(np.abs(mu)):.3g} >= 1, "
                 f"the loop cannot hold this periodic state")
     x, ctl = lm.split(y)   # x: the stage's full state (analog: with the reference)
-    out = SteadyState(x=x, iterations=it, residual=resid, floquet=mu,
-                      monodromy=J, method=method, cycles=lm.evaluations, status=status,
-                      message=msg)
+    out = SteadyState(x=x, iterations=shot.iterations, residual=shot.residual, floquet=mu,
+                      monodromy=J, method=shot.method, cycles=lm.evaluations,
+                      status=shot.status, message=msg)
     out.controller = ctl
     return out
 
 
-def _scale(res, y, y1):
+def _scale(y, y1, res):
+    """Residual scale: plant states' largest magnitude over the period, all states' ends."""
     mags = np.abs(res.x0[:, :2]).max(axis=0) if res.x0.shape[0] else np.zeros(2)
     s = np.maximum(np.abs(y), np.abs(y1))
     s[:2] = np.maximum(s[:2], mags)
@@ -273,16 +242,3 @@ def _settle_guess(lm, cycles=400):
                                           n_cycles=cycles, t_end=cycles * sc.period)
     lm.evaluations += cycles
     return np.concatenate([res.x_end[:lm.n_plant], st.vector()])
-
-
-def _brute_force(lm, y, tol, scale, max_cycles):
-    resid = np.inf
-    for _ in range(max_cycles):
-        y1, _ = lm(y)
-        resid = float(np.max(np.abs(y1 - y) / scale))
-        y = y1
-        if not np.all(np.isfinite(y)):
-            return y, np.inf, False
-        if resid <= tol:
-            return y, resid, True
-    return y, resid, False

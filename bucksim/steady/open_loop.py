@@ -31,9 +31,9 @@ import numpy as np
 from scipy.linalg import expm
 
 from bucksim.engine.driver import build_table, integrate, phase_durations
-from bucksim.model.stage import HIGH_DIODE, IDLE, LOW, LOW_DIODE, Stage
-from bucksim.steady.result import (STEADY_FAILED, STEADY_FALLBACK, STEADY_OK, SteadyState,
-                                   check_settings, periodic_scenario)
+from bucksim.model.stage import IDLE, Stage, zero_current_states
+from bucksim.steady.newton import shoot
+from bucksim.steady.result import SteadyState, check_settings, periodic_scenario
 
 class PeriodMap:
     """The exact one-period map of a scenario and its monodromy matrix."""
@@ -48,16 +48,19 @@ class PeriodMap:
         bounds = np.cumsum([0.0] + phase_durations(self.scenario,
                                                    self.scenario.control.duty * T))
         self._edges = bounds
-        self._evented = {LOW_DIODE, HIGH_DIODE}
-        if self.scenario.switching.strategy == "diode-emulation":
-            self._evented.add(LOW)
+        self._evented = zero_current_states(self.scenario.switching.strategy)
 
-    def __call__(self, x):
-        """Return ``(P(x), J, segments)`` for one period from state ``x``."""
+    def step(self, x):
+        """Return ``(P(x), result)``: one period from state ``x`` and the engine's result."""
         res = integrate(self.stage, x, table=self.table, n_cycles=1,
                         t_end=self.scenario.period, phase_cache=self._phases)
         self.evaluations += 1
-        return res.x_end.copy(), self.monodromy(res), res
+        return res.x_end.copy(), res
+
+    def __call__(self, x):
+        """Return ``(P(x), J, result)`` for one period from state ``x``."""
+        x1, res = self.step(x)
+        return x1, self.monodromy(res), res
 
     def monodromy(self, res) -> np.ndarray:
         n = self.stage.n
@@ -81,7 +84,8 @@ class PeriodMap:
         return J
 
 
-def _scale(res, x, x1):
+def _scale(x, x1, res):
+    """Residual scale: each state's largest magnitude over the period and at its ends."""
     mags = np.abs(res.x0).max(axis=0) if res.x0.shape[0] else np.zeros_like(x)
     return np.maximum(np.maximum(mags, np.abs(x)), np.maximum(np.abs(x1), 1e-12))
 
@@ -111,80 +115,35 @@ def initial_guess(scenario) -> np.ndarray:
 
 def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1e-12,
                            max_iter: int = 20, max_brute_cycles: int = 200_000) -> SteadyState:
-    """Periodic steady state of an open-loop scenario (see :func:`bucksim.steady.solve.steady_state`)."""
-    opts = {"tol": tol, "max_iter": max_iter, "max_brute_cycles": max_brute_cycles}
+    """Periodic steady state of an open-loop scenario (see :func:`bucksim.steady.solve.steady_state`).
+
+    Shooting (:func:`bucksim.steady.newton.shoot`) on the exact one-period
+    map with its exact monodromy matrix; the residual's scale is taken anew
+    at every point.
+    """
     if controller is not None:
         raise ValueError(f"{scenario.source or scenario.title}: controller: an open-loop "
                          f"scenario has no controller state, got {controller!r}")
-    check_settings(**opts)
-    tol, max_iter, max_brute_cycles = opts["tol"], opts["max_iter"], opts["max_brute_cycles"]
+    check_settings(tol, max_iter, max_brute_cycles)
     pmap = PeriodMap(scenario)
-    if x0 is None:
-        x = initial_guess(scenario)
-    else:
-        x = np.asarray(x0, dtype=float).ravel().copy()
-        if x.shape[0] != 2 or not np.all(np.isfinite(x)):
-            raise ValueError(f"x0 must be two finite values [iL [A], vC [V]], got {x.tolist()}")
+    x = initial_guess(scenario) if x0 is None else _start_state(x0)
+    shot = shoot(pmap.step, x, jacobian=lambda x, x1, res, s: pmap.monodromy(res),
+                 scale=_scale, tol=tol, max_iter=max_iter, max_halvings=30,
+                 max_brute_cycles=max_brute_cycles)
     n = x.shape[0]
-    eye = np.eye(n)
-    method = "newton"
-    x1, J, res = pmap(x)
-    r = x1 - x
-    resid = float(np.max(np.abs(r) / _scale(res, x, x1)))
-    it = 0
-    while resid > tol and it < max_iter:
-        try:
-            step = np.linalg.solve(J - eye, -r)
-        except np.linalg.LinAlgError:
-            break
-        lam = 1.0
-        for _ in range(30):
-            xt = x + lam * step
-            xt1, Jt, rest = pmap(xt)
-            rt = xt1 - xt
-            rt_norm = float(np.max(np.abs(rt) / _scale(rest, xt, xt1)))
-            if np.all(np.isfinite(rt)) and (rt_norm < resid or rt_norm <= tol):
-                break
-            lam *= 0.5
-            method = "damped-newton"
-        else:
-            break
-        x, x1, J, res, r, resid = xt, xt1, Jt, rest, rt, rt_norm
-        it += 1
-    newton_failed = (f"Newton did not converge in {it} of max_iter = {max_iter} updates "
-                     f"(residual {resid:.2e} > tol {tol:g})")
-    if resid <= tol:
-        status = STEADY_OK if method == "newton" else STEADY_FALLBACK
-        msg = f"converged by {method} in {it} updates (residual {resid:.2e}, tol {tol:g})"
-    elif max_brute_cycles == 0:
-        status, msg = STEADY_FAILED, newton_failed
+    if shot.method == "brute-force" and not shot.success:
+        J = np.eye(n)       # settling failed: no period to linearise about
     else:
-        x, x1, J, resid, done = _brute_force(pmap, x, tol, max_brute_cycles)
-        method = "brute-force"
-        status = STEADY_FALLBACK if done else STEADY_FAILED
-        msg = (f"{newton_failed}; brute-force settling "
-               + (f"converged (residual {resid:.2e})" if done else
-                  f"did not converge in {max_brute_cycles} periods (residual {resid:.2e})"))
+        J = pmap.monodromy(shot.aux)
     mu = np.linalg.eigvals(J) if np.all(np.isfinite(J)) else np.full(n, np.nan)
-    return SteadyState(x=x, iterations=it, residual=resid, floquet=mu, monodromy=J,
-                       method=method, cycles=pmap.evaluations, status=status, message=msg)
+    return SteadyState(x=shot.x, iterations=shot.iterations, residual=shot.residual,
+                       floquet=mu, monodromy=J, method=shot.method, cycles=pmap.evaluations,
+                       status=shot.status, message=shot.message)
 
 
-def _brute_force(pmap, x, tol, max_cycles):
-    """Iterate the map until the change per cycle is below ``tol`` (relative)."""
-    J = np.eye(x.shape[0])
-    resid = np.inf
-    x1 = x
-    for _ in range(max_cycles):
-        res = integrate(pmap.stage, x, table=pmap.table, n_cycles=1,
-                        t_end=pmap.scenario.period, phase_cache=pmap._phases)
-        pmap.evaluations += 1
-        x1 = res.x_end.copy()
-        resid = float(np.max(np.abs(x1 - x) / _scale(res, x, x1)))
-        if not np.all(np.isfinite(x1)):
-            break
-        if resid <= tol:
-            J = pmap.monodromy(res)
-            return x1, x1, J, resid, True
-        x = x1
-    return x1, x1, J, resid, False
+def _start_state(x0) -> np.ndarray:
+    """A caller's starting state ``[iL, vC]``, refused unless two finite values."""
+    x = np.asarray(x0, dtype=float).ravel().copy()
+    if x.shape[0] != 2 or not np.all(np.isfinite(x)):
+        raise ValueError(f"x0 must be two finite values [iL [A], vC [V]], got {x.tolist()}")
+    return x
