@@ -33,8 +33,9 @@ class ArgumentParser(argparse.ArgumentParser):
     tool's internal-error code). Sub-parsers are made of this class too.
     """
 
-    def __init__(self, *args, allow_abbrev=False, **kwargs):
-        super().__init__(*args, allow_abbrev=allow_abbrev, **kwargs)
+    def __init__(self, *args, **kwargs):
+        kwargs.setdefault("allow_abbrev", False)
+        super().__init__(*args, **kwargs)
 
     def error(self, message):
         self.print_usage(sys.stderr)
@@ -97,11 +98,11 @@ class progress_bar:
         if self.quiet or self.total < 100_000:
             return None
         from tqdm import tqdm
-        self.bar = tqdm(total=self.total, unit="cycle", unit_scale=True, disable=None,
-                        file=sys.stderr, leave=False)
+        self.bar = bar = tqdm(total=self.total, unit="cycle", unit_scale=True, disable=None,
+                              file=sys.stderr, leave=False)
 
         def update(done, total):
-            self.bar.update(done - self.bar.n)
+            bar.update(done - bar.n)
         return update
 
     def __exit__(self, *exc):

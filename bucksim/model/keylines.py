@@ -75,16 +75,14 @@ def toml_error(exc, text, source):
 
 def key_on_line(text, line):
     """Dotted key of the last key (or table header) on 1-based ``line``, or None."""
-    scanner = _Scanner(text)
-    found = []
-    scanner.record = lambda path, at: found.append(path) if at == line else None
+    scanner = _LineScanner(text, line)
     try:
         scanner.run()
     except (IndexError, AttributeError, ValueError, tomllib.TOMLDecodeError):
         pass
-    if not found:
+    if not scanner.found:
         return None
-    path = found[-1]
+    path = scanner.found[-1]
     out = ""
     for part in path:
         out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else part)
@@ -131,6 +129,14 @@ def line_of(lines, key):
         if path[:n] in lines:
             return lines[path[:n]]
     return None
+
+
+def _match(pattern, s, i):
+    """``pattern.match(s, i)``, or ValueError where the text is not TOML."""
+    m = pattern.match(s, i)
+    if m is None:
+        raise ValueError(f"unexpected text at offset {i}")
+    return m
 
 
 class _Scanner:
@@ -223,7 +229,7 @@ class _Scanner:
                 self.string()
                 keys.append(tomllib.loads("k = " + s[start:self.i])["k"])
             else:
-                m = _BARE_KEY.match(s, self.i)
+                m = _match(_BARE_KEY, s, self.i)
                 keys.append(m.group())
                 self.i = m.end()
             self.skip_spaces()
@@ -269,7 +275,7 @@ class _Scanner:
                 if s[self.i] == ",":
                     self.i += 1
         else:
-            self.i = _SCALAR.match(s, self.i).end()
+            self.i = _match(_SCALAR, s, self.i).end()
 
     def string(self):
         """Skip a basic, literal or multi-line string starting at ``self.i``."""
@@ -295,3 +301,15 @@ class _Scanner:
         while s[j] != quote:
             j += 2 if (quote == '"' and s[j] == "\\") else 1
         self.i = j + 1
+
+
+class _LineScanner(_Scanner):
+    """A scanner that keeps the keys found on one 1-based line, in order."""
+
+    def __init__(self, text, line):
+        super().__init__(text)
+        self.wanted, self.found = line, []
+
+    def record(self, path, line):
+        if line == self.wanted:
+            self.found.append(path)

@@ -425,6 +425,7 @@ class Scenario:
         """Number of switching periods the run covers (rounded up)."""
         if self.run.cycles is not None:
             return self.run.cycles
+        assert self.run.duration is not None  # RunSettings holds exactly one of the two
         return max(1, math.ceil(self.run.duration * self.switching.frequency - 1e-9))
 
     @property

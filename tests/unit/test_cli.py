@@ -7,6 +7,7 @@ import sys
 import pytest
 
 from bucksim.cli.main import main
+from bucksim.model.scenario import DEFAULT_SCENARIO_PATH
 
 SCENARIOS = "scenarios"
 
@@ -49,7 +50,7 @@ def test_crosscheck_json(capsys):
 
 def test_bad_scenario_is_a_user_error(tmp_path, capsys):
     bad = tmp_path / "bad.toml"
-    bad.write_text((open("bucksim/data/default.toml").read())
+    bad.write_text(DEFAULT_SCENARIO_PATH.read_text(encoding="utf-8")
                    .replace('inductance = "3.3 uH"', 'inductance = "3.3 uF"'))
     assert main(["run", str(bad)]) == 1
     err = capsys.readouterr().err

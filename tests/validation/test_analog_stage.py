@@ -9,6 +9,7 @@ event-driven solver are in ``test_analog_loop.py``.
 """
 
 import dataclasses
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -28,7 +29,7 @@ SPECS = [
     {"gain": 4.0, "integrator": False, "zeros": [1e3], "poles": [1e4, 5e4]},   # lead-lag, no 1/s
     {"gain": 1000.0},                                                          # integrator
 ]
-DEMO = "scenarios/telemetry_rail_1v8_analog.toml"
+DEMO = str(Path(__file__).resolve().parents[2] / "scenarios" / "telemetry_rail_1v8_analog.toml")
 
 
 @pytest.mark.filterwarnings("ignore::scipy.signal.BadCoefficients")  # tiny leading terms
@@ -129,7 +130,7 @@ def test_duty_is_where_the_ramp_meets_the_compensator_output():
 
 def test_implementation_key_is_checked(tmp_path):
     path = tmp_path / "rail.toml"
-    text = open(DEMO).read()
+    text = Path(DEMO).read_text(encoding="utf-8")
     path.write_text(text.replace('implementation = "analog"', 'implementation = "analogue"'))
     with pytest.raises(ScenarioError, match=r"rail\.toml:\d+: control\.implementation: must be "
                                             r"one of 'digital', 'analog', got 'analogue'"):
