@@ -28,7 +28,7 @@ from scipy.integrate import quad
 from scipy.optimize import brentq
 from scipy.special import gammaln
 
-from bucksim.engine.kernels import evaluate
+from bucksim.analysis.segments import segment_states
 
 #: Gauss-Legendre nodes per sub-interval (the adaptive check uses twice as many).
 GL_NODES = 16
@@ -79,7 +79,8 @@ def cos_power_integral(alpha: float, method: str = "gamma") -> float:
     if not alpha > 0:
         raise ValueError(f"alpha must be > 0, got {alpha!r}")
     if method == "gamma":
-        return 2.0 * math.sqrt(math.pi) * math.exp(gammaln((alpha + 1) / 2) - gammaln(alpha / 2 + 1))
+        return 2.0 * math.sqrt(math.pi) * math.exp(gammaln((alpha + 1) / 2)
+                                                   - gammaln(alpha / 2 + 1))
     if method == "quad":
         val, _ = quad(lambda th: math.cos(th) ** alpha, 0.0, math.pi / 2,
                       epsabs=0.0, epsrel=1e-13, limit=200)
@@ -195,15 +196,9 @@ class _Slope:
 
     def values(self, seg_idx, tau):
         """``(diL/dt [A/s], d2iL/dt2 [A/s^2], iL [A])`` at (segment, offset [s]) pairs."""
-        seg = self.run.segments
-        tbl = self.run.table
         seg_idx = np.ascontiguousarray(seg_idx, dtype=np.int64)
-        tau = np.ascontiguousarray(tau, dtype=float)
-        z = np.empty((tau.shape[0], self.run.stage.n + 1))
-        # By (segment, offset), not by absolute time: locating a time could
-        # hand a node of a very short segment to its neighbour.
-        evaluate(tbl.matrices, tbl.exponentials, tbl.steps, seg.system, seg.x0, seg_idx, tau, z)
-        s = seg.system[seg_idx]
+        z = segment_states(self.run, seg_idx, tau)
+        s = self.run.segments.system[seg_idx]
         return (np.einsum("ij,ij->i", self.row1[s], z), np.einsum("ij,ij->i", self.row2[s], z),
                 z[:, 0])
 
@@ -328,7 +323,7 @@ def _adaptive_nodes(slope: _Slope, seg, a, b, alpha, rtol=_RTOL, max_depth=_MAX_
         if depth == max_depth or (~ok).sum() > _MAX_REFINE:
             ok[:] = True
         for lst, val in zip(out, (np.repeat(seg[ok], 2 * n), t2[ok].ravel(), w2[ok].ravel(),
-                                  f2[ok].ravel())):
+                                  f2[ok].ravel()), strict=True):
             lst.append(val)
         bad = ~ok
         if not bad.any():

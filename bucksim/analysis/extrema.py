@@ -13,8 +13,8 @@ import math
 
 import numpy as np
 
-from bucksim.engine.kernels import evaluate
-from bucksim.model.stage import HIGH_DIODE, LOW, LOW_DIODE
+from bucksim.analysis.segments import segment_states
+from bucksim.model.stage import clamp_current
 
 #: Sample spacing as a fraction of ``min(pi/omega, 1/delta)`` (see
 #: :func:`piece_extrema`): ``pi/omega`` is the gap between two turning points
@@ -109,73 +109,104 @@ def piece_extrema(run, name, idx, tau_a, tau_b):
     G. Polya and G. Szego, Problems and Theorems in Analysis II (1976),
     part V, problem 75 (zeros of exponential sums, by Rolle's theorem).
     W. H. Press et al., Numerical Recipes, 3rd ed. (2007), section 9.4
-    (``rtsafe``: Newton-Raphson safeguarded by bisection).
+    (``rtsafe``, in :func:`_refine_turning_points`).
     """
     idx = np.asarray(idx, dtype=np.int64)
-    tau_a = np.asarray(tau_a, dtype=float)
-    tau_b = np.asarray(tau_b, dtype=float)
-    npiece = idx.shape[0]
-    lo = np.full(npiece, np.inf)
-    hi = np.full(npiece, -np.inf)
-    if npiece == 0:
+    lo = np.full(idx.shape[0], np.inf)
+    hi = np.full(idx.shape[0], -np.inf)
+    if idx.shape[0] == 0:
         return lo, hi
+    systems = run.segments.system[idx]
+    spacing, window = _sampling(run, name, np.unique(systems))
+    owner, idx, systems, tau_a, tau_b = _end_windows(
+        idx, systems, np.asarray(tau_a, dtype=float), np.asarray(tau_b, dtype=float), window)
+    lo_all, hi_all = _sampled_pieces(run, name, idx, tau_a, tau_b, spacing[systems])
+    np.minimum.at(lo, owner, lo_all)
+    np.maximum.at(hi, owner, hi_all)
+    return lo, hi
+
+
+def _sampling(run, name, systems):
+    """Per system: the longest sample interval and the span sampled at each end [s].
+
+    Arrays over all the run's systems, ``inf`` where no bound applies; only
+    ``systems`` are filled in (:func:`piece_extrema`, Notes).
+    """
     sig = run.signal_table(name)
     mats = run.table.matrices
-    systems = run.segments.system[idx]
-    eps = np.finfo(float).eps
     spacing = np.full(mats.shape[0], np.inf)     # longest sample interval [s]
     window = np.full(mats.shape[0], np.inf)      # span sampled at each end [s]
-    for s in np.unique(systems):
+    for s in systems:
         A = mats[s, :-1, :-1]
-        deps = A != 0
-        keep = sig[s, :-1] != 0
-        while True:
-            grown = keep | np.any(deps[keep], axis=0)
-            if np.array_equal(grown, keep):
-                break
-            keep = grown
+        keep = _signal_block(A, sig[s, :-1])
         r = int(keep.sum())
         if r <= 1:
             continue
         if r >= 3:
             spacing[s] = run.table.guard
             continue
-        # Python floats: a quotient too large for a float is inf, without a warning
-        (p, q), (u, v) = A[np.ix_(keep, keep)].tolist()
-        mean, half = 0.5 * (p + v), 0.5 * (p - v)
-        disc = half * half + q * u        # (tr/2)^2 - det: < 0 for a complex pair
-        slack = 4.0 * eps * (half * half + abs(q * u))   # its rounding bound
-        if disc > slack:                   # real eigenvalues mean +- sqrt(disc)
-            fast = mean + math.copysign(math.sqrt(disc), mean)
-            det = p * v - q * u
-            omega = 0.0
-            decay = ((abs(det) + 2.0 * eps * (abs(p * v) + abs(q * u))) / abs(fast)
-                     if fast != 0.0 else 0.0)
-        else:                              # complex (or within rounding of it)
-            omega = math.sqrt(max(-disc, 0.0) + slack)
-            decay = abs(mean)
-        gap = min(math.pi / omega if omega > 0.0 else math.inf,
-                  1.0 / decay if decay > 0.0 else math.inf)
-        spacing[s] = _SPACING * gap
-        if omega > 0.0:
-            window[s] = _END_LOBES * math.pi / omega
-        elif decay > 0.0 and mean < 0.0 and p * v - q * u > 0.0:
-            window[s] = _END_DECAYS / decay
-    # a piece longer than two end windows: its head and its tail stand for it
-    owner0 = np.arange(npiece)
+        spacing[s], window[s] = _two_state_sampling(A[np.ix_(keep, keep)])
+    return spacing, window
+
+
+def _signal_block(A, row):
+    """The states ``row`` reads and, recursively, the states their rows of ``A`` read."""
+    deps = A != 0
+    keep = row != 0
+    while True:
+        grown = keep | np.any(deps[keep], axis=0)
+        if np.array_equal(grown, keep):
+            return keep
+        keep = grown
+
+
+def _two_state_sampling(block):
+    """``(spacing, window)`` [s] of a signal whose derivative lives on a 2 x 2 ``block``.
+
+    ``omega`` and ``delta`` from the block's trace and determinant, widened by
+    their rounding bounds (:func:`piece_extrema`, Notes).
+    """
+    eps = np.finfo(float).eps
+    # Python floats: a quotient too large for a float is inf, without a warning
+    (p, q), (u, v) = block.tolist()
+    mean, half = 0.5 * (p + v), 0.5 * (p - v)
+    disc = half * half + q * u        # (tr/2)^2 - det: < 0 for a complex pair
+    slack = 4.0 * eps * (half * half + abs(q * u))   # its rounding bound
+    if disc > slack:                   # real eigenvalues mean +- sqrt(disc)
+        fast = mean + math.copysign(math.sqrt(disc), mean)
+        det = p * v - q * u
+        omega = 0.0
+        decay = ((abs(det) + 2.0 * eps * (abs(p * v) + abs(q * u))) / abs(fast)
+                 if fast != 0.0 else 0.0)
+    else:                              # complex (or within rounding of it)
+        omega = math.sqrt(max(-disc, 0.0) + slack)
+        decay = abs(mean)
+    gap = min(math.pi / omega if omega > 0.0 else math.inf,
+              1.0 / decay if decay > 0.0 else math.inf)
+    window = math.inf
+    if omega > 0.0:
+        window = _END_LOBES * math.pi / omega
+    elif decay > 0.0 and mean < 0.0 and p * v - q * u > 0.0:
+        window = _END_DECAYS / decay
+    return _SPACING * gap, window
+
+
+def _end_windows(idx, systems, tau_a, tau_b, window):
+    """A piece longer than two end windows: its head and its tail stand for it.
+
+    Returns ``(owner, idx, systems, tau_a, tau_b)``: the pieces to sample,
+    each with the input piece it stands for.
+    """
+    owner = np.arange(idx.shape[0])
     long_ = (tau_b - tau_a) > 2.0 * window[systems]
-    if np.any(long_):
-        w = window[systems[long_]]
-        owner0 = np.concatenate([owner0, np.nonzero(long_)[0]])
-        tail_a = tau_b[long_] - w
-        tau_b = np.concatenate([np.where(long_, tau_a + window[systems], tau_b), tau_b[long_]])
-        tau_a = np.concatenate([tau_a, tail_a])
-        idx = idx[owner0]
-        systems = systems[owner0]
-    lo_all, hi_all = _sampled_pieces(run, name, idx, tau_a, tau_b, spacing[systems])
-    np.minimum.at(lo, owner0, lo_all)
-    np.maximum.at(hi, owner0, hi_all)
-    return lo, hi
+    if not np.any(long_):
+        return owner, idx, systems, tau_a, tau_b
+    w = window[systems[long_]]
+    owner = np.concatenate([owner, np.nonzero(long_)[0]])
+    tail_a = tau_b[long_] - w
+    tau_b = np.concatenate([np.where(long_, tau_a + window[systems], tau_b), tau_b[long_]])
+    tau_a = np.concatenate([tau_a, tail_a])
+    return owner, idx[owner], systems[owner], tau_a, tau_b
 
 
 def _sampled_pieces(run, name, idx, tau_a, tau_b, spacing):
@@ -215,80 +246,86 @@ def _sampled_pieces(run, name, idx, tau_a, tau_b, spacing):
     return lo, hi
 
 
-def _extrema_sampled(run, name, idx, tau_a, tau_b, ns):
-    """Min and max of a signal on each row ``[tau_a, tau_b]`` of segment ``idx``.
+class _SignalRows:
+    """A signal's rows ``c``, ``c M`` and ``c M^2`` per system, and its sign clamp."""
 
-    ``ns`` uniform samples per row, each sign change of the derivative
-    between two samples refined by ``rtsafe`` (Newton on ``g = c M z`` with
-    ``g' = c M^2 z``, kept inside the bracket by bisection) until the step or
-    the bracket is a few units in the last place of the time offset.
-    """
-    seg = run.segments
-    table = run.table
-    m = table.matrices.shape[1]
-    sig = run.signal_table(name)
-    c_sys = sig                                            # (n_sys, m)
-    cm_sys = np.einsum("sj,sjk->sk", sig, table.matrices)  # c M per system
-    cmm_sys = np.einsum("sj,sjk->sk", cm_sys, table.matrices)
-    sys_row = seg.system[idx]
-    evented = None
-    if name == "iL":
+    def __init__(self, run, name):
+        mats = run.table.matrices
+        self.c = run.signal_table(name)                          # (n_sys, m)
+        self.cm = np.einsum("sj,sjk->sk", self.c, mats)          # c M per system
+        self.cmm = np.einsum("sj,sjk->sk", self.cm, mats)
         # event-terminated segments end at iL = 0 exactly; the stored end time
         # is rounded to the spacing of absolute time, which can put the
         # evaluated end a few 1e-12 A past zero: the conduction state fixes
         # the sign, so clamp to it
-        cond = seg.conduction
-        floor0 = (cond == LOW_DIODE)
-        if run.scenario.switching.strategy == "diode-emulation":
-            floor0 = floor0 | (cond == LOW)
-        ceil0 = cond == HIGH_DIODE
-        evented = (floor0, ceil0)
+        self._conduction = run.segments.conduction if name == "iL" else None
+        self._strategy = run.scenario.switching.strategy
 
-    def clamp(val, k):
-        if evented is None:
+    def clamp(self, val, k):
+        """``val`` (the signal in segments ``k``) with the sign the state fixes."""
+        if self._conduction is None:
             return val
-        val = np.where(evented[0][k], np.maximum(val, 0.0), val)
-        return np.where(evented[1][k], np.minimum(val, 0.0), val)
+        return clamp_current(val, self._conduction[k], self._strategy)
 
-    def states(k, tau):
-        z = np.empty((k.shape[0], m))
-        evaluate(table.matrices, table.exponentials, table.steps, seg.system, seg.x0,
-                 k, tau, z)
-        return z
 
+def _extrema_sampled(run, name, idx, tau_a, tau_b, ns):
+    """Min and max of a signal on each row ``[tau_a, tau_b]`` of segment ``idx``.
+
+    ``ns`` uniform samples per row; each sign change of the derivative
+    between two samples is refined by :func:`_refine_turning_points`.
+    """
+    rows = _SignalRows(run, name)
+    m = run.table.matrices.shape[1]
+    sys_row = run.segments.system[idx]
     nrow = idx.shape[0]
     frac = np.linspace(0.0, 1.0, ns)
     taus = tau_a[:, None] + (tau_b - tau_a)[:, None] * frac[None, :]
     taus[:, -1] = tau_b
-    z = states(np.repeat(idx, ns), taus.ravel()).reshape(nrow, ns, m)
-    val = np.einsum("rsj,rj->rs", z, c_sys[sys_row])
-    val = clamp(val, idx[:, None])
-    der = np.einsum("rsj,rj->rs", z, cm_sys[sys_row])
+    z = segment_states(run, np.repeat(idx, ns), taus.ravel()).reshape(nrow, ns, m)
+    val = rows.clamp(np.einsum("rsj,rj->rs", z, rows.c[sys_row]), idx[:, None])
+    der = np.einsum("rsj,rj->rs", z, rows.cm[sys_row])
     lo, hi = val.min(axis=1), val.max(axis=1)
     flips = np.argwhere(der[:, :-1] * der[:, 1:] < 0)
     if flips.shape[0] == 0:
         return lo, hi
     p, q = flips[:, 0], flips[:, 1]
-    k = idx[p]
-    s = sys_row[p]
-    a, b = taus[p, q].copy(), taus[p, q + 1].copy()
-    ga = np.sign(der[p, q])
-    best_lo = np.full(p.shape[0], np.inf)
-    best_hi = np.full(p.shape[0], -np.inf)
+    best_lo, best_hi = _refine_turning_points(run, rows, idx[p], taus[p, q].copy(),
+                                              taus[p, q + 1].copy(), np.sign(der[p, q]))
+    np.minimum.at(lo, p, best_lo)
+    np.maximum.at(hi, p, best_hi)
+    return lo, hi
+
+
+def _refine_turning_points(run, rows, k, a, b, ga):
+    """Min and max of the signal met while refining each bracketed turning point.
+
+    ``[a, b]`` [s] brackets a sign change of ``g = c M z`` in segment ``k``,
+    whose sign at ``a`` is ``ga``. ``rtsafe``: Newton on ``g`` with
+    ``g' = c M^2 z``, kept inside the bracket by bisection, until the step or
+    the bracket is a few units in the last place of the time offset.
+
+    References
+    ----------
+    W. H. Press et al., Numerical Recipes, 3rd ed. (2007), section 9.4
+    (``rtsafe``: Newton-Raphson safeguarded by bisection).
+    """
+    s = run.segments.system[k]
+    best_lo = np.full(k.shape[0], np.inf)
+    best_hi = np.full(k.shape[0], -np.inf)
     x = 0.5 * (a + b)
     dx = b - a
     dx_old = dx.copy()
-    act = np.arange(p.shape[0])
+    act = np.arange(k.shape[0])
     for _ in range(_REFINE_STEPS):
         if act.shape[0] == 0:
             break
-        zk = states(k[act], x[act])
+        zk = segment_states(run, k[act], x[act])
         sk = s[act]
-        v = clamp(np.einsum("ij,ij->i", zk, c_sys[sk]), k[act])
+        v = rows.clamp(np.einsum("ij,ij->i", zk, rows.c[sk]), k[act])
         best_lo[act] = np.minimum(best_lo[act], v)
         best_hi[act] = np.maximum(best_hi[act], v)
-        g = np.einsum("ij,ij->i", zk, cm_sys[sk])
-        gp = np.einsum("ij,ij->i", zk, cmm_sys[sk])
+        g = np.einsum("ij,ij->i", zk, rows.cm[sk])
+        gp = np.einsum("ij,ij->i", zk, rows.cmm[sk])
         xa = x[act]
         same = np.sign(g) == ga[act]
         a[act] = np.where(same, xa, a[act])
@@ -312,6 +349,4 @@ def _extrema_sampled(run, name, idx, tau_a, tau_b, ns):
         going = ((g != 0) & (np.abs(step) > tol) & (bb - aa > tol)
                  & ~(np.abs(newton) <= tol))
         act = act[going]
-    np.minimum.at(lo, p, best_lo)
-    np.maximum.at(hi, p, best_hi)
-    return lo, hi
+    return best_lo, best_hi

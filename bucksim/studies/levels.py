@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from bucksim.analysis.segments import segment_values  # noqa: F401  (the light-load tools' import)
 from bucksim.errors import ScenarioError
 from bucksim.model.units import format_si, parse_quantity
 
@@ -144,23 +145,3 @@ def periodic_run(scenario):
 
     run = simulate_settled(scenario, cycles=1)
     return run.steady_state, run
-
-
-def _states(run, index, tau):
-    """Augmented states inside given segments (left limits at a segment's end)."""
-    from bucksim.engine.kernels import evaluate
-
-    index = np.ascontiguousarray(index, dtype=np.int64)
-    tau = np.ascontiguousarray(tau, dtype=float)
-    out = np.empty((tau.shape[0], run.stage.n + 1))
-    tbl, seg = run.table, run.segments
-    evaluate(tbl.matrices, tbl.exponentials, tbl.steps, seg.system, seg.x0, index, tau, out)
-    return out
-
-
-def segment_values(run, signal, index, tau):
-    """``signal`` at offsets ``tau`` [s] inside segments ``index`` (left limits at ends)."""
-    index = np.asarray(index, dtype=np.int64)
-    z = _states(run, index, tau)
-    c = run.signal_table(signal)[run.segments.system[index]]
-    return np.einsum("ij,ij->i", c, z)
