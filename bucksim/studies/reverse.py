@@ -52,7 +52,7 @@ from bucksim.studies.levels import (
     segment_values,
     with_level,
 )
-from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, current_reverses
+from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, clamp_current, current_reverses
 from bucksim.model.units import format_si
 
 CAUTION = ("Caution: simulation is no substitute for validating the power stage on the bench "
@@ -75,10 +75,7 @@ def _il_samples(run):
     val = segment_values(run, "iL", idx, tau).reshape(n, _SAMPLES)
     cond = seg.conduction[:, None]
     # event-ended segments stop at iL = 0 to rounding; the state fixes the sign
-    clamp_pos = (cond == LOW_DIODE) | ((cond == LOW) & (
-        run.scenario.switching.strategy == "diode-emulation"))
-    val = np.where(clamp_pos, np.maximum(val, 0.0), val)
-    val = np.where(cond == HIGH_DIODE, np.minimum(val, 0.0), val)
+    val = clamp_current(val, cond, run.scenario.switching.strategy)
     val = np.where(cond == IDLE, 0.0, val)
     return val, tau.reshape(n, _SAMPLES)
 
