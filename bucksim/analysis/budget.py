@@ -199,14 +199,26 @@ def estimate(scenario) -> LossBudget:
     from bucksim.model.scenario import require_scenario
     require_scenario(scenario, "estimate")
     op = operating_point(scenario)
-    D, fs, vin, io, dI = op["duty"], op["frequency"], op["vin"], op["io"], op["ripple"]
+    items = _conduction_items(scenario, op) + _switching_items(scenario, op)
+    core = _core_item(scenario, op)
+    if core is not None:
+        items.append(core)
+    return LossBudget(op, items)
+
+
+_EM = "Erickson & Maksimovic 3rd ed. ch. 3 (conduction with ripple)"
+_CP = "common practice"
+
+
+def _conduction_items(scenario, op) -> list[BudgetItem]:
+    """Conduction losses [W] of the switches, diodes, inductor, capacitor and supply."""
+    D, fs, io, dI = op["duty"], op["frequency"], op["io"], op["ripple"]
     pk, vl = op["peak"], op["valley"]
     hs, ls = scenario.high_side, scenario.low_side
     sync = isinstance(ls, Mosfet)
     tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
     ms = io * io + dI * dI / 12.0  # mean square of the triangle around Io
-    EM = "Erickson & Maksimovic 3rd ed. ch. 3 (conduction with ripple)"
-    CP = "common practice"
+    EM, CP = _EM, _CP
     items = [BudgetItem("high_side.conduction", "high_side", "conduction",
                         hs.rds_on * D * ms, "Rds_hs D (Io^2 + dI^2/12)", EM)]
     if sync:
@@ -238,13 +250,22 @@ def estimate(scenario) -> LossBudget:
     if scenario.supply.resistance > 0:
         items.append(BudgetItem("supply.conduction", "supply", "conduction",
                                 scenario.supply.resistance * D * ms, "Rs D (Io^2 + dI^2/12)", EM))
+    return items
 
+
+def _switching_items(scenario, op) -> list[BudgetItem]:
+    """Switching-edge losses [W]: overlap, Coss, reverse recovery, gate drive."""
+    fs, vin, pk, vl = op["frequency"], op["vin"], op["peak"], op["valley"]
+    hs, ls = scenario.high_side, scenario.low_side
+    sync = isinstance(ls, Mosfet)
+    tr = scenario.switching.dead_time[1] if sync else 0.0
+    CP = _CP
     # the node is at ground when the high side turns on unless a negative
     # current has already carried it to Vin during the rising dead time
     hard_on = vl > 0 or (sync and tr == 0)
     overlap = 0.5 * vin * (max(vl, 0.0) * hs.rise_time + max(pk, 0.0) * hs.fall_time) * fs
-    items.append(BudgetItem("switching.overlap", "high_side", "switching", overlap,
-                            "0.5 Vin (I_valley t_rise + I_peak t_fall) fs", CP))
+    items = [BudgetItem("switching.overlap", "high_side", "switching", overlap,
+                        "0.5 Vin (I_valley t_rise + I_peak t_fall) fs", CP)]
     c_node = hs.coss + (ls.coss if sync else 0.0)
     items.append(BudgetItem("switching.coss", "high_side", "switching",
                             0.5 * c_node * vin * vin * fs if hard_on else 0.0,
@@ -257,14 +278,20 @@ def estimate(scenario) -> LossBudget:
     gate = hs.qg * hs.gate_voltage + (ls.qg * ls.gate_voltage if sync else 0.0)
     items.append(BudgetItem("switching.gate", "gate drive", "switching", gate * fs,
                             "(Qg_hs Vg_hs + Qg_ls Vg_ls) fs", CP))
+    return items
+
+
+def _core_item(scenario, op) -> BudgetItem | None:
+    """iGSE core loss [W] for the triangular flux, or None without a core model."""
     core = scenario.inductor.core
-    if core is not None:
-        from bucksim.analysis.coreloss import igse_coefficient
-        ki = igse_coefficient(core.k, core.alpha, core.beta)
-        dB = scenario.inductor.inductance * dI / (core.turns * core.area)
-        pv = ki * dB ** core.beta * fs ** core.alpha * (D ** (1 - core.alpha)
-                                                         + (1 - D) ** (1 - core.alpha))
-        items.append(BudgetItem("inductor.core", "inductor", "core", pv * core.volume,
-                                "V k_i dB^beta f^alpha (D^(1-alpha) + (1-D)^(1-alpha))",
-                                "Venkatachalam et al., IEEE COMPEL 2002 (iGSE)"))
-    return LossBudget(op, items)
+    if core is None:
+        return None
+    from bucksim.analysis.coreloss import igse_coefficient
+    D, fs, dI = op["duty"], op["frequency"], op["ripple"]
+    ki = igse_coefficient(core.k, core.alpha, core.beta)
+    dB = scenario.inductor.inductance * dI / (core.turns * core.area)
+    pv = ki * dB ** core.beta * fs ** core.alpha * (D ** (1 - core.alpha)
+                                                     + (1 - D) ** (1 - core.alpha))
+    return BudgetItem("inductor.core", "inductor", "core", pv * core.volume,
+                      "V k_i dB^beta f^alpha (D^(1-alpha) + (1-D)^(1-alpha))",
+                      "Venkatachalam et al., IEEE COMPEL 2002 (iGSE)")
