@@ -53,7 +53,8 @@ def test_configuration_keeps_the_rules():
 
 
 def test_ruff_check_is_clean(tmp_path):
-    proc = _run(["ruff", "check", "--no-cache", "--output-format", "concise", *LINT_PATHS], tmp_path)
+    proc = _run(["ruff", "check", "--no-cache", "--output-format", "concise", *LINT_PATHS],
+                tmp_path)
     assert proc.returncode == 0, f"ruff check found:\n{proc.stdout[-8000:]}{proc.stderr[-2000:]}"
 
 
