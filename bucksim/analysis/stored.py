@@ -77,7 +77,7 @@ class _FileSummary:
         result = EngineResult(cols["t0"], cols["dt"], cols["conduction"], cols["system"],
                               cols["x0"], x_end=head.x_end, t_end=t_end, status=head.status,
                               message=head.message)
-        return Run(head.scenario, head.stage, head.table, result)
+        return Run(head.scenario, head.stage, head.table, result, path=head.path)
 
     def row_at(self, t, before=False) -> int:
         """Index of the last row with ``t0 <= t`` (``before``: ``t0 < t``), 0 if none:
@@ -104,9 +104,7 @@ class _FileSummary:
         # from a row that starts before the window: the switching edge at its first
         # row is judged against the conduction state before it, as in the whole run
         tail = self.run(self.row_at(t_start, before=True), head.n_segments)
-        data = summarize(tail, cycles).to_dict()
-        data["transients"] = self.transients(tail, stats)
-        return Summary(data)
+        return summarize(tail, cycles).with_transients(self.transients(tail, stats))
 
     def scan(self):
         """Check every row; per event, each block's extremes of vo and iL."""

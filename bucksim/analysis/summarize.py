@@ -22,7 +22,16 @@ import numpy as np
 
 from bucksim.analysis.extrema import extrema
 from bucksim.analysis.moments import SegmentMoments
-from bucksim.analysis.summary import Summary
+from bucksim.analysis.summary import (
+    Device,
+    FluxDensity,
+    InductorCurrent,
+    OutputVoltage,
+    Power,
+    Summary,
+    Transient,
+    Window,
+)
 from bucksim.analysis.switching import switching_energy
 from bucksim.analysis.transients import transients as event_metrics
 from bucksim.analysis.windows import window_pieces
@@ -39,8 +48,42 @@ def summarize(run, cycles: int | None = None) -> Summary:
         Window width in periods; default ``scenario.run.summary_cycles``.
         Clipped to the simulated time.
     """
+    t_start, t_stop, n_cyc = _window(run, cycles)
+    width = t_stop - t_start
+    idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
+    ig = WindowIntegrals(run, idx, tau_b - tau_a, z_a, width)
+    devices, loss = _conduction(run.stage, ig, width)
+    e_sw = _switching(run, devices, t_start, t_stop)
+    loss += e_sw
+    e_core = _core(run, devices, idx, tau_a, tau_b, width)
+    loss += e_core
+    e_in = ig.integral("vin", "iin") + e_sw + e_core
+    e_out = ig.integral("vo", "io")
+    balance = _balance_error(run, t_start, e_in, e_out, loss)
+    il_min, il_max = extrema(run, "iL", idx, tau_a, tau_b)
+    vo_min, vo_max = extrema(run, "vo", idx, tau_a, tau_b)
+    idle = run.segments.conduction[idx] == IDLE
+    p_in, p_out = e_in / width, e_out / width
+    return Summary(
+        window=Window(start=t_start, stop=t_stop, cycles=n_cyc),
+        mode="dcm" if bool(np.any(idle & (tau_b - tau_a > 0))) else "ccm",
+        reverse_current=current_reverses(il_min, il_max),
+        output_voltage=OutputVoltage(mean=ig.mean("vo"), min=vo_min, max=vo_max,
+                                     ripple=vo_max - vo_min),
+        inductor_current=InductorCurrent(mean=ig.mean("iL"), rms=ig.rms("iL"), min=il_min,
+                                         max=il_max, ripple=il_max - il_min),
+        devices={name: _device(d) for name, d in devices.items()},
+        power=Power(input=p_in, output=p_out, loss=loss / width),
+        efficiency=p_out / p_in if p_in > 0 else 0.0,
+        energy_balance_error=float(balance),
+        transients=tuple(Transient(**e) for e in event_metrics(run)),
+        strategy=run.scenario.switching.strategy,
+    )
+
+
+def _window(run, cycles):
+    """``(t_start, t_stop, cycles)`` of the window; refuses a diverged run."""
     sc = run.scenario
-    stage = run.stage
     T = sc.period
     if run.status == 1 or not np.all(np.isfinite(run.segments.x0)):
         from bucksim.errors import SimulationError
@@ -51,110 +94,123 @@ def summarize(run, cycles: int | None = None) -> Summary:
         raise ValueError(f"cycles must be >= 1, got {cycles}")
     t_stop = run.t_end
     t_start = max(float(run.segments.t0[0]), t_stop - cycles * T)
-    width = t_stop - t_start
-    n_cyc = width / T
+    n_cyc = (t_stop - t_start) / T
     if abs(n_cyc - round(n_cyc)) < 1e-6:
         n_cyc = int(round(n_cyc))
-    idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
+    return t_start, t_stop, n_cyc
 
-    # every power signal lives on [iL, vC, 1], a block the controller states of an
-    # analog loop do not feed within a segment: integrate that block alone
-    keep = stage.plant_index
-    mom = SegmentMoments(run.table.matrices[:, keep][:, :, keep])
-    m = keep.shape[0]
-    n_sys = run.table.matrices.shape[0]
-    S = np.zeros((n_sys, m, m))
-    systems = run.segments.system[idx]
-    for s, z0, d in zip(systems, z_a[:, keep], tau_b - tau_a):
-        S[s] += mom.second(s, z0, d)
-    used = np.unique(systems)
 
-    def integral(a: str, b: str | None = None) -> float:
+class WindowIntegrals:
+    """Exact integrals of signals and their products over the window's pieces.
+
+    Every power signal lives on ``[iL, vC, 1]``, a block the controller states
+    of an analog loop do not feed within a segment: that block alone is
+    integrated, one second-moment matrix per system summed over its pieces.
+    """
+
+    def __init__(self, run, idx, lengths, z_a, width):
+        self.run, self.width = run, width
+        self.keep = keep = run.stage.plant_index
+        mom = SegmentMoments(run.table.matrices[:, keep][:, :, keep])
+        m = keep.shape[0]
+        S = np.zeros((run.table.matrices.shape[0], m, m))
+        systems = run.segments.system[idx]
+        for s, z0, d in zip(systems, z_a[:, keep], lengths):
+            S[s] += mom.second(s, z0, d)
+        self.S = S
+        self.used = np.unique(systems)
+
+    def integral(self, a: str, b: str | None = None) -> float:
         """int a(t) b(t) dt over the window (b = 1 when omitted)."""
-        ca = run.signal_table(a)[:, keep]
+        keep, S = self.keep, self.S
+        ca = self.run.signal_table(a)[:, keep]
         if b is None:
-            return float(sum(ca[s] @ S[s][:, -1] for s in used))
-        cb = run.signal_table(b)[:, keep]
-        return float(sum(ca[s] @ S[s] @ cb[s] for s in used))
+            return float(sum(ca[s] @ S[s][:, -1] for s in self.used))
+        cb = self.run.signal_table(b)[:, keep]
+        return float(sum(ca[s] @ S[s] @ cb[s] for s in self.used))
 
-    def rms(name):
-        return math.sqrt(max(integral(name, name), 0.0) / width)
+    def square(self, name: str) -> float:
+        """int name(t)^2 dt, clamped at 0: a rounding-level negative value of a
+        current that is ~nothing must not read as a device that supplies power."""
+        return max(self.integral(name, name), 0.0)
 
-    def mean(name):
-        return integral(name) / width
+    def rms(self, name: str) -> float:
+        """RMS over the window."""
+        return math.sqrt(self.square(name) / self.width)
 
-    il_min, il_max = extrema(run, "iL", idx, tau_a, tau_b)
-    vo_min, vo_max = extrema(run, "vo", idx, tau_a, tau_b)
-    idle = run.segments.conduction[idx] == IDLE
+    def mean(self, name: str) -> float:
+        """Mean over the window."""
+        return self.integral(name) / self.width
 
+
+def _conduction(stage, ig, width):
+    """Per device: RMS, mean and conduction loss; and the total conduction energy [J].
+
+    The energies are added in a fixed grouping (switches one by one, then DCR
+    and ESR together, then the supply), so the total is the same float every time.
+    """
     devices = {}
-    loss_total = 0.0
-    for name, r, vf in stage.device_models():
-        # the integral of a square is >= 0; a rounding-level negative value of a
-        # device that carries ~nothing must not read as a device that supplies power
-        e = r * max(integral(name, name), 0.0) + vf * integral(name)
-        devices[name] = {"rms": rms(name), "mean": mean(name),
-                         "conduction_loss": e / width, "switching_loss": 0.0}
-        loss_total += e
-    # squares integrate to >= 0: clamp rounding of a current that is ~nothing
-    e_dcr = stage.dcr * max(integral("iL", "iL"), 0.0)
-    devices["inductor"] = {"rms": rms("iL"), "mean": mean("iL"),
-                           "conduction_loss": e_dcr / width, "switching_loss": 0.0}
-    e_esr = stage.esr * max(integral("ic", "ic"), 0.0)
-    devices["output_capacitor"] = {"rms": rms("ic"), "mean": mean("ic"),
-                                   "conduction_loss": e_esr / width, "switching_loss": 0.0}
-    loss_total += e_dcr + e_esr
-    if stage.rs > 0:
-        e_rs = stage.rs * max(integral("iin", "iin"), 0.0)
-        devices["supply"] = {"rms": rms("iin"), "mean": mean("iin"),
-                             "conduction_loss": e_rs / width, "switching_loss": 0.0}
-        loss_total += e_rs
 
-    # switching events: energy drawn from the supply and dissipated in the switch
+    def add(name, signal, energy):
+        devices[name] = {"rms": ig.rms(signal), "mean": ig.mean(signal),
+                         "conduction_loss": energy / width, "switching_loss": 0.0}
+        return energy
+
+    total = 0.0
+    for name, r, vf in stage.device_models():
+        total += add(name, name, r * ig.square(name) + vf * ig.integral(name))
+    e_dcr = add("inductor", "iL", stage.dcr * ig.square("iL"))
+    e_esr = add("output_capacitor", "ic", stage.esr * ig.square("ic"))
+    total += e_dcr + e_esr
+    if stage.rs > 0:
+        total += add("supply", "iin", stage.rs * ig.square("iin"))
+    return devices, total
+
+
+def _switching(run, devices, t_start, t_stop):
+    """Switching-event energies (drawn from the supply, dissipated in the switch)
+    booked to the two switches; returns their total [J]."""
+    width = t_stop - t_start
     sw = switching_energy(run, t_start, t_stop)
-    e_sw = 0.0
+    total = 0.0
     for name in ("high_side", "low_side"):
         parts = sw[name]
-        total = sum(parts.values())
-        devices[name]["switching_loss"] = total / width
+        energy = sum(parts.values())
+        devices[name]["switching_loss"] = energy / width
         devices[name]["switching"] = {kind: e / width for kind, e in parts.items()}
-        e_sw += total
-    loss_total += e_sw
+        total += energy
+    return total
 
-    # core loss (iGSE) is, like switching energy, drawn from the supply on top
-    # of the ideal-inductor waveforms
-    e_core = 0.0
-    if sc.inductor.core is not None:
-        from bucksim.analysis.coreloss import core_loss
-        core = core_loss(run, idx, tau_a, tau_b)
-        devices["inductor"]["core_loss"] = core["power"]
-        devices["inductor"]["flux_density"] = {"peak": core["peak_b"], "ripple": core["delta_b"]}
-        e_core = core["power"] * width
-    loss_total += e_core
 
-    e_in = integral("vin", "iin") + e_sw + e_core
-    e_out = integral("vo", "io")
+def _core(run, devices, idx, tau_a, tau_b, width):
+    """Core loss (iGSE): like switching energy, drawn from the supply on top of the
+    ideal-inductor waveforms. Returns its energy [J] (0 without core data)."""
+    if run.scenario.inductor.core is None:
+        return 0.0
+    from bucksim.analysis.coreloss import core_loss
+    core = core_loss(run, idx, tau_a, tau_b)
+    devices["inductor"]["core_loss"] = core["power"]
+    devices["inductor"]["flux_density"] = {"peak": core["peak_b"], "ripple": core["delta_b"]}
+    return core["power"] * width
+
+
+def _balance_error(run, t_start, e_in, e_out, loss):
+    """Relative residual of ``E_in = E_out + E_loss + dE_stored`` over the window."""
+    stage = run.stage
     x_a = run.at([t_start])[0]
     x_b = run.x_end
     d_stored = stage.stored_energy(x_b) - stage.stored_energy(x_a)
-    residual = e_in - e_out - loss_total - d_stored
+    residual = e_in - e_out - loss - d_stored
     # the stored energy sets the rounding floor: an idle, unloaded stage moves
     # almost no energy, and its residual is rounding of the stored energy
-    ref = max(abs(e_in), abs(e_out) + abs(loss_total) + abs(d_stored),
+    ref = max(abs(e_in), abs(e_out) + abs(loss) + abs(d_stored),
               stage.stored_energy(x_a), stage.stored_energy(x_b))
-    balance = abs(residual) / ref if ref > 0 else 0.0
-    p_in, p_out = e_in / width, e_out / width
-    return Summary({
-        "window": {"start": t_start, "stop": t_stop, "cycles": n_cyc},
-        "mode": "dcm" if bool(np.any(idle & (tau_b - tau_a > 0))) else "ccm",
-        "reverse_current": current_reverses(il_min, il_max),
-        "output_voltage": {"mean": mean("vo"), "min": vo_min, "max": vo_max,
-                           "ripple": vo_max - vo_min},
-        "inductor_current": {"mean": mean("iL"), "rms": rms("iL"), "min": il_min,
-                             "max": il_max, "ripple": il_max - il_min},
-        "devices": devices,
-        "power": {"input": p_in, "output": p_out, "loss": loss_total / width},
-        "efficiency": p_out / p_in if p_in > 0 else 0.0,
-        "energy_balance_error": float(balance),
-        "transients": event_metrics(run),
-    })
+    return abs(residual) / ref if ref > 0 else 0.0
+
+
+def _device(d: dict) -> Device:
+    flux = d.get("flux_density")
+    return Device(rms=d["rms"], mean=d["mean"], conduction_loss=d["conduction_loss"],
+                  switching_loss=d["switching_loss"], switching=d.get("switching"),
+                  core_loss=d.get("core_loss"),
+                  flux_density=None if flux is None else FluxDensity(**flux))

@@ -1,9 +1,22 @@
-"""The Summary result object: metrics of a run's window, as a dict and a table."""
+"""The Summary result: metrics of a run's window as typed records, a dict and a table.
+
+Every part of a summary is a frozen dataclass (:class:`Window`,
+:class:`OutputVoltage`, :class:`InductorCurrent`, :class:`Device`,
+:class:`Power`, :class:`Transient`); read them as attributes
+(``summary.power.loss``). :meth:`Summary.to_dict` gives the plain, JSON-ready
+nested dict that ``bucksim run --json`` prints (keys in the order of the
+summary reference, docs/summary-reference.md), and :meth:`Summary.from_dict`
+reads one back. Values are SI units.
+"""
 
 from __future__ import annotations
 
-import copy
+import dataclasses
 import json
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+from bucksim.analysis.loss_items import LOSS_ITEMS, item_label  # noqa: F401 (re-exported)
 
 DEVICE_ORDER = ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode",
                 "inductor", "output_capacitor", "supply")
@@ -22,108 +35,310 @@ def _mean_text(mean: float, rms: float, unit: str) -> str:
     return format_si(0.0 if abs(mean) <= MEAN_ROUNDING * abs(rms) else mean, unit)
 
 
-#: Loss items, in the order they are stacked and listed. The asynchronous
-#: stage's low side is the freewheel diode, kept apart from a MOSFET channel.
-LOSS_ITEMS = ("high_side.conduction", "high_side.switching", "high_side_body_diode.conduction",
-              "freewheel_diode.conduction", "low_side.conduction", "low_side.switching",
-              "low_side_body_diode.conduction", "inductor.dcr", "inductor.core",
-              "output_capacitor.esr", "supply.resistance")
-_ITEM_LABELS = {
-    "high_side.conduction": "high side conduction", "high_side.switching": "high side switching",
-    "high_side_body_diode.conduction": "high-side body diode",
-    "freewheel_diode.conduction": "freewheel diode",
-    "low_side.conduction": "low side conduction", "low_side.switching": "low side switching",
-    "low_side_body_diode.conduction": "low-side body diode",
-    "inductor.dcr": "inductor DCR", "inductor.core": "inductor core",
-    "output_capacitor.esr": "output capacitor ESR", "supply.resistance": "supply resistance"}
+def _plain(record) -> dict:
+    """A record's fields as a dict in declaration order; nested records become dicts.
+
+    Fields marked ``metadata={"optional": True}`` are left out while None (a
+    key the summary has only for some devices); fields marked ``internal``
+    are never written (they are not part of the JSON).
+    """
+    out = {}
+    for f in dataclasses.fields(record):
+        value = getattr(record, f.name)
+        if f.metadata.get("internal") or (f.metadata.get("optional") and value is None):
+            continue
+        if dataclasses.is_dataclass(value):
+            value = _plain(value)
+        elif isinstance(value, Mapping):
+            value = {k: _plain(v) if dataclasses.is_dataclass(v) else v
+                     for k, v in value.items()}
+        elif isinstance(value, tuple):
+            value = [_plain(v) if dataclasses.is_dataclass(v) else v for v in value]
+        out[f.name] = value
+    return out
 
 
-def item_label(item: str) -> str:
-    """Readable name of a loss item of :data:`LOSS_ITEMS`."""
-    return _ITEM_LABELS[item]
+_OPTIONAL = {"optional": True}
 
 
-class Summary:
-    """Metrics over the summary window (keys as in the design contract).
+@dataclass(frozen=True)
+class Window:
+    """The summary window: ``start``, ``stop`` [s] and its width in ``cycles``
+    (an int when the width is a whole number of periods)."""
 
-    Index it like a dict (``summary["power"]["loss"]``) or take
-    :meth:`to_dict` for a plain, JSON-ready copy. Values are SI units.
+    start: float
+    stop: float
+    cycles: float
+
+
+@dataclass(frozen=True)
+class OutputVoltage:
+    """Output voltage over the window [V]: exact mean, extremes, peak-to-peak ripple."""
+
+    mean: float
+    min: float
+    max: float
+    ripple: float
+
+
+@dataclass(frozen=True)
+class InductorCurrent:
+    """Inductor current over the window [A]: mean, RMS, extremes, peak-to-peak ripple."""
+
+    mean: float
+    rms: float
+    min: float
+    max: float
+    ripple: float
+
+
+@dataclass(frozen=True)
+class FluxDensity:
+    """Core flux density [T]: ``peak`` (largest ``|B|``) and peak-to-peak ``ripple``."""
+
+    peak: float
+    ripple: float
+
+
+@dataclass(frozen=True)
+class Device:
+    """Currents [A] and losses [W] of one device over the window.
+
+    Attributes
+    ----------
+    rms, mean : float
+        RMS and mean of the device current [A].
+    conduction_loss, switching_loss : float
+        Mean powers [W].
+    switching : dict or None
+        The switches only: switching loss by kind [W] (keys as in the summary
+        reference).
+    core_loss : float or None
+        The inductor only, when the scenario gives core data: iGSE core loss [W].
+    flux_density : FluxDensity or None
+        With ``core_loss``.
     """
 
-    def __init__(self, data: dict):
-        self._data = data
+    rms: float
+    mean: float
+    conduction_loss: float
+    switching_loss: float
+    switching: dict | None = field(default=None, metadata=_OPTIONAL)
+    core_loss: float | None = field(default=None, metadata=_OPTIONAL)
+    flux_density: FluxDensity | None = field(default=None, metadata=_OPTIONAL)
 
-    def __getitem__(self, key):
-        return self._data[key]
+    @classmethod
+    def from_dict(cls, data: Mapping) -> Device:
+        flux = data.get("flux_density")
+        switching = data.get("switching")
+        return cls(rms=data["rms"], mean=data["mean"], conduction_loss=data["conduction_loss"],
+                   switching_loss=data["switching_loss"],
+                   switching=None if switching is None else dict(switching),
+                   core_loss=data.get("core_loss"),
+                   flux_density=None if flux is None else FluxDensity(**flux))
 
-    def __contains__(self, key):
-        return key in self._data
 
-    def keys(self):
-        return self._data.keys()
+@dataclass(frozen=True)
+class Power:
+    """Mean powers over the window [W]: ``input`` (supply, switching and core
+    energy included), ``output`` (to the load) and ``loss``."""
 
+    input: float
+    output: float
+    loss: float
+
+
+@dataclass(frozen=True)
+class Transient:
+    """One event (start-up, load step, supply step) and the output's response.
+
+    ``time`` [s] of the event, settled ``reference`` [V], ``vo_max``/``vo_min``
+    [V], ``overshoot``/``undershoot`` [V] and in percent of the reference,
+    ``settling_time`` [s] (0: never left the band; None: not back in it by the
+    end), ``settled``, the relative ``band`` and the peak inductor current
+    ``il_peak`` [A].
+    """
+
+    event: str
+    time: float
+    reference: float
+    vo_max: float
+    vo_min: float
+    overshoot: float
+    undershoot: float
+    overshoot_percent: float
+    undershoot_percent: float
+    settling_time: float | None
+    settled: bool
+    band: float
+    il_peak: float
+
+
+@dataclass(frozen=True)
+class Summary:
+    """Metrics over the summary window (SI units; see docs/summary-reference.md).
+
+    Read the parts as attributes (``summary.power.loss``,
+    ``summary.devices["high_side"].rms``). :meth:`to_dict` gives the plain
+    JSON-ready copy. Indexing (``summary["power"]["loss"]``) is kept for
+    earlier callers: it reads the same :meth:`to_dict` view.
+
+    Attributes
+    ----------
+    window : Window
+    mode : str                    ``"ccm"`` or ``"dcm"``
+    reverse_current : bool        the inductor current goes negative
+    output_voltage : OutputVoltage
+    inductor_current : InductorCurrent
+    devices : dict of str -> Device   in the order of the stage's devices
+    power : Power
+    efficiency : float            output over input power (0 when none is drawn)
+    energy_balance_error : float  relative residual of the energy balance
+    transients : tuple of Transient
+    strategy : str or None        the stage's switching strategy (names the
+        asynchronous low side a freewheel diode in :meth:`loss_items`); not
+        part of :meth:`to_dict`
+    """
+
+    window: Window
+    mode: str
+    reverse_current: bool
+    output_voltage: OutputVoltage
+    inductor_current: InductorCurrent
+    devices: dict
+    power: Power
+    efficiency: float
+    energy_balance_error: float
+    transients: tuple = ()
+    strategy: str | None = field(default=None, compare=False, metadata={"internal": True})
+
+    # -- plain views ------------------------------------------------------------
     def to_dict(self) -> dict:
-        """A deep copy of the summary as plain Python types."""
-        return copy.deepcopy(self._data)
+        """A fresh nested dict of plain Python values (what ``run --json`` prints)."""
+        return _plain(self)
+
+    @classmethod
+    def from_dict(cls, data: Mapping, strategy: str | None = None) -> Summary:
+        """The summary a :meth:`to_dict` dict (or its JSON) describes."""
+        return cls(window=Window(**data["window"]), mode=data["mode"],
+                   reverse_current=data["reverse_current"],
+                   output_voltage=OutputVoltage(**data["output_voltage"]),
+                   inductor_current=InductorCurrent(**data["inductor_current"]),
+                   devices={k: Device.from_dict(v) for k, v in data["devices"].items()},
+                   power=Power(**data["power"]), efficiency=data["efficiency"],
+                   energy_balance_error=data["energy_balance_error"],
+                   transients=tuple(Transient(**e) for e in data.get("transients", ())),
+                   strategy=strategy)
+
+    def with_transients(self, events) -> Summary:
+        """This summary with its transients replaced by ``events`` (dicts or records)."""
+        return dataclasses.replace(self, transients=tuple(
+            e if isinstance(e, Transient) else Transient(**e) for e in events))
 
     def to_json(self, **kw) -> str:
-        return json.dumps(self._data, **kw)
+        return json.dumps(self.to_dict(), **kw)
+
+    # compatibility: the summary used to be a dict read by string keys
+    def __getitem__(self, key):
+        return self.to_dict()[key]
+
+    def __contains__(self, key):
+        return key in self.to_dict()
+
+    def keys(self):
+        return self.to_dict().keys()
+
+    # -- derived views ----------------------------------------------------------
+    def loss_items(self) -> dict:
+        """Loss items [W] (keys of :data:`LOSS_ITEMS`, in that order); they add up
+        to ``power.loss``. An asynchronous stage's low side is booked as
+        ``freewheel_diode.conduction`` (its reverse recovery is dissipated in,
+        and booked to, the high side)."""
+        d = self.devices
+        out = {}
+        for dev in ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode"):
+            if dev not in d:
+                continue
+            if dev == "low_side" and self.strategy == "asynchronous":
+                out["freewheel_diode.conduction"] = d[dev].conduction_loss
+                continue
+            out[f"{dev}.conduction"] = d[dev].conduction_loss
+            if not dev.endswith("body_diode"):
+                out[f"{dev}.switching"] = d[dev].switching_loss
+        out["inductor.dcr"] = d["inductor"].conduction_loss
+        if d["inductor"].core_loss is not None:
+            out["inductor.core"] = d["inductor"].core_loss
+        out["output_capacitor.esr"] = d["output_capacitor"].conduction_loss
+        if "supply" in d:
+            out["supply.resistance"] = d["supply"].conduction_loss
+        return out
+
+    def plot(self, *, title: str | None = None, size=(7.0, 4.5)):
+        """Figure: the window's loss breakdown, one horizontal bar per loss item [W]
+        (see :func:`bucksim.plotting.summary_loss_figure`)."""
+        from bucksim.plotting import summary_loss_figure
+        return summary_loss_figure(self, title=title, size=size)
 
     def table(self) -> str:
         """A readable multi-line table with engineering units."""
         from bucksim.model.units import format_si
 
-        d = self._data
-        w = d["window"]
-        vo, il, p = d["output_voltage"], d["inductor_current"], d["power"]
+        w, vo, il, p = self.window, self.output_voltage, self.inductor_current, self.power
         lines = [
-            f"window        {format_si(w['start'], 's')} .. {format_si(w['stop'], 's')} "
-            f"({w['cycles']:.4g} cycles)",
-            f"mode          {d['mode'].upper()}"
-            + ("   inductor current reverses" if d["reverse_current"] else ""),
-            f"output        mean {format_si(vo['mean'], 'V')}   ripple {format_si(vo['ripple'], 'V')} p-p"
-            f"   [{format_si(vo['min'], 'V')}, {format_si(vo['max'], 'V')}]",
-            f"inductor      mean {_mean_text(il['mean'], il['rms'], 'A')}   "
-            f"rms {format_si(il['rms'], 'A')}"
-            f"   ripple {format_si(il['ripple'], 'A')} p-p   [{format_si(il['min'], 'A')}, "
-            f"{format_si(il['max'], 'A')}]",
+            f"window        {format_si(w.start, 's')} .. {format_si(w.stop, 's')} "
+            f"({w.cycles:.4g} cycles)",
+            f"mode          {self.mode.upper()}"
+            + ("   inductor current reverses" if self.reverse_current else ""),
+            f"output        mean {format_si(vo.mean, 'V')}   ripple {format_si(vo.ripple, 'V')} p-p"
+            f"   [{format_si(vo.min, 'V')}, {format_si(vo.max, 'V')}]",
+            f"inductor      mean {_mean_text(il.mean, il.rms, 'A')}   "
+            f"rms {format_si(il.rms, 'A')}"
+            f"   ripple {format_si(il.ripple, 'A')} p-p   [{format_si(il.min, 'A')}, "
+            f"{format_si(il.max, 'A')}]",
             "",
             f"{'device':<22}{'rms':>12}{'mean':>12}{'conduction':>13}{'switching':>13}",
         ]
         for name in DEVICE_ORDER:
-            if name not in d["devices"]:
+            if name not in self.devices:
                 continue
-            v = d["devices"][name]
-            lines.append(f"{name:<22}{format_si(v['rms'], 'A'):>12}"
-                         f"{_mean_text(v['mean'], v['rms'], 'A'):>12}"
-                         f"{format_si(v['conduction_loss'], 'W'):>13}"
-                         f"{format_si(v['switching_loss'], 'W'):>13}")
-        core = d["devices"].get("inductor", {}).get("core_loss")
-        if core is not None:
-            lines.append(f"{'inductor core (iGSE)':<22}{'':>24}{format_si(core, 'W'):>13}")
+            v = self.devices[name]
+            lines.append(f"{name:<22}{format_si(v.rms, 'A'):>12}"
+                         f"{_mean_text(v.mean, v.rms, 'A'):>12}"
+                         f"{format_si(v.conduction_loss, 'W'):>13}"
+                         f"{format_si(v.switching_loss, 'W'):>13}")
+        inductor = self.devices.get("inductor")
+        if inductor is not None and inductor.core_loss is not None:
+            lines.append(f"{'inductor core (iGSE)':<22}{'':>24}"
+                         f"{format_si(inductor.core_loss, 'W'):>13}")
         lines += [
             "",
-            f"power         in {format_si(p['input'], 'W')}   out {format_si(p['output'], 'W')}"
-            f"   loss {format_si(p['loss'], 'W')}",
-            f"efficiency    {100 * d['efficiency']:.3f} %",
-            f"energy balance error {d['energy_balance_error']:.2e} (relative)",
+            f"power         in {format_si(p.input, 'W')}   out {format_si(p.output, 'W')}"
+            f"   loss {format_si(p.loss, 'W')}",
+            f"efficiency    {100 * self.efficiency:.3f} %",
+            f"energy balance error {self.energy_balance_error:.2e} (relative)",
         ]
-        if d.get("transients"):
-            lines += ["", f"{'event':<13}{'at':>10}{'vo max':>11}{'vo min':>11}{'over':>8}"
-                          f"{'under':>8}{'settles in':>12}{'iL peak':>10}"]
-            for e in d["transients"]:
-                st = e["settling_time"]
-                st = "not yet" if not e["settled"] else (
-                    "in band" if st == 0.0 else format_si(st, "s"))
-                under = "" if e["event"] == "start-up" else f"{e['undershoot_percent']:.2f}%"
-                lines.append(f"{e['event']:<13}{format_si(e['time'], 's'):>10}"
-                             f"{format_si(e['vo_max'], 'V'):>11}{format_si(e['vo_min'], 'V'):>11}"
-                             f"{e['overshoot_percent']:>7.2f}%{under:>8}{st:>12}"
-                             f"{format_si(e['il_peak'], 'A'):>10}")
+        if self.transients:
+            lines += ["", _transient_table(self.transients)]
         return "\n".join(lines)
 
     def __str__(self):
         return self.table()
 
     def __repr__(self):
-        return f"<Summary efficiency={self._data['efficiency']:.5f} mode={self._data['mode']}>"
+        return f"<Summary efficiency={self.efficiency:.5f} mode={self.mode}>"
+
+
+def _transient_table(events) -> str:
+    from bucksim.model.units import format_si
+
+    lines = [f"{'event':<13}{'at':>10}{'vo max':>11}{'vo min':>11}{'over':>8}"
+             f"{'under':>8}{'settles in':>12}{'iL peak':>10}"]
+    for e in events:
+        st = e.settling_time
+        st = "not yet" if not e.settled else ("in band" if st == 0.0 else format_si(st, "s"))
+        under = "" if e.event == "start-up" else f"{e.undershoot_percent:.2f}%"
+        lines.append(f"{e.event:<13}{format_si(e.time, 's'):>10}"
+                     f"{format_si(e.vo_max, 'V'):>11}{format_si(e.vo_min, 'V'):>11}"
+                     f"{e.overshoot_percent:>7.2f}%{under:>8}{st:>12}"
+                     f"{format_si(e.il_peak, 'A'):>10}")
+    return "\n".join(lines)

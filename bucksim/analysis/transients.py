@@ -35,9 +35,7 @@ def _pieces(run, ta, tb):
 def started_settled(run) -> bool:
     """True when the run starts on its periodic steady state (``run.start =
     "steady-state"``, or :func:`bucksim.simulation.simulate_settled`)."""
-    if hasattr(run, "steady_state"):
-        return run.steady_state is not None
-    return run.scenario.run.start == "steady-state"   # a stored run
+    return run.starts_settled
 
 
 def _events(run):

@@ -1,0 +1,28 @@
+"""Names of the loss items a summary breaks its loss into, and their labels.
+
+Kept apart from the result objects so that the figures (:mod:`bucksim.plotting`)
+can name the items without importing the results that plot themselves.
+"""
+
+from __future__ import annotations
+
+#: Loss items, in the order they are stacked and listed. The asynchronous
+#: stage's low side is the freewheel diode, kept apart from a MOSFET channel.
+LOSS_ITEMS = ("high_side.conduction", "high_side.switching", "high_side_body_diode.conduction",
+              "freewheel_diode.conduction", "low_side.conduction", "low_side.switching",
+              "low_side_body_diode.conduction", "inductor.dcr", "inductor.core",
+              "output_capacitor.esr", "supply.resistance")
+
+_ITEM_LABELS = {
+    "high_side.conduction": "high side conduction", "high_side.switching": "high side switching",
+    "high_side_body_diode.conduction": "high-side body diode",
+    "freewheel_diode.conduction": "freewheel diode",
+    "low_side.conduction": "low side conduction", "low_side.switching": "low side switching",
+    "low_side_body_diode.conduction": "low-side body diode",
+    "inductor.dcr": "inductor DCR", "inductor.core": "inductor core",
+    "output_capacitor.esr": "output capacitor ESR", "supply.resistance": "supply resistance"}
+
+
+def item_label(item: str) -> str:
+    """Readable name of a loss item of :data:`LOSS_ITEMS`."""
+    return _ITEM_LABELS[item]
