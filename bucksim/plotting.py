@@ -1,10 +1,14 @@
-"""Figures: waveforms, efficiency across load, loss breakdown, reverse current.
+"""Figures: waveforms, steady states, losses, efficiency across load, reverse current, sweeps.
 
 Every function returns a :class:`matplotlib.figure.Figure` built without
 pyplot's global state, so it is safe under any backend (Agg in tests and on
 servers) and never opens a window. Axes carry engineering units
 (:class:`matplotlib.ticker.EngFormatter`); :func:`save_png` writes PNG files
 without a software stamp, so the same figure gives the same bytes.
+
+The functions read the result objects they are given by their attributes
+and never import the result modules (each result's ``.plot()`` calls in
+here, so an import the other way would close a cycle).
 
 Waveforms are drawn from the exact segment table: points are placed inside
 each segment, both ends included with the segment's own (left-limit) value
@@ -71,8 +75,6 @@ def waveform_points(run, signals, window=None):
     the segment itself, so a discontinuous signal (``vsw``) has a vertical
     edge at every segment boundary.
     """
-    from bucksim.studies.levels import segment_values
-
     seg = run.segments
     t_first, t_last = float(seg.t0[0]), float(run.t_end)
     start, stop = (t_first, t_last) if window is None else (float(window[0]), float(window[1]))
@@ -90,7 +92,7 @@ def waveform_points(run, signals, window=None):
     tau = times - seg.t0[idx]
     out = {"t": times}
     for name in signals:
-        out[name] = segment_values(run, name, idx, tau)
+        out[name] = run.segment_values(name, idx, tau)
     out["segments"] = (a, b - a, seg.conduction[rows])
     return out
 
@@ -136,7 +138,7 @@ def waveform_figure(run, signals=("iL", "vsw", "vo"), window=None, *, size=(8.0,
         Axes ``fig.axes[:len(signals)]`` hold one line each (x: time [s]);
         the last axes is the conduction-state band.
     """
-    from bucksim.waveforms import UNITS
+    from bucksim.model.stage import UNITS
 
     signals = list(signals)
     if not signals:
@@ -224,7 +226,7 @@ def loss_breakdown_figure(comparison, loads, *, size=(9.0, 5.5)):
         One bar per (load, strategy); ``ax.containers`` holds one
         ``BarContainer`` per loss item, labelled with the item's key.
     """
-    from bucksim.analysis.summary import LOSS_ITEMS, item_label
+    from bucksim.analysis.loss_items import LOSS_ITEMS, item_label
     from bucksim.model.units import format_si
 
     picks = [comparison.level_index(lv) for lv in loads]
@@ -293,3 +295,178 @@ def _with_strategy(title: str, strategy: str) -> str:
     if words.lower() in title.lower().replace("-", " "):
         return title
     return f"{title} ({words.replace('pwm', 'PWM')})"
+
+
+# ----------------------------------------------------------------------------- summary
+
+def summary_loss_figure(summary, *, title=None, size=(7.0, 4.5)):
+    """The loss breakdown of a summary's window: one horizontal bar per loss item [W].
+
+    Parameters
+    ----------
+    summary : Summary
+        Its ``loss_items()`` (item -> W, in stacking order) are drawn.
+    title : str, optional
+        Default: the total loss and the efficiency.
+
+    Returns
+    -------
+    Figure
+        One axes; ``ax.containers[0]`` holds one bar per loss item, top to
+        bottom in the order of ``summary.loss_items()``, each with the item's
+        key as ``gid``.
+    """
+    from bucksim.analysis.loss_items import LOSS_ITEMS, item_label
+    from bucksim.model.units import format_si
+
+    items = summary.loss_items()
+    names = list(items)
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    y = np.arange(len(names))[::-1]
+    colours = [ITEM_COLOURS[LOSS_ITEMS.index(n) % len(ITEM_COLOURS)] for n in names]
+    bars = ax.barh(y, [items[n] for n in names], color=colours)
+    for bar, name in zip(bars, names):
+        bar.set_gid(name)
+    ax.set_yticks(y, [item_label(n) for n in names], fontsize="small")
+    ax.set_xlabel(_label("loss", "W"))
+    _eng_axis(ax.xaxis, "W")
+    ax.grid(True, axis="x", color="#e3e3e3", linewidth=0.6)
+    ax.set_axisbelow(True)
+    if title is None:
+        title = (f"loss {format_si(summary.power.loss, 'W')}, efficiency "
+                 f"{100 * summary.efficiency:.2f} % ({summary.mode.upper()})")
+    ax.set_title(title, fontsize="medium")
+    return fig
+
+
+# ----------------------------------------------------------------------------- steady state
+
+def floquet_figure(steady, *, size=(5.0, 5.0)):
+    """The Floquet multipliers of a periodic steady state in the complex plane, with the
+    unit circle (a multiplier on or outside it: the periodic state is not stable).
+
+    Returns
+    -------
+    Figure
+        ``ax.lines[0]`` is the unit circle, ``ax.lines[1]`` the multipliers
+        (markers only, one point each).
+    """
+    mu = np.asarray(steady.floquet, dtype=complex).ravel()
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    phi = np.linspace(0.0, 2.0 * np.pi, 361)
+    ax.plot(np.cos(phi), np.sin(phi), color="#8c8c8c", linewidth=0.8, label="unit circle")
+    ax.plot(mu.real, mu.imag, linestyle="none", marker="x", markersize=8, color="#c8553d",
+            label="Floquet multipliers")
+    ax.axhline(0.0, color="#e3e3e3", linewidth=0.6)
+    ax.axvline(0.0, color="#e3e3e3", linewidth=0.6)
+    reach = max(1.1, 1.1 * float(np.max(np.abs(mu)))) if mu.size and np.all(
+        np.isfinite(mu)) else 1.1
+    ax.set_xlim(-reach, reach)
+    ax.set_ylim(-reach, reach)
+    ax.set_aspect("equal")
+    ax.set_xlabel("real part")
+    ax.set_ylabel("imaginary part")
+    ax.legend(frameon=False, fontsize="small", loc="upper right")
+    largest = float(np.max(np.abs(mu))) if mu.size else float("nan")
+    ax.set_title(f"largest |multiplier| {largest:.4g} ({steady.method})", fontsize="medium")
+    return fig
+
+
+def orbit_figure(steady, run, *, size=(6.0, 5.0)):
+    """The periodic orbit in the state plane: ``iL`` [A] against ``vC`` [V] over the
+    last period of ``run`` (a run started on ``steady``), the periodic state ``x`` marked.
+
+    Returns
+    -------
+    Figure
+        ``ax.lines[0]`` is the orbit (x: vC, y: iL), ``ax.lines[1]`` the
+        periodic state (one point).
+    """
+    t_end = float(run.t_end)
+    start = max(float(run.segments.t0[0]), t_end - run.period)
+    pts = waveform_points(run, ["iL", "vC"], (start, t_end))
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    ax.plot(pts["vC"], pts["iL"], color="#1f3b57", linewidth=1.0, label="one period")
+    x = np.asarray(steady.x, dtype=float)
+    ax.plot([x[1]], [x[0]], linestyle="none", marker="o", color="#c8553d",
+            label="periodic state x")
+    ax.set_xlabel(_label("capacitor voltage vC", "V"))
+    ax.set_ylabel(_label("inductor current iL", "A"))
+    _eng_axis(ax.xaxis, "V")
+    _eng_axis(ax.yaxis, "A")
+    ax.grid(True, color="#e3e3e3", linewidth=0.6)
+    ax.legend(frameon=False, fontsize="small")
+    ax.set_title(f"{run.scenario.title}: periodic orbit", fontsize="medium")
+    return fig
+
+
+# ----------------------------------------------------------------------------- tables
+
+def column_figure(x, y, *, x_label, y_label, x_unit=None, y_unit=None, failed=None,
+                  title="", log=False, size=(7.0, 4.5)):
+    """One table column against another: points sorted by ``x``.
+
+    Parameters
+    ----------
+    x, y : array_like
+        The two columns (same length).
+    x_label, y_label : str
+        Axis names; ``x_unit``/``y_unit`` (SI) add engineering prefixes.
+    failed : array_like of bool, optional
+        Points left out (their metrics are NaN).
+    log : bool
+        A logarithmic x axis.
+
+    Returns
+    -------
+    Figure
+        ``ax.lines[0]`` holds the points that did not fail, in order of ``x``.
+    """
+    x = np.asarray(x, dtype=float)
+    y = np.asarray(y, dtype=float)
+    keep = np.ones(x.shape, dtype=bool) if failed is None else ~np.asarray(failed, dtype=bool)
+    order = np.argsort(x[keep], kind="stable")
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    ax.plot(x[keep][order], y[keep][order], color="#1f3b57", marker="o", markersize=4)
+    if log:
+        ax.set_xscale("log")
+    for axis, text, unit in ((ax.xaxis, x_label, x_unit), (ax.yaxis, y_label, y_unit)):
+        shown = text if unit in (None, "", "1") else _label(text, unit)
+        axis.set_label_text(shown)
+        if unit not in (None, "", "1"):
+            _eng_axis(axis, unit)
+    ax.grid(True, which="both", color="#e3e3e3", linewidth=0.6)
+    if title:
+        ax.set_title(title, fontsize="medium")
+    return fig
+
+
+def crosscheck_figure(check, *, size=(8.0, 5.0)):
+    """Closed-form budget against the waveform integrals, item by item [W].
+
+    Returns
+    -------
+    Figure
+        ``ax.containers[0]``: closed form, ``ax.containers[1]``: waveforms,
+        one bar per item that has both values.
+    """
+    rows = [r for r in check.rows if r["simulated"] is not None]
+    fig = _figure(size)
+    ax = fig.add_subplot()
+    y = np.arange(len(rows))[::-1]
+    ax.barh(y + 0.2, [r["closed_form"] for r in rows], height=0.4, color="#9cc3e6",
+            label="closed form")
+    ax.barh(y - 0.2, [r["simulated"] for r in rows], height=0.4, color="#3b6ea5",
+            label="waveforms")
+    ax.set_yticks(y, [r["item"] for r in rows], fontsize="small")
+    ax.set_xlabel(_label("power", "W"))
+    _eng_axis(ax.xaxis, "W")
+    ax.grid(True, axis="x", color="#e3e3e3", linewidth=0.6)
+    ax.set_axisbelow(True)
+    ax.legend(frameon=False, fontsize="small")
+    ax.set_title("closed-form budget and waveform integrals", fontsize="medium")
+    return fig

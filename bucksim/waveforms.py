@@ -9,6 +9,7 @@ uniform samples are derived data for plots, never the source of metrics.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -19,6 +20,11 @@ from bucksim.analysis.summarize import summarize
 from bucksim.io.hdf5 import save_run
 from bucksim.io.runfile import read_run
 from bucksim.model.stage import CONDUCTION_NAMES, STATE_NAMES, UNITS, Stage
+
+if TYPE_CHECKING:
+    from bucksim.engine.controlled import ControllerState
+    from bucksim.model.scenario import Scenario
+    from bucksim.steady.result import SteadyState
 
 #: Signals every run can evaluate (see :meth:`bucksim.model.stage.Stage.signal`).
 SIGNALS = ("iL", "vC", "vo", "io", "ic", "iin", "vsw", "vin",
@@ -55,22 +61,58 @@ class SegmentTable:
         return np.array(CONDUCTION_NAMES)[self.conduction]
 
 
+@dataclass(init=False, eq=False, repr=False, slots=True)
 class Run:
     """The result of :func:`bucksim.simulate`: segments plus what evaluates them.
+
+    Every attribute is declared here (the class has slots: nothing else can be
+    attached to a run).
 
     Attributes
     ----------
     scenario : Scenario
     stage : Stage
+    table : TransitionTable
+        Exact transition tables of the stage's systems.
     segments : SegmentTable
     t_end : float   time reached [s]
     x_end : ndarray   state at ``t_end``
-    status : int    0 completed, 1 diverged
+    status : int    0 completed, 1 diverged, 3 closed loop did not settle
     message : str
+    steady_state : SteadyState or None
+        The shooting result the run started from (``run.start =
+        "steady-state"``, :func:`bucksim.simulation.simulate_settled`); None
+        for a run from rest or a given state, and for a run read from a file.
+    controller_state : ControllerState or None
+        Closed loop only: the digital compensator's state at ``t_end``.
+    duty : ndarray or None
+        Closed loop only: the duty of each period [-] (NaN where a period did
+        not start).
+    control_output : ndarray or None
+        Closed loop only: the compensator output of each period.
+    path : str or None
+        The run file this run was read from (None: simulated in this process).
     success : bool
     """
 
-    def __init__(self, scenario, stage: Stage, table: TransitionTable, result: EngineResult):
+    scenario: Scenario
+    stage: Stage
+    table: TransitionTable
+    segments: SegmentTable
+    t_end: float
+    x_end: np.ndarray
+    status: int
+    message: str
+    steady_state: SteadyState | None
+    controller_state: ControllerState | None
+    duty: np.ndarray | None
+    control_output: np.ndarray | None
+    path: str | None
+    _signal_tables: dict
+
+    def __init__(self, scenario, stage: Stage, table: TransitionTable, result: EngineResult, *,
+                 steady_state=None, controller_state=None, duty=None, control_output=None,
+                 path=None):
         self.scenario = scenario
         self.stage = stage
         self.table = table
@@ -80,7 +122,21 @@ class Run:
         self.x_end = result.x_end
         self.status = result.status
         self.message = result.message
+        self.steady_state = steady_state
+        self.controller_state = controller_state
+        self.duty = duty
+        self.control_output = control_output
+        self.path = None if path is None else str(path)
         self._signal_tables = {}
+
+    @property
+    def starts_settled(self) -> bool:
+        """True when the run starts on its periodic steady state: it was started
+        from a shooting result, or (a run read from a file) its scenario says
+        ``run.start = "steady-state"``."""
+        if self.path is None:
+            return self.steady_state is not None
+        return self.scenario.run.start == "steady-state"
 
     @property
     def success(self) -> bool:
@@ -136,12 +192,27 @@ class Run:
     def augmented_at(self, times):
         """Augmented states ``z = [iL, vC, ..., 1]`` at ``times`` and their segment indices."""
         idx, times = self.locate(times)
-        tau = times - self.segments.t0[idx]
-        out = np.empty((times.shape[0], self.stage.n + 1))
+        return self.states_in(idx, times - self.segments.t0[idx]), idx
+
+    def states_in(self, index, tau):
+        """Augmented states ``z`` at offsets ``tau`` [s] inside segments ``index``.
+
+        An offset equal to a segment's length gives the left limit at its end
+        (evaluated in that segment), which a switch-node edge needs.
+        """
+        index = np.ascontiguousarray(index, dtype=np.int64)
+        tau = np.ascontiguousarray(tau, dtype=float)
+        out = np.empty((tau.shape[0], self.stage.n + 1))
         tbl = self.table
         evaluate(tbl.matrices, tbl.exponentials, tbl.steps, self.segments.system,
-                 self.segments.x0, idx.astype(np.int64), tau, out)
-        return out, idx
+                 self.segments.x0, index, tau, out)
+        return out
+
+    def segment_values(self, signal: str, index, tau):
+        """``signal`` at offsets ``tau`` [s] inside segments ``index`` (left limits at ends)."""
+        index = np.asarray(index, dtype=np.int64)
+        c = self.signal_table(signal)[self.segments.system[index]]
+        return np.einsum("ij,ij->i", c, self.states_in(index, tau))
 
     def at(self, times, signal: str | None = None):
         """State ``[iL [A], vC [V], ...]`` at ``times`` [s], or one signal's values.
@@ -227,6 +298,39 @@ class Run:
             raise SimulationError(f"{sc.source or sc.title}: {self.message}; no summary")
         return out
 
+    def plot(self, signals=("iL", "vsw", "vo"), window=None, **kw):
+        """Figure: stacked waveforms over ``window = (start, stop)`` [s] (default the
+        whole run) with the conduction-state band
+        (:func:`bucksim.plotting.waveform_figure`)."""
+        from bucksim.plotting import waveform_figure
+        return waveform_figure(self, signals, window, **kw)
+
+    def to_dict(self) -> dict:
+        """Plain values: the scenario (resolved, SI), the outcome, the segment table as
+        columns (conduction states by name), the steady state the run started
+        from and, in closed loop, the per-period duty and compensator output
+        (None elsewhere). Sizes grow with the run: for long runs prefer
+        :meth:`save`."""
+        from bucksim.model.scenario import scenario_to_dict
+
+        seg = self.segments
+
+        def listed(a):
+            return None if a is None else np.asarray(a, dtype=float).tolist()
+
+        return {
+            "scenario": scenario_to_dict(self.scenario),
+            "status": int(self.status), "message": self.message, "success": self.success,
+            "t_end": float(self.t_end), "x_end": listed(self.x_end),
+            "state_names": list(self.stage.state_names),
+            "segments": {"t0": listed(seg.t0), "dt": listed(seg.dt),
+                         "conduction": [str(c) for c in seg.conduction_names()],
+                         "system": [int(v) for v in seg.system], "x0": listed(seg.x0)},
+            "steady_state": None if self.steady_state is None else self.steady_state.to_dict(),
+            "duty": listed(self.duty), "control_output": listed(self.control_output),
+            "path": self.path,
+        }
+
     def save(self, path, compression=None):
         """Write this run to the HDF5 file ``path`` (see :mod:`bucksim.io.hdf5`)."""
         return save_run(self, path, compression)
@@ -241,7 +345,7 @@ def open_run(path) -> Run:
     Refusals (StorageError, FileNotFoundError) are those of
     :func:`bucksim.io.runfile.read_run`.
     """
-    return Run(*read_run(path))
+    return Run(*read_run(path), path=path)
 
 
 def first_non_finite(tree, path=""):
