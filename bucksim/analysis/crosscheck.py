@@ -34,7 +34,20 @@ def _sim_value(summary: dict, key: str) -> float | None:
 
 @dataclass
 class CrossCheck:
-    """Rows of (item, closed form [W], simulated [W], difference, reason)."""
+    """Result of :func:`crosscheck`: the closed-form budget beside the waveforms.
+
+    Attributes
+    ----------
+    rows : list of dict
+        One per item: ``item``, ``closed_form`` [W], ``simulated`` [W] (None
+        where the simulation has no such item), ``difference`` [W],
+        ``percent`` and ``reason`` (plain words when they differ by more than
+        :data:`TOLERANCE`).
+    summary : dict
+        The simulated summary's ``to_dict()``.
+    budget : dict
+        The closed-form budget's ``to_dict()``.
+    """
 
     rows: list
     summary: dict
@@ -42,6 +55,17 @@ class CrossCheck:
 
     def to_dict(self) -> dict:
         return {"rows": self.rows, "budget": self.budget, "summary": self.summary}
+
+    def to_pandas(self):
+        """The rows as a ``pandas.DataFrame`` (pandas: the ``tables`` extra)."""
+        from bucksim.frames import require_pandas
+        return require_pandas().DataFrame.from_records(self.rows)
+
+    def plot(self, **kw):
+        """Figure: closed form and waveforms side by side, item by item
+        (:func:`bucksim.plotting.crosscheck_figure`)."""
+        from bucksim.plotting import crosscheck_figure
+        return crosscheck_figure(self, **kw)
 
     def to_json(self, **kw) -> str:
         return json.dumps(self.to_dict(), **kw)

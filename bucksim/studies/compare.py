@@ -41,7 +41,6 @@ import io
 import math
 from dataclasses import dataclass
 
-
 from bucksim.errors import ScenarioError, SimulationError
 from bucksim.studies.levels import (
     LoadLevel,
@@ -52,7 +51,8 @@ from bucksim.studies.levels import (
     require_open_loop,
     with_level,
 )
-from bucksim.analysis.summary import LOSS_ITEMS
+from bucksim.analysis.loss_items import LOSS_ITEMS
+from bucksim.analysis.summary import Summary
 from bucksim.model.parts import STRATEGIES, STRATEGY_NAMES, Diode, Mosfet
 from bucksim.studies.profile import (
     ProfileResult,
@@ -149,28 +149,15 @@ def regulated_point(scenario, target: float, guess: float | None = None):
 
 # ----------------------------------------------------------------------------- rows
 
-def loss_items(summary: dict, strategy: str) -> dict:
-    """Loss items [W] of a summary dict (keys of :data:`LOSS_ITEMS`); they add up to
-    ``power.loss``."""
-    d = summary["devices"]
-    out = {}
-    for dev in ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode"):
-        if dev not in d:
-            continue
-        if dev == "low_side" and strategy == "asynchronous":
-            # a diode: its reverse recovery is dissipated in (and booked to) the high side
-            out["freewheel_diode.conduction"] = d[dev]["conduction_loss"]
-            continue
-        out[f"{dev}.conduction"] = d[dev]["conduction_loss"]
-        if not dev.endswith("body_diode"):
-            out[f"{dev}.switching"] = d[dev]["switching_loss"]
-    out["inductor.dcr"] = d["inductor"]["conduction_loss"]
-    if "core_loss" in d["inductor"]:
-        out["inductor.core"] = d["inductor"]["core_loss"]
-    out["output_capacitor.esr"] = d["output_capacitor"]["conduction_loss"]
-    if "supply" in d:
-        out["supply.resistance"] = d["supply"]["conduction_loss"]
-    return out
+def loss_items(summary, strategy: str) -> dict:
+    """Loss items [W] of a summary (a :class:`~bucksim.analysis.summary.Summary` or its
+    ``to_dict()``), keys of :data:`LOSS_ITEMS`; they add up to ``power.loss``
+    (see :meth:`Summary.loss_items`)."""
+    if not isinstance(summary, Summary):
+        summary = Summary.from_dict(summary, strategy)
+    elif summary.strategy != strategy:
+        summary = dataclasses.replace(summary, strategy=strategy)
+    return summary.loss_items()
 
 
 @dataclass(frozen=True)
@@ -227,14 +214,14 @@ def _row(scenario, strategy, level, target, guess):
         _, run = periodic_run(sc)
     else:
         sc, _, run = regulated_point(sc, target, guess)
-    s = run.summary(1).to_dict()
-    p = s["power"]
+    s = run.summary(1)
+    p = s.power
     return Row(strategy=strategy, level=level, duty=sc.control.duty,
-               load_current=cycle_mean(run, "io"), output_voltage=s["output_voltage"]["mean"],
-               mode=s["mode"], reverse_current=s["reverse_current"],
-               efficiency=s["efficiency"], input_power=p["input"], output_power=p["output"],
-               loss=p["input"] - p["output"], losses=loss_items(s, strategy),
-               energy_balance_error=float(s["energy_balance_error"]))
+               load_current=cycle_mean(run, "io"), output_voltage=s.output_voltage.mean,
+               mode=s.mode, reverse_current=s.reverse_current,
+               efficiency=s.efficiency, input_power=p.input, output_power=p.output,
+               loss=p.input - p.output, losses=loss_items(s, strategy),
+               energy_balance_error=float(s.energy_balance_error))
 
 
 # ----------------------------------------------------------------------------- profile
@@ -300,27 +287,48 @@ class Comparison:
                 "profile": None if self.profile is None else self.profile.to_dict(),
                 "caution": CAUTION}
 
+    def records(self) -> list:
+        """One dict per strategy and load (sweep levels, in order): the columns of
+        :meth:`to_csv` and :meth:`to_pandas` with their values (SI units; a loss
+        item a row lacks is 0, NaN in a failed row; ``error`` None when evaluated)."""
+        present = self._present_items()
+        out = []
+        for s in self.strategies:
+            for r in self.rows[s]:
+                rec = {"strategy": s, "load_key": r.level.key, "load_value": r.level.value,
+                       "load_current_A": r.load_current, "output_voltage_V": r.output_voltage,
+                       "duty": r.duty, "mode": r.mode, "reverse_current": r.reverse_current,
+                       "efficiency": r.efficiency, "input_W": r.input_power,
+                       "output_W": r.output_power, "loss_W": r.loss}
+                rec.update({f"{it}_W": r.losses.get(it, 0.0 if r.ok else math.nan)
+                            for it in present})
+                rec["error"] = r.error
+                out.append(rec)
+        return out
+
+    def _present_items(self):
+        return [it for it in LOSS_ITEMS
+                if any(it in r.losses for rows in self.rows.values() for r in rows)]
+
+    def to_pandas(self):
+        """The :meth:`records` as a ``pandas.DataFrame`` (pandas: the ``tables`` extra)."""
+        from bucksim.frames import require_pandas
+        return require_pandas().DataFrame.from_records(self.records())
+
     def to_csv(self, path=None) -> str:
         """One line per strategy and load; powers [W], current [A], voltage [V].
 
         Writes ``path`` when given; returns the CSV text either way.
         """
-        present = [it for it in LOSS_ITEMS
-                   if any(it in r.losses for rows in self.rows.values() for r in rows)]
+        recs = self.records()
         head = ["strategy", "load_key", "load_value", "load_current_A", "output_voltage_V",
                 "duty", "mode", "reverse_current", "efficiency", "input_W", "output_W",
-                "loss_W"] + [f"{it}_W" for it in present] + ["error"]
+                "loss_W"] + [f"{it}_W" for it in self._present_items()] + ["error"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(head)
-        for s in self.strategies:
-            for r in self.rows[s]:
-                w.writerow([s, r.level.key, repr(r.level.value), repr(r.load_current),
-                            repr(r.output_voltage), repr(r.duty), r.mode,
-                            int(r.reverse_current), repr(r.efficiency), repr(r.input_power),
-                            repr(r.output_power), repr(r.loss)]
-                           + [repr(r.losses.get(it, 0.0 if r.ok else math.nan))
-                              for it in present] + [r.error or ""])
+        for rec in recs:
+            w.writerow([_csv_cell(name, rec[name]) for name in head])
         text = buf.getvalue()
         if path is not None:
             with open(path, "w", encoding="utf-8", newline="") as f:
@@ -345,18 +353,7 @@ class Comparison:
             cells = "".join(_cells(self.rows[s][k]) for s in self.strategies)
             lines.append(f"{lv!s:>10}{io:>10}{cells}")
         if self.profile is not None:
-            pr = self.profile
-            lines += ["", "load profile: " + ", ".join(
-                f"{lv} {100 * sh:.0f} %" for lv, sh in zip(pr.profile.levels, pr.profile.shares))]
-            for s in self.strategies:
-                if not math.isfinite(pr.weighted_efficiency[s]):
-                    lines.append(f"  {STRATEGY_NAMES[s]:<18} not rated: a profile level "
-                                 "failed")
-                    continue
-                lines.append(f"  {STRATEGY_NAMES[s]:<18} weighted efficiency "
-                             f"{100 * pr.weighted_efficiency[s]:.2f} %   lost "
-                             f"{format_si(pr.energy_lost_per_day[s], 'Wh', 4)}/day")
-            lines += ["", f"best: {pr.decision}"]
+            lines += [""] + self.profile.table_lines(self.strategies)
         failed = self.failures
         if failed:
             lines += ["", "failed points:"] + [f"  {r.error}" for r in failed]
@@ -366,13 +363,37 @@ class Comparison:
     def __str__(self):
         return self.table()
 
+    def plot(self, kind: str = "efficiency", *, loads=None, log=None, **kw):
+        """Figure of the comparison.
+
+        Parameters
+        ----------
+        kind : {"efficiency", "breakdown"}
+            ``"efficiency"``: efficiency against load, one line per strategy
+            (:func:`bucksim.plotting.efficiency_figure`); ``"breakdown"``:
+            stacked loss items per strategy at ``loads``
+            (:func:`bucksim.plotting.loss_breakdown_figure`).
+        loads : sequence, optional
+            For ``"breakdown"``: sweep levels to show (default all of them).
+        log : bool, optional
+            For ``"efficiency"``: a log load axis (default the comparison's own).
+        """
+        from bucksim import plotting
+
+        if kind == "efficiency":
+            return plotting.efficiency_figure(self, log=log, **kw)
+        if kind == "breakdown":
+            picks = [lv.value for lv in self.levels] if loads is None else loads
+            return plotting.loss_breakdown_figure(self, picks, **kw)
+        raise ValueError(f"kind must be 'efficiency' or 'breakdown', got {kind!r}")
+
     def efficiency_figure(self, log=None):
-        from bucksim.plotting import efficiency_figure
-        return efficiency_figure(self, log=log)
+        """Same as ``plot("efficiency", log=log)``."""
+        return self.plot("efficiency", log=log)
 
     def loss_breakdown_figure(self, loads):
-        from bucksim.plotting import loss_breakdown_figure
-        return loss_breakdown_figure(self, loads)
+        """Same as ``plot("breakdown", loads=loads)``."""
+        return self.plot("breakdown", loads=loads)
 
 
 def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
@@ -455,6 +476,14 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
     return Comparison(title=scenario.title, strategies=tuple(strategies), levels=tuple(levels),
                       rows=rows, diode=used_diode, target_voltage=target, log=bool(log),
                       profile=pres)
+
+
+def _csv_cell(name, value) -> str:
+    """CSV text of one :meth:`Comparison.records` value: floats by ``repr`` (exact
+    round trip), the reverse-current flag as 0/1, no error as an empty cell."""
+    if name == "reverse_current":
+        return str(int(value))
+    return "" if value is None else value if isinstance(value, str) else repr(value)
 
 
 def _cells(row) -> str:

@@ -185,6 +185,21 @@ class ProfileResult:
                 "energy_lost_per_day_wh": dict(self.energy_lost_per_day),
                 "best": self.best, "decision": self.decision}
 
+    def table_lines(self, strategies) -> list:
+        """The report's lines: the levels and shares, each strategy's weighted
+        efficiency and energy lost per day, and the verdict."""
+        pr = self.profile
+        lines = ["load profile: " + ", ".join(
+            f"{lv} {100 * sh:.0f} %" for lv, sh in zip(pr.levels, pr.shares))]
+        for s in strategies:
+            if not np.isfinite(self.weighted_efficiency[s]):
+                lines.append(f"  {STRATEGY_NAMES[s]:<18} not rated: a profile level failed")
+                continue
+            lines.append(f"  {STRATEGY_NAMES[s]:<18} weighted efficiency "
+                         f"{100 * self.weighted_efficiency[s]:.2f} %   lost "
+                         f"{format_si(self.energy_lost_per_day[s], 'Wh', 4)}/day")
+        return lines + ["", f"best: {self.decision}"]
+
 
 def _profile_result(profile, rows_by_strategy) -> ProfileResult:
     shares = np.array(profile.shares)

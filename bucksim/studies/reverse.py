@@ -240,7 +240,16 @@ class Boundary:
 
 @dataclass(frozen=True)
 class ReverseCurrentResult:
-    """Result of :func:`reverse_current`."""
+    """Result of :func:`reverse_current`.
+
+    Attributes
+    ----------
+    title : str
+    strategy : str
+    frequency : float        switching frequency [Hz]
+    points : tuple of ReversePoint   one per load level, in the order given
+    boundary : Boundary
+    """
 
     title: str
     strategy: str
@@ -285,10 +294,24 @@ class ReverseCurrentResult:
     def __str__(self):
         return self.table()
 
-    def plot(self):
-        """Figure: minimum inductor current vs load current, with the boundaries."""
+    def plot(self, **kw):
+        """Figure: minimum inductor current vs load current, with the boundaries
+        (:func:`bucksim.plotting.reverse_figure`)."""
         from bucksim.plotting import reverse_figure
-        return reverse_figure(self)
+        return reverse_figure(self, **kw)
+
+    def to_pandas(self):
+        """The points as a ``pandas.DataFrame``, one row per load level: the level
+        (``load_key``, ``load_value``) and the columns of :meth:`ReversePoint.to_dict`
+        (pandas: the ``tables`` extra)."""
+        from bucksim.frames import require_pandas
+
+        recs = []
+        for p in self.points:
+            rec = p.to_dict()
+            load = rec.pop("load")
+            recs.append({"load_key": load["key"], "load_value": load["value"], **rec})
+        return require_pandas().DataFrame.from_records(recs)
 
 
 # ----------------------------------------------------------------------------- analysis

@@ -31,6 +31,7 @@ import csv
 import io
 import math
 import os
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -132,6 +133,7 @@ def _parse_cell(text):
         return text
 
 
+@dataclass(init=False, eq=False, repr=False)
 class SweepTable:
     """Rows of a sweep, stored as one numpy array per column.
 
@@ -143,7 +145,15 @@ class SweepTable:
         Wall time of the sweep that produced it [s] (``nan`` when read from a file).
     resumed : int
         Points taken over from an earlier, interrupted run.
+
+    Read a column with :meth:`column` (or ``table[name]``); :meth:`to_dict`,
+    :meth:`to_pandas` and :meth:`plot` give the other views.
     """
+
+    columns: list
+    _data: dict
+    elapsed: float
+    resumed: int
 
     def __init__(self, columns, data):
         self.columns = list(columns)
@@ -256,6 +266,48 @@ class SweepTable:
     def __repr__(self):
         return (f"<SweepTable {len(self)} points, {len(self.columns)} columns, "
                 f"{int(self.failed.sum())} failed>")
+
+    @property
+    def inputs(self):
+        """The input columns (varied scenario keys), in order."""
+        return [c for c in self.columns if is_input(c)]
+
+    # ---------------------------------------------------------------- views
+
+    def to_dict(self) -> dict:
+        """Plain values: ``columns`` in order, ``data`` (column -> list), ``elapsed``
+        [s] and ``resumed``."""
+        return {"columns": list(self.columns),
+                "data": {c: self._data[c].tolist() for c in self.columns},
+                "elapsed": float(self.elapsed), "resumed": int(self.resumed)}
+
+    def to_pandas(self):
+        """The table as a ``pandas.DataFrame``, columns in order and with their dtypes
+        (pandas: the ``tables`` extra)."""
+        from bucksim.frames import data_frame
+        return data_frame({c: self._data[c] for c in self.columns})
+
+    def plot(self, y: str, x: str | None = None, *, log: bool = False, **kw):
+        """Figure: column ``y`` against the swept key ``x``, failed points left out.
+
+        ``x`` defaults to the first input column whose value varies. Units of
+        both come from :func:`column_unit` (see
+        :func:`bucksim.plotting.column_figure`).
+        """
+        from bucksim.plotting import column_figure
+
+        if x is None:
+            varied = [c for c in self.inputs if np.unique(self.column(c)).shape[0] > 1]
+            if not varied:
+                raise ValueError("the sweep table has no varied input column to plot "
+                                 f"against; give x= one of: {', '.join(self.columns)}")
+            x = varied[0]
+        for name in (x, y):
+            if self.column(name).dtype.kind not in "fi":
+                raise ValueError(f"column {name!r} holds text; plot needs a numeric column")
+        return column_figure(self.column(x), self.column(y), x_label=x, y_label=y,
+                             x_unit=column_unit(x), y_unit=column_unit(y), failed=self.failed,
+                             log=log, **kw)
 
     # ---------------------------------------------------------------- writing
 
