@@ -41,7 +41,7 @@ def signal_mean(run, name: str, t_start: float | None = None,
     sig = run.signal_table(name)
     mom = SegmentMoments(run.table.matrices)
     total = 0.0
-    for k, a, b, za in zip(idx, tau_a, tau_b, z_a):
+    for k, a, b, za in zip(idx, tau_a, tau_b, z_a, strict=True):
         if b <= a:
             continue
         s = int(seg.system[k])

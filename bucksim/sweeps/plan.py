@@ -56,7 +56,6 @@ import time
 import numpy as np
 
 from bucksim.errors import SweepError
-
 from bucksim.sweeps.files import ProgressFile, check_resume_target, out_paths, read_progress
 from bucksim.sweeps.table import SweepTable
 
@@ -262,7 +261,7 @@ def plan_points(scenario, vary=None, monte_carlo=None, tolerance=None, seed=0):
     inputs = grid_keys + (list(tolerance) if draws is not None else [])
     points = []
     for combo in grid:
-        values = dict(zip(grid_keys, combo))
+        values = dict(zip(grid_keys, combo, strict=True))
         for j, d in enumerate(draws if draws is not None else [None]):
             point_values = dict(values, **d) if d is not None else values
             points.append((len(points), j if d is not None else None, point_values))
@@ -311,7 +310,7 @@ def check_points_fit(scenario, vary, at_once):
             sc.run, cycles=sc.run.summary_cycles, duration=None))
         try:
             n_states = Stage(settled).n
-        except Exception:  # noqa: BLE001 - that point fails on its own
+        except Exception:
             n_states = 2
         need = run_bytes(settled, n_states)
         if need > worst:
@@ -384,10 +383,6 @@ def sweep(scenario, vary=None, *, monte_carlo=None, tolerance=None, seed=0, work
         The sweep's points, or its points running at once, would not fit in
         memory (naming the key and the figure).
     """
-    from tqdm import tqdm
-
-    from bucksim.sweeps.execute import Runner
-
     t0 = time.perf_counter()
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int)
                                 or workers < 1):
@@ -403,8 +398,26 @@ def sweep(scenario, vary=None, *, monte_carlo=None, tolerance=None, seed=0, work
     finished = {int(r["point"]) for r in done}
     pending = [p for p in plan.points if p[0] not in finished]
     log = ProgressFile(csv_path, header, done) if csv_path is not None else None
+    new_rows = _run_pending(scenario, pending, workers, cluster, batch, log,
+                            total=len(plan), initial=len(done), progress=progress)
+    table = SweepTable.from_rows(done + new_rows)
+    if csv_path is not None:
+        table.to_csv(csv_path)
+    if h5_path is not None:
+        table.to_hdf5(h5_path, attrs=_file_attrs(scenario, plan, seed, tolerance))
+    table.elapsed = time.perf_counter() - t0
+    table.resumed = len(done)
+    return table
+
+
+def _run_pending(scenario, pending, workers, cluster, batch, log, *, total, initial, progress):
+    """Run the pending points in batches; rows as they finish, logged to ``log``."""
+    from tqdm import tqdm
+
+    from bucksim.sweeps.execute import Runner
+
     new_rows = []
-    bar = tqdm(total=len(plan), initial=len(done), unit="pt", desc="sweep", file=sys.stderr,
+    bar = tqdm(total=total, initial=initial, unit="pt", desc="sweep", file=sys.stderr,
                disable=True if progress is False else None, dynamic_ncols=True)
     try:
         if pending:
@@ -419,14 +432,7 @@ def sweep(scenario, vary=None, *, monte_carlo=None, tolerance=None, seed=0, work
                         bar.update(len(rows))
     finally:
         bar.close()
-    table = SweepTable.from_rows(done + new_rows)
-    if csv_path is not None:
-        table.to_csv(csv_path)
-    if h5_path is not None:
-        table.to_hdf5(h5_path, attrs=_file_attrs(scenario, plan, seed, tolerance))
-    table.elapsed = time.perf_counter() - t0
-    table.resumed = len(done)
-    return table
+    return new_rows
 
 
 def _file_attrs(scenario, plan, seed, tolerance):
@@ -434,8 +440,8 @@ def _file_attrs(scenario, plan, seed, tolerance):
 
     import tomli_w
 
-    from bucksim.version import package_version
     from bucksim.model.scenario import scenario_to_dict
+    from bucksim.version import package_version
 
     attrs = {"bucksim_version": package_version(), "title": scenario.title,
              "scenario_toml": tomli_w.dumps(scenario_to_dict(scenario)),
