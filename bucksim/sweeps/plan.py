@@ -310,7 +310,7 @@ def check_points_fit(scenario, vary, at_once):
             sc.run, cycles=sc.run.summary_cycles, duration=None))
         try:
             n_states = Stage(settled).n
-        except Exception:
+        except Exception:  # that point fails on its own, when it runs
             n_states = 2
         need = run_bytes(settled, n_states)
         if need > worst:
