@@ -1,9 +1,9 @@
 """Switching-event losses on top of ideal-switch waveforms.
 
 The engine's switches are ideal; the energy of each commutation is added at
-the instant it happens, with the exact inductor current there. Rules, per
-transition between consecutive segments (``i`` = iL at the instant, ``V`` =
-the voltage the switch node must swing):
+the instant it happens, with the exact inductor current there [1]_. Rules
+(common practice [2]_), per transition between consecutive segments (``i`` =
+iL at the instant, ``V`` = the voltage the switch node must swing):
 
 ============================  =========================================================
 transition                    energy [J]

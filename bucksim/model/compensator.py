@@ -1,4 +1,4 @@
-"""Closed-loop controllers: compensator design data and the controlled engine driver.
+"""The compensator of a closed loop, from its design data: digital or analog realisation.
 
 The compensator is given as a designer writes it, in Hz:
 
@@ -8,11 +8,14 @@ The compensator is given as a designer writes it, in Hz:
              \\frac{\\prod_i (1 + s / 2\\pi f_{z,i})}{\\prod_j (1 + s / 2\\pi f_{p,j})}
 
 (``gain`` = ``omega_I`` [1/s]; ``zeros``, ``poles`` [Hz]; one zero gives PI,
-one zero and one pole type II, two of each type III). With
+one zero and one pole type II, two of each type III [1]_). With
 ``integrator = false`` the leading ``1/s`` is dropped and ``gain`` is a
-plain gain. The controller is digital: sampled once per period and
-discretised with the bilinear (Tustin) transform, the usual way of
-carrying an analog design into a sampled loop.
+plain gain. Two realisations: :func:`design` gives the digital controller,
+sampled once per period and discretised with the bilinear (Tustin)
+transform [2]_, the usual way of carrying an analog design into a sampled
+loop; :func:`analog_realization` gives the continuous-time state space of an
+analog loop, a cascade of first-order sections. The engine runs either
+(``bucksim.engine.controlled``); this module holds only the design data.
 
 References
 ----------
