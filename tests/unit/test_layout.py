@@ -48,8 +48,6 @@ LONG_MODULES = {
 LONG_FUNCTIONS = {
     "bucksim/engine/kernels.py:find_zero": "engine contract",
     "bucksim/engine/kernels.py:taylor_zero": "engine contract",
-    "bucksim/analysis/budget.py:estimate": "shared pieces",
-    "bucksim/sweeps/plan.py:sweep": "shared pieces",
 }
 LONG_CYCLE_LOOP = "phases and controller decisions become helpers"
 
