@@ -24,9 +24,9 @@ import dataclasses
 
 import numpy as np
 
-from bucksim.model.compensator import design
 from bucksim.engine.controlled import ControllerState, integrate_closed_loop
 from bucksim.engine.tables import build_table
+from bucksim.model.compensator import design
 from bucksim.model.stage import Stage
 from bucksim.steady.newton import shoot
 from bucksim.steady.result import SteadyState, check_settings, periodic_scenario

@@ -35,6 +35,7 @@ from bucksim.model.stage import IDLE, Stage, zero_current_states
 from bucksim.steady.newton import shoot
 from bucksim.steady.result import SteadyState, check_settings, periodic_scenario
 
+
 class PeriodMap:
     """The exact one-period map of a scenario and its monodromy matrix."""
 
@@ -71,7 +72,8 @@ class PeriodMap:
         for j in range(count):
             s = res.system[j]
             J = expm(Ms[s] * res.dt[j])[:n, :n] @ J
-            if j + 1 < count and res.conduction[j + 1] == IDLE and res.conduction[j] in self._evented:
+            ended = res.conduction[j] in self._evented
+            if j + 1 < count and res.conduction[j + 1] == IDLE and ended:
                 t_next = res.t0[j + 1]
                 if np.min(np.abs(self._edges - t_next)) > 1e-12 * T:
                     z = np.append(res.x0[j + 1], 1.0)
@@ -93,7 +95,8 @@ def _scale(x, x1, res):
 def initial_guess(scenario) -> np.ndarray:
     """Starting point for Newton: the averaged operating point.
 
-    CCM: ``[Io - dI/2, Vo]`` (the valley current: a cycle starts at high-side turn-on) from :func:`bucksim.analysis.budget.operating_point` (the
+    CCM: ``[Io - dI/2, Vo]`` (the valley current: a cycle starts at high-side
+    turn-on) from :func:`bucksim.analysis.budget.operating_point` (the
     capacitor's mean current is zero, so ``vC = Vo``). Where the stage can
     enter DCM (asynchronous, diode emulation) and ``K = 2 L / (R Ts)`` is
     below ``1 - D``, the DCM conversion ratio
@@ -115,7 +118,9 @@ def initial_guess(scenario) -> np.ndarray:
 
 def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1e-12,
                            max_iter: int = 20, max_brute_cycles: int = 200_000) -> SteadyState:
-    """Periodic steady state of an open-loop scenario (see :func:`bucksim.steady.solve.steady_state`).
+    """Periodic steady state of an open-loop scenario.
+
+    Parameters and result: :func:`bucksim.steady.solve.steady_state`.
 
     Shooting (:func:`bucksim.steady.newton.shoot`) on the exact one-period
     map with its exact monodromy matrix; the residual's scale is taken anew
