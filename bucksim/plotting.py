@@ -17,7 +17,6 @@ at its end, so switch-node edges are vertical and never smeared by resampling.
 
 from __future__ import annotations
 
-
 import numpy as np
 
 # matplotlib and the engine are imported inside the functions, so that
@@ -107,8 +106,8 @@ def _state_band(ax, segments):
     for c in range(N_CONDUCTION):
         m = code == c
         if np.any(m):
-            ax.broken_barh(list(zip(t0[m], dt[m])), (0, 1), facecolors=STATE_COLOURS[c],
-                           edgecolors="none", label=STATE_LABELS[c])
+            ax.broken_barh(list(zip(t0[m], dt[m], strict=True)), (0, 1),
+                           facecolors=STATE_COLOURS[c], edgecolors="none", label=STATE_LABELS[c])
             present.append(c)
     ax.set_ylim(0, 1)
     ax.set_yticks([])
@@ -151,7 +150,7 @@ def waveform_figure(run, signals=("iL", "vsw", "vo"), window=None, *, size=(8.0,
     ratios = [3] * len(signals) + [0.35]
     axes = fig.subplots(len(signals) + 1, 1, sharex=True,
                         gridspec_kw={"height_ratios": ratios})
-    for ax, name in zip(axes, signals):
+    for ax, name in zip(axes, signals, strict=False):
         unit = UNITS[name]
         ax.plot(pts["t"], pts[name], color="#1f3b57", linewidth=1.0)
         ax.set_ylabel(_label(SIGNAL_NAMES.get(name, name), unit))
@@ -189,7 +188,7 @@ def efficiency_figure(comparison, log=None, *, size=(8.0, 5.0)):
     if comparison.profile is not None:
         pr = comparison.profile
         first = pr.rows[comparison.strategies[0]]
-        for r, share in zip(first, pr.profile.shares):
+        for r, share in zip(first, pr.profile.shares, strict=True):
             ax.axvline(r.load_current, color="#b0b0b0", linewidth=0.8, linestyle=":",
                        label="_profile")
             ax.annotate(f"{100 * share:.0f} % of time", (r.load_current, 0.02),
@@ -326,7 +325,7 @@ def summary_loss_figure(summary, *, title=None, size=(7.0, 4.5)):
     y = np.arange(len(names))[::-1]
     colours = [ITEM_COLOURS[LOSS_ITEMS.index(n) % len(ITEM_COLOURS)] for n in names]
     bars = ax.barh(y, [items[n] for n in names], color=colours)
-    for bar, name in zip(bars, names):
+    for bar, name in zip(bars, names, strict=True):
         bar.set_gid(name)
     ax.set_yticks(y, [item_label(n) for n in names], fontsize="small")
     ax.set_xlabel(_label("loss", "W"))

@@ -13,17 +13,17 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from bucksim.analysis.summarize import summarize
 from bucksim.engine.driver import EngineResult, TransitionTable
 from bucksim.engine.kernels import STATUS_DIVERGED, evaluate
 from bucksim.errors import SimulationError
-from bucksim.analysis.summarize import summarize
 from bucksim.io.hdf5 import save_run
 from bucksim.io.runfile import read_run
 from bucksim.model.stage import CONDUCTION_NAMES, STATE_NAMES, UNITS, Stage
 
 if TYPE_CHECKING:
     from bucksim.engine.controlled import ControllerState
-    from bucksim.model.scenario import Scenario
+    from bucksim.model.parts import Scenario
     from bucksim.steady.result import SteadyState
 
 #: Signals every run can evaluate (see :meth:`bucksim.model.stage.Stage.signal`).
@@ -144,7 +144,8 @@ class Run:
 
     @property
     def signals(self) -> tuple:
-        """Names this run can evaluate: :data:`SIGNALS`, plus ``u`` and ``vref`` in an analog loop."""
+        """Names this run can evaluate: :data:`SIGNALS`, plus ``u`` and ``vref`` in an
+        analog loop."""
         return SIGNALS + (LOOP_SIGNALS if self.stage.analog else ())
 
     @property

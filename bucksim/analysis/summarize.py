@@ -115,7 +115,7 @@ class WindowIntegrals:
         m = keep.shape[0]
         S = np.zeros((run.table.matrices.shape[0], m, m))
         systems = run.segments.system[idx]
-        for s, z0, d in zip(systems, z_a[:, keep], lengths):
+        for s, z0, d in zip(systems, z_a[:, keep], lengths, strict=True):
             S[s] += mom.second(s, z0, d)
         self.S = S
         self.used = np.unique(systems)

@@ -41,7 +41,11 @@ import io
 import math
 from dataclasses import dataclass
 
+from bucksim.analysis.loss_items import LOSS_ITEMS
+from bucksim.analysis.summary import Summary
 from bucksim.errors import ScenarioError, SimulationError
+from bucksim.model.parts import STRATEGIES, STRATEGY_NAMES, Diode, Mosfet
+from bucksim.model.units import format_si, parse_quantity
 from bucksim.studies.levels import (
     LoadLevel,
     load_kind,
@@ -51,16 +55,12 @@ from bucksim.studies.levels import (
     require_open_loop,
     with_level,
 )
-from bucksim.analysis.loss_items import LOSS_ITEMS
-from bucksim.analysis.summary import Summary
-from bucksim.model.parts import STRATEGIES, STRATEGY_NAMES, Diode, Mosfet
 from bucksim.studies.profile import (
     ProfileResult,
     _profile_result,
     make_profile,
 )
 from bucksim.studies.reverse import CAUTION, cycle_mean
-from bucksim.model.units import format_si, parse_quantity
 
 STRATEGY_ORDER = STRATEGIES
 

@@ -16,9 +16,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from bucksim.errors import ScenarioError
-from bucksim.studies.levels import load_kind, parse_level
 from bucksim.model.parts import STRATEGY_NAMES
 from bucksim.model.units import format_si
+from bucksim.studies.levels import load_kind, parse_level
 
 HOURS_PER_DAY = 24.0
 
@@ -190,7 +190,7 @@ class ProfileResult:
         efficiency and energy lost per day, and the verdict."""
         pr = self.profile
         lines = ["load profile: " + ", ".join(
-            f"{lv} {100 * sh:.0f} %" for lv, sh in zip(pr.levels, pr.shares))]
+            f"{lv} {100 * sh:.0f} %" for lv, sh in zip(pr.levels, pr.shares, strict=True))]
         for s in strategies:
             if not np.isfinite(self.weighted_efficiency[s]):
                 lines.append(f"  {STRATEGY_NAMES[s]:<18} not rated: a profile level failed")
@@ -228,7 +228,7 @@ def _profile_result(profile, rows_by_strategy) -> ProfileResult:
                              f"{STRATEGY_NAMES[best]} is {only}")
     second = ranked[1]
     saved = [(r2.loss - r1.loss) for r1, r2 in zip(rows_by_strategy[best],
-                                                    rows_by_strategy[second])]
+                                                    rows_by_strategy[second], strict=True)]
     k = int(np.argmax(shares * np.array(saved)))
     row = rows_by_strategy[best][k]
     decision = (f"{STRATEGY_NAMES[best]} saves {format_si(saved[k], 'W', 3)} against "

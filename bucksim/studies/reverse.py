@@ -43,6 +43,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, clamp_current, current_reverses
+from bucksim.model.units import format_si
 from bucksim.studies.levels import (
     LoadLevel,
     load_kind,
@@ -52,8 +54,6 @@ from bucksim.studies.levels import (
     segment_values,
     with_level,
 )
-from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, clamp_current, current_reverses
-from bucksim.model.units import format_si
 
 CAUTION = ("Caution: simulation is no substitute for validating the power stage on the bench "
            "with its real parts.")

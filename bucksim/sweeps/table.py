@@ -371,7 +371,7 @@ def _row_from_cells(header, cells, path, line):
         raise ValueError(f"{path}:{line}: has {len(cells)} fields, the header has "
                          f"{len(header)}")
     row = {}
-    for name, text in zip(header, cells):
+    for name, text in zip(header, cells, strict=True):
         if name in TEXT_COLUMNS:
             row[name] = text
         elif name in INT_COLUMNS:

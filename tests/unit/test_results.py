@@ -216,7 +216,7 @@ def test_steady_state_plots(settled):
     x, y = _xy(ax.lines[0])
     assert np.allclose(np.hypot(x, y), 1.0, rtol=0, atol=1e-12)   # the unit circle
     x, y = _xy(ax.lines[1])
-    assert sorted(zip(x, y)) == sorted((m.real, m.imag) for m in ss.floquet)
+    assert sorted(zip(x, y, strict=True)) == sorted((m.real, m.imag) for m in ss.floquet)
     fig = ss.plot("orbit", run=settled)
     ax, = fig.axes
     vc, il = _xy(ax.lines[0])
