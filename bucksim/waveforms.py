@@ -13,9 +13,10 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from bucksim.analysis.segments import segment_states
 from bucksim.analysis.summarize import summarize
 from bucksim.engine.driver import EngineResult, TransitionTable
-from bucksim.engine.kernels import STATUS_DIVERGED, evaluate
+from bucksim.engine.kernels import STATUS_DIVERGED
 from bucksim.errors import SimulationError
 from bucksim.io.hdf5 import save_run
 from bucksim.io.runfile import read_run
@@ -201,13 +202,7 @@ class Run:
         An offset equal to a segment's length gives the left limit at its end
         (evaluated in that segment), which a switch-node edge needs.
         """
-        index = np.ascontiguousarray(index, dtype=np.int64)
-        tau = np.ascontiguousarray(tau, dtype=float)
-        out = np.empty((tau.shape[0], self.stage.n + 1))
-        tbl = self.table
-        evaluate(tbl.matrices, tbl.exponentials, tbl.steps, self.segments.system,
-                 self.segments.x0, index, tau, out)
-        return out
+        return segment_states(self, index, tau)
 
     def segment_values(self, signal: str, index, tau):
         """``signal`` at offsets ``tau`` [s] inside segments ``index`` (left limits at ends)."""
