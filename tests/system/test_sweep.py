@@ -323,10 +323,10 @@ def test_cli_kill_and_resume(tmp_path, capsys):
             time.sleep(0.005)
         proc.send_signal(signal.SIGKILL)
     finally:
-        proc.wait()
+        _, err = proc.communicate()   # waits and closes the pipe
     had = _data_rows(out)
     if proc.returncode == 0 or had >= total:
-        pytest.fail(f"the sweep finished before it was killed: {proc.stderr.read()!r}")
+        pytest.fail(f"the sweep finished before it was killed: {err!r}")
     assert proc.returncode == -signal.SIGKILL
     assert 0 < had < total
     # a write cut short by the kill leaves half a line: resume must drop it
