@@ -85,3 +85,12 @@ class StorageError(ValueError):
 
 class SweepError(ValueError):
     """A sweep cannot run as asked (bad keys or values, a table from another sweep)."""
+
+
+class StepAfterEndWarning(UserWarning):
+    """A load or supply step of a scenario file lies at or after the end of its run.
+
+    Valid, but the step never happens, which is most likely not what the
+    file's author meant. Not raised when a stored run's scenario is read back:
+    the run is what it is.
+    """

@@ -16,11 +16,12 @@ import errno
 import json
 import os
 import re
+import warnings
 
 import numpy as np
 
 from bucksim.engine.driver import EngineResult, TransitionTable
-from bucksim.errors import ScenarioError, StorageError
+from bucksim.errors import ScenarioError, StepAfterEndWarning, StorageError
 from bucksim.model.stage import CONTROLLER_UNIT, N_CONDUCTION, UNITS, Stage
 
 __all__ = ["LAYOUT_VERSION", "RunHeader", "check_rows", "guarded_read", "read_run",
@@ -342,15 +343,18 @@ def _read_scenario(f, path):
     source = str(f["scenario"].attrs.get("source", ""))
     where = f"{path} (stored scenario)"
     try:
-        if resolved:
-            doc = json.loads(resolved)
-            if not isinstance(doc, dict):
-                raise _corrupt(path, "/scenario/resolved is not a JSON object")
-            scenario = loads_scenario(tomli_w.dumps(doc), source=where)
-        elif text:
-            scenario = loads_scenario(text, source=where)
-        else:
-            raise _corrupt(path, "the stored scenario is empty")
+        with warnings.catch_warnings():
+            # a stored run is what it is: a step past its end was for the file's author
+            warnings.simplefilter("ignore", StepAfterEndWarning)
+            if resolved:
+                doc = json.loads(resolved)
+                if not isinstance(doc, dict):
+                    raise _corrupt(path, "/scenario/resolved is not a JSON object")
+                scenario = loads_scenario(tomli_w.dumps(doc), source=where)
+            elif text:
+                scenario = loads_scenario(text, source=where)
+            else:
+                raise _corrupt(path, "the stored scenario is empty")
     except json.JSONDecodeError as exc:
         raise _corrupt(path, f"/scenario/resolved is not valid JSON ({exc})") from None
     except ScenarioError as exc:

@@ -17,6 +17,9 @@ from __future__ import annotations
 import bisect
 import re
 import tomllib
+import warnings
+
+from bucksim.errors import StepAfterEndWarning
 
 _BARE_KEY = re.compile(r"[A-Za-z0-9_-]+")
 _SCALAR = re.compile(r"[^,\]}\r\n#]*")
@@ -90,14 +93,13 @@ def key_on_line(text, line):
 
 
 def warn_steps_after_end(scenario):
-    """Warn (``UserWarning``) about each load or supply step at or after the run's end.
+    """Warn (:class:`~bucksim.errors.StepAfterEndWarning`) about each load or supply step at or
+    after the run's end.
 
     Such a step is valid but never happens in the run, which is most likely
     not what the file's author meant (a duration in the wrong unit, a step
     time in the wrong place). The message names the file and the key.
     """
-    import warnings
-
     from bucksim.model.units import format_si
 
     end = scenario.n_cycles * scenario.period
@@ -108,7 +110,7 @@ def warn_steps_after_end(scenario):
                 warnings.warn(f"{where}{section}.steps[{i}].time: the step at "
                               f"{format_si(step.time, 's')} is at or after the end of the run "
                               f"({format_si(end, 's')}), so it never happens",
-                              UserWarning, stacklevel=3)
+                              StepAfterEndWarning, stacklevel=3)
 
 
 def parse_key_path(key):
