@@ -10,6 +10,7 @@ import numpy as np
 from bucksim.engine.controlled import integrate_closed_loop
 from bucksim.engine.driver import build_table, integrate
 from bucksim.engine.limits import check_run_fits
+from bucksim.engine.status import STATUS_DIVERGED, STATUS_LOOP_UNSETTLED, STATUS_OK
 from bucksim.errors import ScenarioError, SimulationError
 from bucksim.io.hdf5 import report, streamed_run
 from bucksim.model.compensator import design
@@ -20,7 +21,7 @@ from bucksim.steady.solve import steady_state
 from bucksim.waveforms import Run
 
 
-def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> "Run":
+def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> Run:
     """Simulate a scenario's power stage exactly, cycle by cycle.
 
     Parameters
@@ -80,7 +81,7 @@ def _check_fits(scenario, n_states):
         raise locate_in(scenario, err) from None
 
 
-def simulate_settled(scenario, cycles: int | None = None) -> "Run":
+def simulate_settled(scenario, cycles: int | None = None) -> Run:
     """Simulate ``cycles`` periods on the periodic steady state of the t = 0 level.
 
     Finds the steady state by shooting (open or closed loop), then runs the
@@ -159,10 +160,6 @@ def _simulate_closed_loop(scenario, x0, check, progress=None, state=None):
     return run
 
 
-#: Status of a closed-loop run whose duty swings between its limits at the end.
-STATUS_LOOP_UNSETTLED = 3
-
-
 def loop_settle_verdict(control, duty, status, last: int = 200):
     """Decide whether a closed loop ended limit-cycling between its duty limits.
 
@@ -187,7 +184,7 @@ def loop_settle_verdict(control, duty, status, last: int = 200):
         :data:`STATUS_LOOP_UNSETTLED` and a message when the loop did not
         settle, else ``status`` unchanged and None.
     """
-    if status != 0 or duty is None:
+    if status != STATUS_OK or duty is None:
         return status, None
     d = np.asarray(duty, dtype=float)
     d = d[~np.isnan(d)][-last:]
@@ -219,7 +216,6 @@ def _check_loop_settles(run, last: int = 200):
 #: Largest state magnitude whose square float64 holds: energies (``L iL^2 / 2``)
 #: and the loss integrals of ``z z^T`` overflow beyond it.
 STATE_RANGE = float(np.sqrt(np.finfo(float).max))
-STATUS_DIVERGED = 1
 
 
 def state_range_verdict(states, status):
@@ -238,7 +234,7 @@ def state_range_verdict(states, status):
         ``STATUS_DIVERGED`` (1) and a message when some state is NaN, infinite
         or above :data:`STATE_RANGE` in magnitude; else ``status`` and None.
     """
-    if status != 0:
+    if status != STATUS_OK:
         return status, None
     a = np.abs(np.asarray(states, dtype=float))
     if a.size == 0:

@@ -16,7 +16,7 @@ import numpy as np
 from bucksim.analysis.segments import segment_states
 from bucksim.analysis.summarize import summarize
 from bucksim.engine.driver import EngineResult, TransitionTable
-from bucksim.engine.kernels import STATUS_DIVERGED
+from bucksim.engine.status import STATUS_DIVERGED
 from bucksim.errors import SimulationError
 from bucksim.io.hdf5 import save_run
 from bucksim.io.runfile import read_run

@@ -16,12 +16,10 @@ import os
 import sys
 from importlib import resources
 
+from bucksim.engine.status import STATUS_DIVERGED as STATUS_DIVERGED
 from bucksim.errors import SimulationError
 
 EXIT_OK, EXIT_USER, EXIT_INTERNAL = 0, 1, 2
-
-#: Engine status of a run whose state diverged (see :class:`bucksim.engine.driver.EngineResult`).
-STATUS_DIVERGED = 1
 
 
 class ArgumentParser(argparse.ArgumentParser):

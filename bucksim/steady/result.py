@@ -9,10 +9,13 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+# the steady-state codes live in the one status table
+from bucksim.engine.status import STEADY_FAILED
+from bucksim.engine.status import STEADY_FALLBACK as STEADY_FALLBACK
+from bucksim.engine.status import STEADY_OK as STEADY_OK
+
 if TYPE_CHECKING:
     from bucksim.engine.controlled import ControllerState
-
-STEADY_OK, STEADY_FALLBACK, STEADY_FAILED = 0, 1, 2
 
 
 @dataclass
