@@ -17,8 +17,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from bucksim.engine.driver import CHUNK_CYCLES, LoopArgs, nominal_phases, run_chunks, run_span
 from bucksim.engine.cycles import CONTROL_ANALOG, CONTROL_DIGITAL
+from bucksim.engine.driver import CHUNK_CYCLES, LoopArgs, nominal_phases, run_chunks, run_span
 from bucksim.engine.tables import build_table, phase_exponentials
 
 

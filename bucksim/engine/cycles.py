@@ -56,16 +56,12 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import (
-    clear_between,
-    current_row_norms,
-    growth,
-    row_norms,
-    system_bounds,
-    third_norms,
-)
+from bucksim.engine.bounds import clear_between, growth
 from bucksim.engine.kernels import (
     ASYNC,
+    CONTROL_ANALOG,
+    CONTROL_DIGITAL,
+    CONTROL_OPEN,
     EMULATION,
     GATE_HIGH,
     GATE_LOW,
@@ -75,9 +71,6 @@ from bucksim.engine.kernels import (
     LOW,
     LOW_DIODE,
     N_CONDUCTION,
-    STATUS_DIVERGED,
-    STATUS_FULL,
-    STATUS_OK,
     TAYLOR_ORDER,
     advance,
     apply,
@@ -86,8 +79,10 @@ from bucksim.engine.kernels import (
     crossing_value,
     find_zero,
 )
+from bucksim.engine.status import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
 
-CONTROL_OPEN, CONTROL_DIGITAL, CONTROL_ANALOG = 0, 1, 2
+__all__ = ["CONTROL_OPEN", "CONTROL_DIGITAL", "CONTROL_ANALOG", "N_PHASES", "run_cycles"]
+
 N_PHASES = 5
 
 #: Cached phases match their nominal duration to this many units of the
@@ -153,19 +148,16 @@ def _needs_search(Ms, s, row, krow, zs, z, t_end_seg, d, guard, sign0, level, ra
 
 
 @njit(cache=True)
-def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td_rise,
-               level_times, level, z, c_start, c_stop, t_end, control, peak, on_times,
-               Cvo, reference, soft_start, sense_gain, Ad, Bd, Cd, Dd, w, queue, duty_bits,
-               Cu, Cthr, thr_ramp, ramp_v, ri, se, i_limit, max_duty, min_on, skip,
-               n_modes, i_w, w_lo, w_hi, Ce,
-               seg_t0, seg_dt, seg_cond, seg_sys, seg_x0, log_duty, log_u):
+def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     """Simulate periods ``c_start .. c_stop-1`` from state ``z`` (updated in place).
 
-    Segments are written to the ``seg_*`` arrays from index 0; ``log_duty``
-    and ``log_u`` receive each period's on-time / T and control value
-    (``nan`` in open loop). ``w`` and ``queue`` (digital controller) are
-    updated in place so a caller can continue in the next chunk. Returns
-    ``(n_segments, level, status, t)``.
+    ``tab``, ``prog``, ``ctl``, ``cst``, ``buf``: the records of
+    :mod:`bucksim.engine.records` (``cst``: updated in place, so that a
+    caller continues in the next chunk; ``buf``: segments from row 0, and
+    each period's on-time / T and control value, ``nan`` in open loop).
+    ``z``: the augmented state at ``c_start * T``; ``level``: the operating
+    level there. Returns ``(n_segments, level, status, t)``, ``status`` from
+    :mod:`bucksim.engine.status` (``STATUS_FULL``: the buffer filled up).
 
     Analog anti-windup (``n_modes = 2``): the integrator state ``z[i_w]``
     holds while it sits at ``w_lo`` or ``w_hi`` and the error ``Ce[level] . z``
@@ -173,6 +165,23 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     integrator's row zeroed). Reaching a limit and the error changing sign
     are events located like the others.
     """
+    # the records opened once: the loop then works on plain arrays (module notes)
+    Ms, E, h, guard, taylor_gap = tab.Ms, tab.E, tab.h, tab.guard, tab.taylor_gap
+    level_times, bnd, kil, k3il, e_il = tab.level_times, tab.bnd, tab.kil, tab.k3il, tab.e_il
+    T, strategy, td_fall, td_rise = prog.T, prog.strategy, prog.td_fall, prog.td_rise
+    nominal, P, t_end = prog.nominal, prog.P, prog.t_end
+    cs = ctl.settings
+    control, peak, reference, soft_start = cs.control, cs.peak, cs.reference, cs.soft_start
+    sense_gain, Dd, duty_bits, thr_ramp = cs.sense_gain, cs.Dd, cs.duty_bits, cs.thr_ramp
+    ramp_v, ri, se, i_limit, max_duty = cs.ramp_v, cs.ri, cs.se, cs.i_limit, cs.max_duty
+    min_on, skip, n_modes, i_w = cs.min_on, cs.skip, cs.n_modes, cs.i_w
+    w_lo, w_hi, e_band = cs.w_lo, cs.w_hi, cs.e_band
+    on_times, Cvo, Ad, Bd, Cd, Cu = ctl.on_times, ctl.Cvo, ctl.Ad, ctl.Bd, ctl.Cd, ctl.Cu
+    Cthr, Ce, e_w, kthr, k3thr = ctl.Cthr, ctl.Ce, ctl.e_w, ctl.kthr, ctl.k3thr
+    kce, k3ce, kw, k3w = ctl.kce, ctl.k3ce, ctl.kw, ctl.k3w
+    w, queue = cst.w, cst.queue
+    seg_t0, seg_dt, seg_cond, seg_sys, seg_x0 = buf.t0, buf.dt, buf.cond, buf.sys, buf.x0
+    log_duty, log_u = buf.duty, buf.u
     n = seg_x0.shape[1]
     m = z.shape[0]
     tmp = np.empty(2 * m)
@@ -182,26 +191,8 @@ def run_cycles(Ms, E, h, P, nominal, guard, taylor_gap, T, strategy, td_fall, td
     zs2 = np.empty(m)
     zst = np.empty(m)
     zh = np.empty(m)
-    e_il = np.zeros(m)
-    e_il[0] = 1.0
-    e_w = np.zeros(m)
-    if i_w >= 0:
-        e_w[i_w] = 1.0
     held = 0
-    # a hold ends where the error has crossed zero by e_band [V]: far below any
-    # physical error, yet enough that the integrator always leaves the limit
-    # after a release, so rounding at the crossing cannot bring the hold back
-    e_band = 1e-12 * max(abs(reference) * sense_gain, 1.0)
     poly = np.empty((TAYLOR_ORDER + 1, m + 1))
-    bnd = system_bounds(Ms)
-    kil = current_row_norms(Ms, bnd)
-    kthr = row_norms(Ms, bnd, Cthr)
-    kce = row_norms(Ms, bnd, Ce)
-    kw = row_norms(Ms, bnd, e_w.reshape(1, m))
-    k3il = third_norms(Ms, bnd, e_il.reshape(1, m))
-    k3thr = third_norms(Ms, bnd, Cthr)
-    k3ce = third_norms(Ms, bnd, Ce)
-    k3w = third_norms(Ms, bnd, e_w.reshape(1, m))
     wnew = np.empty(w.shape[0])
     n_levels = level_times.shape[0]
     n_delay = queue.shape[0]

@@ -11,16 +11,20 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from bucksim.engine.bounds import current_row_norms, row_norms, system_bounds, third_norms
 from bucksim.engine.cycles import CONTROL_OPEN, N_PHASES, run_cycles
-from bucksim.engine.kernels import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
+from bucksim.engine.records import (
+    CompensatorState,
+    ControllerParams,
+    ControllerSettings,
+    PhaseProgram,
+    StageTables,
+    segment_buffers,
+)
+from bucksim.engine.status import STATUS_FULL, STATUS_OK, run_message
 from bucksim.engine.tables import TransitionTable, build_table, phase_exponentials
 
 __all__ = ["EngineResult", "integrate", "build_table", "TransitionTable", "duty_schedule"]
-
-STATUS_MESSAGES = {
-    STATUS_OK: "run completed",
-    STATUS_DIVERGED: "state diverged (non-finite values); segments up to that point are kept",
-}
 
 #: Cycles per kernel call: bounds the segment buffer to ~8 segments per cycle.
 CHUNK_CYCLES = 1 << 15
@@ -52,9 +56,11 @@ class EngineResult:
     t_end : float
         Time reached [s].
     status : int
-        0 completed, 1 diverged.
+        A run code of :mod:`bucksim.engine.status`: 0 completed, 1 diverged.
     message : str
+        The code's message from that table.
     success : bool
+        ``status == 0``.
     """
 
     t0: np.ndarray
@@ -179,7 +185,9 @@ def nominal_phases(scenario, on_time: float | None) -> np.ndarray:
 
 @dataclass
 class LoopArgs:
-    """Controller arguments of :func:`~bucksim.engine.cycles.run_cycles` (see there)."""
+    """A run's controller as the Python side describes it (fields: see
+    :class:`~bucksim.engine.records.ControllerParams`); :meth:`records` turns it
+    into the cycle loop's records. ``w`` and ``queue`` are updated in place."""
 
     control: int
     peak: bool = False
@@ -211,18 +219,60 @@ class LoopArgs:
     w_hi: float = np.inf
     Ce: np.ndarray | None = None
 
-    def kernel_args(self, m: int):
-        """The kernel's controller arguments; absent rows become a dummy of width ``m``."""
+    def records(self, tables: StageTables) -> tuple[ControllerParams, CompensatorState]:
+        """The cycle loop's controller records; absent rows become a zero row of
+        width ``m``, and the norms of each event row are taken once here."""
+        Ms, bnd = tables.Ms, tables.bnd
+        m = Ms.shape[1]
+
         def rows(a):
             return np.zeros((1, m)) if a is None else a
 
-        return (self.control, self.peak, self.on_times, rows(self.Cvo), float(self.reference),
-                float(self.soft_start), float(self.sense_gain), self.Ad, self.Bd, self.Cd,
-                float(self.Dd), self.w, self.queue, int(self.duty_bits), rows(self.Cu),
-                rows(self.Cthr), float(self.thr_ramp), float(self.ramp_v), float(self.ri),
-                float(self.se), float(self.i_limit), float(self.max_duty), float(self.min_on),
-                bool(self.skip), int(self.n_modes), int(self.i_w), float(self.w_lo),
-                float(self.w_hi), rows(self.Ce))
+        e_w = np.zeros(m)
+        if self.i_w >= 0:
+            e_w[self.i_w] = 1.0
+        Cthr, Ce = rows(self.Cthr), rows(self.Ce)
+        # a hold ends where the error has crossed zero by e_band [V]: far below any
+        # physical error, yet enough that the integrator always leaves the limit
+        # after a release, so rounding at the crossing cannot bring the hold back
+        e_band = 1e-12 * max(abs(float(self.reference)) * float(self.sense_gain), 1.0)
+        settings = ControllerSettings(
+            int(self.control), bool(self.peak), float(self.reference), float(self.soft_start),
+            float(self.sense_gain), float(self.Dd), int(self.duty_bits), float(self.thr_ramp),
+            float(self.ramp_v), float(self.ri), float(self.se), float(self.i_limit),
+            float(self.max_duty), float(self.min_on), bool(self.skip), int(self.n_modes),
+            int(self.i_w), float(self.w_lo), float(self.w_hi), e_band)
+        e_w1 = e_w.reshape(1, m)
+        params = ControllerParams(
+            settings, self.on_times, rows(self.Cvo), self.Ad, self.Bd, self.Cd, rows(self.Cu),
+            Cthr, Ce, e_w, row_norms(Ms, bnd, Cthr), third_norms(Ms, bnd, Cthr),
+            row_norms(Ms, bnd, Ce), third_norms(Ms, bnd, Ce), row_norms(Ms, bnd, e_w1),
+            third_norms(Ms, bnd, e_w1))
+        return params, CompensatorState(self.w, self.queue)
+
+
+def stage_tables(stage, table: TransitionTable) -> StageTables:
+    """The cycle loop's record of a stage's tables and bounds (taken once per run)."""
+    Ms = table.matrices
+    m = Ms.shape[1]
+    bnd = system_bounds(Ms)
+    e_il = np.zeros(m)
+    e_il[0] = 1.0
+    return StageTables(Ms, table.exponentials, table.steps, float(table.guard),
+                       float(table.taylor_gap),
+                       np.array([lev.time for lev in stage.levels], dtype=float), bnd,
+                       current_row_norms(Ms, bnd), third_norms(Ms, bnd, e_il.reshape(1, m)),
+                       e_il)
+
+
+def phase_program(scenario, P, nominal, t_end: float) -> PhaseProgram:
+    """The cycle loop's record of the period's timing."""
+    from bucksim.model.stage import STRATEGY_CODES
+
+    strategy = STRATEGY_CODES[scenario.switching.strategy]
+    tf, tr = scenario.switching.dead_time if strategy != 0 else (0.0, 0.0)
+    return PhaseProgram(float(scenario.period), int(strategy), float(tf), float(tr),
+                        np.ascontiguousarray(nominal, dtype=float), P, float(t_end))
 
 
 def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_end, sink=None,
@@ -235,16 +285,12 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
     keeps their last :data:`STREAM_LOG_TAIL` periods (enough to judge whether
     the loop settled); open loop keeps none.
     """
-    from bucksim.model.stage import STRATEGY_CODES
-
     sc = stage.scenario
-    T = sc.period
-    strategy = STRATEGY_CODES[sc.switching.strategy]
-    tf, tr = sc.switching.dead_time if strategy != 0 else (0.0, 0.0)
-    level_times = np.array([lev.time for lev in stage.levels])
+    tables = stage_tables(stage, table)
+    program = phase_program(sc, P, nominal, t_end)
+    params, state = controller.records(tables)
     z = np.append(stage.initial_state(x0), 1.0)
     n = stage.n
-    args = controller.kernel_args(n + 1)
     # the per-period logs serve a closed-loop Run in memory; streamed or open-loop
     # runs drop them so memory stays bounded by one chunk
     keep_logs = sink is None and controller.control != CONTROL_OPEN
@@ -254,29 +300,9 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
     while c < n_cycles and status == STATUS_OK:
         c_stop = min(n_cycles, c + chunk_cycles)
         k = c_stop - c
-        # rows per period (ROWS_PER_PERIOD), plus the splits at level changes; an
-        # analog integrator's holds add a few more
-        rows = ROWS_PER_PERIOD["synchronous" if strategy != 0 else "asynchronous"]
-        rows *= controller.n_modes
-        saved = (z.copy(), controller.w.copy(), controller.queue.copy(), level)
-        while True:
-            cap = k * rows + 2 * len(level_times) + 8
-            _refuse_buffer(sc, cap, n, k, rows, c, held)
-            bufs = segment_buffers(cap, n)
-            dl, ul = np.full(k, np.nan), np.full(k, np.nan)
-            nseg, level_out, status, t = run_cycles(
-                table.matrices, table.exponentials, table.steps, P, nominal, table.guard,
-                table.taylor_gap, T, strategy, float(tf), float(tr), level_times, level, z, c,
-                c_stop, float(t_end), *args, *bufs, dl, ul)
-            if status != STATUS_FULL:
-                level = level_out
-                break
-            # more events than the bound allows (e.g. many integrator holds): run
-            # the chunk again from its start with a larger buffer
-            z[:], controller.w[:], controller.queue[:], level = (saved[0], saved[1], saved[2],
-                                                                  saved[3])
-            rows *= 2
-        piece = tuple(b[:nseg] for b in bufs)
+        buf, nseg, level, status, t = _run_chunk(sc, tables, program, params, state, z, level,
+                                                 c, c_stop, held)
+        piece = tuple(col[:nseg] for col in buf[:5])
         if sink is not None:
             sink(*piece)
         else:
@@ -284,20 +310,46 @@ def run_chunks(stage, table, P, nominal, x0, controller: LoopArgs, n_cycles, t_e
             pieces.append(tuple(col.copy() for col in piece))
             held += nseg * segment_row_bytes(n)
         if keep_logs:
-            duty_log.append(dl)
-            u_log.append(ul)
+            duty_log.append(buf.duty)
+            u_log.append(buf.u)
             held += 2 * 8 * k
         elif controller.control != CONTROL_OPEN:  # streamed: a bounded tail only
-            duty_log = [np.concatenate(duty_log + [dl])[-STREAM_LOG_TAIL:]]
-            u_log = [np.concatenate(u_log + [ul])[-STREAM_LOG_TAIL:]]
+            duty_log = [np.concatenate(duty_log + [buf.duty])[-STREAM_LOG_TAIL:]]
+            u_log = [np.concatenate(u_log + [buf.u])[-STREAM_LOG_TAIL:]]
         c = c_stop
         if progress is not None:
             progress(c, n_cycles)
         if t >= t_end:
             break
     res = EngineResult(*join_segments(pieces, n), x_end=z[:n].copy(), t_end=float(t),
-                       status=int(status), message=STATUS_MESSAGES[int(status)])
+                       status=int(status), message=run_message(status))
     return res, np.concatenate(duty_log), np.concatenate(u_log)
+
+
+def _run_chunk(scenario, tables, program, params, state, z, level, c, c_stop, held):
+    """Periods ``c .. c_stop-1`` in one buffer; ``z`` and ``state`` move on in place.
+
+    Reserves :data:`ROWS_PER_PERIOD` rows a period (times the integrator's
+    modes) plus the splits at level changes; a chunk with more events than
+    that (e.g. many integrator holds) is run again from its start with twice
+    the rows, up to the memory budget. Returns ``(buffers, n_segments, level,
+    status, t)``.
+    """
+    n = z.shape[0] - 1
+    k = c_stop - c
+    rows = ROWS_PER_PERIOD["synchronous" if program.strategy != 0 else "asynchronous"]
+    rows *= params.settings.n_modes
+    saved = (z.copy(), state.w.copy(), state.queue.copy())
+    while True:
+        cap = k * rows + 2 * len(tables.level_times) + 8
+        _refuse_buffer(scenario, cap, n, k, rows, c, held)
+        buf = segment_buffers(cap, n, k)
+        nseg, level_out, status, t = run_cycles(tables, program, params, state, z, level, c,
+                                                c_stop, buf)
+        if status != STATUS_FULL:
+            return buf, nseg, level_out, status, t
+        z[:], state.w[:], state.queue[:] = saved
+        rows *= 2
 
 
 def _refuse_buffer(scenario, cap, n, k, rows, c, held):
@@ -307,8 +359,8 @@ def _refuse_buffer(scenario, cap, n, k, rows, c, held):
     it reserved (events that come ever closer, e.g. a hold that chatters);
     without a bound that grows until the operating system ends the process.
     """
-    from bucksim.errors import SimulationError
     from bucksim.engine.limits import format_bytes, memory_budget
+    from bucksim.errors import SimulationError
 
     need = held + cap * segment_row_bytes(n) + 2 * 8 * k
     budget = memory_budget()
@@ -329,14 +381,8 @@ def segment_row_bytes(n: int) -> int:
     return row_bytes(n)
 
 
-def segment_buffers(cap: int, n: int):
-    """Empty segment columns (t0, dt, conduction, system, x0) for ``cap`` rows."""
-    return (np.empty(cap), np.empty(cap), np.empty(cap, np.int8), np.empty(cap, np.int32),
-            np.empty((cap, n)))
-
-
 def join_segments(pieces, n: int):
     """Concatenate chunks of segment columns (empty columns when there are none)."""
     if pieces:
-        return [np.concatenate(col) for col in zip(*pieces)]
-    return list(segment_buffers(0, n))
+        return [np.concatenate(col) for col in zip(*pieces, strict=True)]
+    return list(segment_buffers(0, n, 0)[:5])

@@ -1,16 +1,36 @@
-"""numba kernels: exact propagation, zero-current events, the open-loop cycle loop.
+"""numba kernels: exact propagation, event location on a general row, evaluation.
 
 Kernels are plain typed loops over arrays (no small-matrix ``@``: it compiles
 slowly and runs slower for 3 x 3). Everything a kernel needs is passed in as
-arrays prepared by :mod:`bucksim.engine.tables`.
+arrays prepared by :mod:`bucksim.engine.tables`; the cycle loop that calls
+them is :mod:`bucksim.engine.cycles`.
 
-Propagation over an arbitrary interval ``d`` uses a table of exact
-transition matrices ``E[s, k] = expm(M_s h_k)`` with ``h_k = T 2**-k``:
-``d`` is decomposed into its binary digits and the matching matrices are
-applied to the state vector, so a new interval length costs ``O(K m^2)``
-multiply-adds and no new matrix exponential. Every product is of exact
-transition matrices, so the result is exact to rounding whatever the
-eigenstructure of ``M`` (repeated, zero or complex eigenvalues alike).
+Propagation over an arbitrary interval ``d`` (:func:`advance`, in
+:mod:`bucksim.engine.propagation` and named here too) uses a table
+of exact transition matrices ``E[s, k] = expm(M_s h_k)`` with
+``h_k = T 2**-k``: ``d`` is decomposed into its binary digits down to the
+table's last step, the matching matrices are applied to the state vector,
+and the remainder below the last step is taken by the Taylor series of order
+:data:`TAYLOR_ORDER` (8; :func:`~bucksim.engine.propagation.taylor_step`),
+which the table's depth makes exact to rounding (its first omitted term
+is below 5e-18 relative). A new interval length costs ``O(K m^2)``
+multiply-adds and no new matrix exponential, and the result is exact to
+rounding whatever the eigenstructure of ``M`` (repeated, zero or complex
+eigenvalues alike).
+
+Events (:func:`find_zero`) are the first zero of ``g = c . z + ramp (t -
+t_ref) - level`` for a general row ``c``: proven absent stretch by stretch
+(:mod:`bucksim.engine.bounds`), bracketed by a descent over the same table,
+and finished by safeguarded Newton steps on the Taylor polynomial
+(:func:`taylor_zero`). :func:`evaluate` gives the state at any (segment,
+offset). Each kernel has a plain NumPy/SciPy reference in
+``tests/unit/test_kernel_references.py``.
+
+The codes below are mirrored from :mod:`bucksim.model.stage` (conduction,
+gate and strategy codes) and :mod:`bucksim.engine.tables` (the Taylor order)
+because numba reads module constants only; ``tests/unit/test_engine_contract.py``
+checks that the copies agree. The cycle loop's status codes live in
+:mod:`bucksim.engine.status`, the one table.
 """
 
 from __future__ import annotations
@@ -27,107 +47,19 @@ from bucksim.engine.bounds import (
     velocity_norm,
 )
 
+# propagation has its own module; the kernels name it too (one front door for callers)
+from bucksim.engine.propagation import TAYLOR_ORDER, advance, apply, derivative
+
 # conduction codes (mirrors bucksim.model.stage; numba needs plain module constants)
 HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = 0, 1, 2, 3, 4
 N_CONDUCTION = 5
 GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2
+# strategy codes (mirrors bucksim.model.stage.STRATEGY_CODES)
 ASYNC, FORCED, EMULATION = 0, 1, 2
+#: Controllers of the cycle loop (:class:`bucksim.engine.driver.LoopArgs`).
+CONTROL_OPEN, CONTROL_DIGITAL, CONTROL_ANALOG = 0, 1, 2
 
-STATUS_OK, STATUS_DIVERGED, STATUS_FULL = 0, 1, 2
-
-#: Order of the Taylor series for remainders below the table's last step
-#: (mirrors tables.TAYLOR_ORDER; the table is built so it is exact to rounding).
-TAYLOR_ORDER = 8
 _INV_FACTORIAL = (1.0, 1.0, 1 / 2, 1 / 6, 1 / 24, 1 / 120, 1 / 720, 1 / 5040, 1 / 40320)
-
-
-@njit(cache=True, inline="always")
-def apply(E, s, k, z, tmp):
-    """z <- E[s, k] @ z (in place, via tmp)."""
-    m = z.shape[0]
-    if m == 3:  # the two-state stage: unrolled, ~3x faster than the loop
-        z0, z1, z2 = z[0], z[1], z[2]
-        z[0] = E[s, k, 0, 0] * z0 + E[s, k, 0, 1] * z1 + E[s, k, 0, 2] * z2
-        z[1] = E[s, k, 1, 0] * z0 + E[s, k, 1, 1] * z1 + E[s, k, 1, 2] * z2
-        z[2] = E[s, k, 2, 0] * z0 + E[s, k, 2, 1] * z1 + E[s, k, 2, 2] * z2
-        return
-    for i in range(m):
-        acc = 0.0
-        for j in range(m):
-            acc += E[s, k, i, j] * z[j]
-        tmp[i] = acc
-    for i in range(m):
-        z[i] = tmp[i]
-
-
-@njit(cache=True)
-def derivative(Ms, s, z, row):
-    """Component ``row`` of M_s @ z."""
-    acc = 0.0
-    for j in range(z.shape[0]):
-        acc += Ms[s, row, j] * z[j]
-    return acc
-
-
-@njit(cache=True)
-def taylor_step(Ms, s, z, u, tmp):
-    """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER, for short ``u``.
-
-    ``tmp`` holds at least ``2 m`` entries: the current term and the product.
-    """
-    m = z.shape[0]
-    for i in range(m):
-        tmp[i] = z[i]                      # term_0 = z
-    for j in range(1, TAYLOR_ORDER + 1):
-        c = u / j
-        for i in range(m):
-            v = 0.0
-            for q in range(m):
-                v += Ms[s, i, q] * tmp[q]
-            tmp[m + i] = c * v             # term_j = (u / j) M term_{j-1}
-        for i in range(m):
-            tmp[i] = tmp[m + i]
-            z[i] += tmp[i]
-
-
-@njit(cache=True, inline="always")
-def taylor_step3(Ms, s, z, u):
-    """:func:`taylor_step` for the two-state stage (``m = 3``), in registers."""
-    z0, z1, z2 = z[0], z[1], z[2]
-    a0, a1, a2 = z0, z1, z2
-    m00, m01, m02 = Ms[s, 0, 0], Ms[s, 0, 1], Ms[s, 0, 2]
-    m10, m11, m12 = Ms[s, 1, 0], Ms[s, 1, 1], Ms[s, 1, 2]
-    m20, m21, m22 = Ms[s, 2, 0], Ms[s, 2, 1], Ms[s, 2, 2]
-    for j in range(TAYLOR_ORDER, 0, -1):
-        c = u / j
-        b0 = z0 + c * (m00 * a0 + m01 * a1 + m02 * a2)
-        b1 = z1 + c * (m10 * a0 + m11 * a1 + m12 * a2)
-        b2 = z2 + c * (m20 * a0 + m21 * a1 + m22 * a2)
-        a0, a1, a2 = b0, b1, b2
-    z[0], z[1], z[2] = a0, a1, a2
-
-
-@njit(cache=True)
-def advance(Ms, E, h, s, z, d, tmp):
-    """z <- expm(M_s d) @ z for any d >= 0: binary digits of d over the table,
-    then the Taylor series for the remainder below its last step. ``tmp``:
-    work space, ``2 m`` entries (fewer makes stages beyond two states allocate)."""
-    K = h.shape[0]
-    r = d
-    while r >= h[0]:
-        apply(E, s, 0, z, tmp)
-        r -= h[0]
-    for k in range(1, K):
-        if r >= h[k]:
-            apply(E, s, k, z, tmp)
-            r -= h[k]
-    if r > 0.0:
-        if z.shape[0] == 3:
-            taylor_step3(Ms, s, z, r)
-        elif tmp.shape[0] >= 2 * z.shape[0]:
-            taylor_step(Ms, s, z, r, tmp)
-        else:
-            taylor_step(Ms, s, z, r, np.empty(2 * z.shape[0]))
 
 
 @njit(cache=True)
@@ -226,8 +158,31 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None, s
     v[0, m] = crossing_value(c, z, t, level, ramp, t_ref)
     v[1, m] += ramp
     g = v[:, m]
-    lo, hi = 0.0, gap          # g keeps sign0's sign at lo, the other at hi
     sign_lo = sign0 if sign0 != 0.0 else (1.0 if g[0] > 0.0 else -1.0)
+    u = polynomial_zero(g, gap, sign_lo)
+    for i in range(m):
+        acc = v[n, i]
+        for j in range(n - 1, -1, -1):
+            acc = acc * u + v[j, i]
+        tmp[i] = acc
+    for i in range(m):
+        z[i] = tmp[i]
+    if snap:
+        z[0] = level
+    return t + u
+
+
+@njit(cache=True, inline="always")
+def polynomial_zero(g, gap, sign_lo):
+    """First zero ``u`` in [0, gap] of the polynomial ``sum_j g[j] u^j``, which has
+    the sign ``sign_lo`` at 0 (0 when it is already at or past zero there).
+
+    Newton steps from the linear estimate, kept inside a bracket that
+    always has ``sign_lo`` at its low end; a step that leaves the bracket is
+    replaced by bisection. Converged once a step is at the rounding of ``u``.
+    """
+    n = TAYLOR_ORDER
+    lo, hi = 0.0, gap          # g keeps sign_lo's sign at lo, the other at hi
     u = 0.5 * gap
     if g[1] != 0.0:
         u = min(max(-g[0] / g[1], 0.0), gap)
@@ -262,16 +217,7 @@ def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None, s
         if hi - lo <= 1e-16 * gap:
             break
         u = 0.5 * (lo + hi)    # Newton left the bracket: bisect
-    for i in range(m):
-        acc = v[n, i]
-        for j in range(n - 1, -1, -1):
-            acc = acc * u + v[j, i]
-        tmp[i] = acc
-    for i in range(m):
-        z[i] = tmp[i]
-    if snap:
-        z[0] = level
-    return t + u
+    return u
 
 
 # ----------------------------------------------------------------------------- first crossings
@@ -327,16 +273,14 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
 
     Returns the zero's time (``za`` then holds the state there) or -1.0 when
     the function keeps the sign ``sign0`` over the whole interval. The
-    interval is taken in sub-steps no longer than ``guard`` (a quarter of the
-    fastest natural time constant) nor ``1 / mu`` (so the derivative bound
-    grows by at most e over one). A sub-step is passed only when the bound on
-    the third derivative proves it free of zeros (module notes: the same
-    argument one order up, from the exact value, slope and curvature at each
-    end); a sub-step that ends past zero with a slope that provably keeps its
-    sign holds exactly one zero, found by bisection over the table and Newton
-    on the Taylor series; any other sub-step is marched, which finds its
-    first zero. ``bnd``: :func:`system_bounds` of ``Ms``; ``k3``: the row's
-    :func:`third_norm` (both computed when omitted).
+    interval is taken in sub-steps (:func:`_substep_count`). A sub-step is
+    passed only when the bound on the third derivative proves it free of
+    zeros (:mod:`bucksim.engine.bounds`: from the exact value, slope and
+    curvature at each end); a sub-step that ends past zero with a slope that
+    provably keeps its sign holds exactly one zero, found by bisection over
+    the table and Newton on the Taylor series; any other sub-step is
+    marched, which finds its first zero. ``bnd``: :func:`system_bounds` of
+    ``Ms``; ``k3``: the row's :func:`third_norm` (both computed when omitted).
     """
     m = za.shape[0]
     n = m - 1
@@ -351,22 +295,13 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
     s0, q0 = event_derivatives(Ms, s, c, za, ramp)
     s0 *= sign0
     q0 *= sign0
-    past = f0 < 0.0
-    if f0 == 0.0:
-        # starting on zero: an event at a when f heads to the other side
-        past = s0 < 0.0 or (s0 == 0.0 and q0 <= 0.0)
-    if past:
+    if _starts_past_zero(f0, s0, q0):
         # already at or past zero: the first zero is at a itself
         if snap:
             za[0] = level
         return a
-    step = guard
     mu = bounds[s, n]
-    if mu > 0.0 and 1.0 / mu < step:
-        step = 1.0 / mu
-    n_sub = 1
-    if b - a > step:
-        n_sub = int(np.ceil((b - a) / step))
+    n_sub = _substep_count(guard, mu, a, b)
     t0 = a
     width = -1.0     # set to the bracket (t0, t0 + width] once a single zero is bracketed
     for q in range(n_sub):
@@ -411,6 +346,27 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
         return -1.0
     return refine_zero(Ms, E, h, s, za, t0, width, sign0, tmp, trial, c, level, ramp, t_ref,
                        snap, taylor_gap, poly)
+
+
+@njit(cache=True, inline="always")
+def _starts_past_zero(f0, s0, q0):
+    """True when the (oriented) event function is past zero at the start, or on
+    zero and heading to the other side (slope, then curvature)."""
+    if f0 == 0.0:
+        return s0 < 0.0 or (s0 == 0.0 and q0 <= 0.0)
+    return f0 < 0.0
+
+
+@njit(cache=True, inline="always")
+def _substep_count(guard, mu, a, b):
+    """Sub-steps of (a, b]: none longer than ``guard`` nor ``1 / mu`` (``mu``: the
+    logarithmic norm, so the derivative bound grows by at most e over one)."""
+    step = guard
+    if mu > 0.0 and 1.0 / mu < step:
+        step = 1.0 / mu
+    if b - a > step:
+        return int(np.ceil((b - a) / step))
+    return 1
 
 
 @njit(cache=True)

@@ -1,0 +1,147 @@
+"""The typed records the cycle loop reads and writes.
+
+:func:`bucksim.engine.cycles.run_cycles` takes five records instead of
+dozens of positional values. They are named tuples, which numba types field
+by field; the loop opens them once, at its top, and works on plain arrays
+from there (numba counts references to every array of a record handed to a
+function, and those counts cost more than a segment's propagation when paid
+in the loop). :mod:`bucksim.engine.driver` and
+:mod:`bucksim.engine.controlled` build them once per run:
+
+* :class:`StageTables`: what the stage is (systems, transition tables,
+  bounds); read only;
+* :class:`PhaseProgram`: the period's timing (period, strategy, dead times,
+  cached phase exponentials, end time); read only;
+* :class:`ControllerParams`: the controller's fixed parameters (its scalars
+  in one :class:`ControllerSettings`) and the norms of its event rows; read
+  only;
+* :class:`CompensatorState`: the digital compensator's state and delay line,
+  updated in place so that a chunk continues where the last one stopped;
+* :class:`SegmentBuffers`: the segment columns and the per-period logs the
+  loop fills.
+
+Array shapes use ``n_sys`` systems, ``m = n + 1`` augmented states, ``K``
+table levels, ``n_levels`` operating levels and ``k`` compensator states.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import numpy as np
+
+
+class StageTables(NamedTuple):
+    """The stage's systems, their exact transition tables and derivative bounds."""
+
+    #: (n_sys, m, m) augmented system matrices ``M_s``.
+    Ms: np.ndarray
+    #: (n_sys, K, m, m) ``expm(M_s h_k)``.
+    E: np.ndarray
+    #: (K,) table steps ``h_k = T 2**-k`` [s].
+    h: np.ndarray
+    #: Longest stretch [s] searched for a crossing in one piece.
+    guard: float
+    #: Brackets below this [s] are finished on the Taylor series.
+    taylor_gap: float
+    #: (n_levels,) start time of each operating level [s].
+    level_times: np.ndarray
+    #: (n_sys, m) :func:`~bucksim.engine.bounds.system_bounds` of ``Ms``.
+    bnd: np.ndarray
+    #: (n_sys,) ``||A_s[0] W_s||_1``: the zero-current row's curvature constant.
+    kil: np.ndarray
+    #: (1, n_sys) the zero-current row's third-derivative constant.
+    k3il: np.ndarray
+    #: (m,) the event row of the inductor current, ``e_iL``.
+    e_il: np.ndarray
+
+
+class PhaseProgram(NamedTuple):
+    """Timing of the period's five phases (:mod:`bucksim.engine.cycles`)."""
+
+    #: Switching period [s].
+    T: float
+    #: Strategy code (``ASYNC``, ``FORCED``, ``EMULATION``).
+    strategy: int
+    #: Falling and rising dead times [s] (zero for asynchronous).
+    td_fall: float
+    td_rise: float
+    #: (N_PHASES,) nominal duration of each phase [s] (not positive: never cached).
+    nominal: np.ndarray
+    #: (n_sys, N_PHASES, m, m) ``expm(M_s nominal_p)``.
+    P: np.ndarray
+    #: Time at which the run stops [s].
+    t_end: float
+
+
+class ControllerSettings(NamedTuple):
+    """A controller's scalar parameters (no arrays: free to hand to any helper)."""
+
+    control: int            #: CONTROL_OPEN, CONTROL_DIGITAL or CONTROL_ANALOG
+    peak: bool              #: peak-current mode (else voltage mode)
+    reference: float        #: digital: reference [V]
+    soft_start: float       #: digital: reference ramp time [s]
+    sense_gain: float       #: digital: output sense gain [-]
+    Dd: float               #: digital compensator's feedthrough
+    duty_bits: int          #: digital: duty resolution (0: none)
+    thr_ramp: float         #: analog: comparator ramp [V/s]
+    ramp_v: float           #: PWM ramp amplitude [V]
+    ri: float               #: current-sense gain [V/A]
+    se: float               #: digital peak-current slope compensation [V/s]
+    i_limit: float          #: cycle-by-cycle current limit [A] (inf: none)
+    max_duty: float
+    min_on: float           #: minimum on-time, also the blanking time [s]
+    skip: bool              #: pulse skipping
+    n_modes: int            #: 2 with an analog integrator's anti-windup, else 1
+    i_w: int                #: index of the analog integrator state (-1: none)
+    w_lo: float             #: integrator limits [V]
+    w_hi: float
+    e_band: float           #: a hold ends this far [V] past the error's zero
+
+
+class ControllerParams(NamedTuple):
+    """A controller's parameters (:class:`bucksim.engine.driver.LoopArgs`): its
+    scalars, and its arrays with the norms of its event rows."""
+
+    settings: ControllerSettings
+    on_times: np.ndarray    #: open loop: on-time per period [s] (or one for all)
+    Cvo: np.ndarray         #: digital: output-voltage row per system
+    Ad: np.ndarray          #: digital compensator (Tustin) matrices
+    Bd: np.ndarray
+    Cd: np.ndarray
+    Cu: np.ndarray          #: analog: control-output row per level
+    Cthr: np.ndarray        #: analog: comparator row per level
+    Ce: np.ndarray          #: analog: error row per level
+    e_w: np.ndarray         #: (m,) the integrator's event row
+    kthr: np.ndarray        #: curvature constants of Cthr, (n_levels, n_sys)
+    k3thr: np.ndarray       #: third-derivative constants of Cthr
+    kce: np.ndarray         #: ... of Ce
+    k3ce: np.ndarray
+    kw: np.ndarray          #: ... of e_w, (1, n_sys)
+    k3w: np.ndarray
+
+
+class CompensatorState(NamedTuple):
+    """Digital compensator state ``w`` (k,) and the delayed duties ``queue``; in place."""
+
+    w: np.ndarray
+    queue: np.ndarray
+
+
+class SegmentBuffers(NamedTuple):
+    """Segment columns written from row 0, and the per-period logs."""
+
+    t0: np.ndarray          #: (cap,) segment start [s]
+    dt: np.ndarray          #: (cap,) segment length [s]
+    cond: np.ndarray        #: (cap,) int8 conduction state
+    sys: np.ndarray         #: (cap,) int32 system id
+    x0: np.ndarray          #: (cap, n) start state
+    duty: np.ndarray        #: (periods,) on-time / T
+    u: np.ndarray           #: (periods,) control value (nan in open loop)
+
+
+def segment_buffers(cap: int, n: int, periods: int) -> SegmentBuffers:
+    """Empty segment columns for ``cap`` rows of ``n`` states, logs of ``periods``."""
+    return SegmentBuffers(np.empty(cap), np.empty(cap), np.empty(cap, np.int8),
+                          np.empty(cap, np.int32), np.empty((cap, n)),
+                          np.full(periods, np.nan), np.full(periods, np.nan))
