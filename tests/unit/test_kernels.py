@@ -1,7 +1,10 @@
-"""Kernel-level checks against scipy.linalg.expm (general reference library).
+"""Kernel-level checks of propagation and event location against scipy (expm, brentq).
 
-Each numba kernel is compared with a plain NumPy/SciPy computation of the
-same quantity, in the manner of a reference implementation.
+The cases here are the hard shapes: repeated and zero eigenvalues, a
+crossing pair inside one long interval, the Taylor finish below the table's
+last step (the 8th-order series), a function that starts on zero with zero
+slope. The one table comparing every kernel with its plain NumPy/SciPy
+reference is ``tests/unit/test_kernel_references.py``.
 """
 
 import numpy as np
