@@ -73,10 +73,10 @@ def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> Run:
     return run
 
 
-def _check_fits(scenario, n_states):
+def _check_fits(scenario, n_states, **where):
     """:func:`bucksim.engine.limits.check_run_fits`, its refusal placed at the key's line."""
     try:
-        check_run_fits(scenario, n_states)
+        check_run_fits(scenario, n_states, **where)
     except ScenarioError as err:
         raise locate_in(scenario, err) from None
 
@@ -285,8 +285,8 @@ def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | No
 
     stage = Stage(scenario)
     folder = os.path.dirname(os.path.abspath(os.fspath(path)))
-    check_run_fits(scenario, len(stage.state_names), stream=True,
-                   directory=folder if os.path.isdir(folder) else None)
+    _check_fits(scenario, len(stage.state_names), stream=True,
+                directory=folder if os.path.isdir(folder) else None)
     x0 = state = None
     if scenario.run.start == "steady-state":
         steady = _steady(scenario, "run.start = 'steady-state'")

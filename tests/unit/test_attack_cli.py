@@ -198,6 +198,10 @@ def test_oversized_runs_are_refused_up_front(tmp_path, capsys, stream, change, k
     args = ["run", toml, "--quiet", "--out", h5] + (["--stream"] if stream else [])
     code, _, err = run_cli(capsys, args)
     assert_plain_refusal(code, err, key, "would need")
+    # in memory or streamed, the refusal names the file's line of the key
+    line = next(i for i, text in enumerate(Path(toml).read_text(encoding="utf-8").splitlines(), 1)
+                if text.startswith(key.split(".")[1]))
+    assert f"rail.toml:{line}: {key}" in err, err
     assert sorted(p.name for p in tmp_path.iterdir()) == ["rail.toml"]
 
 
