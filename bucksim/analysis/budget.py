@@ -2,8 +2,9 @@
 
 :func:`estimate` solves the averaged DC operating point in continuous
 conduction, then evaluates each loss item with the formula a designer would
-write by hand. :func:`bucksim.crosscheck` compares these items with the
-waveform integrals.
+write by hand: conduction and switching as in [1]_, core loss by the iGSE for
+a triangular flux [2]_, the edge items as common practice [3]_.
+:func:`bucksim.crosscheck` compares these items with the waveform integrals.
 
 References
 ----------

@@ -8,7 +8,8 @@ product of table entries (its binary digits) and a remainder shorter than
 ``h_{K-1} ||A||_inf <= TAYLOR_REACH``, so the series is exact to rounding
 there (its first omitted term is below ``0.05**9 / 9! ~ 5e-18`` relative)
 and an interval costs about ``K / 2`` table products plus the series instead
-of one product per binary digit down to ``T 2**-47``.
+of one product per binary digit down to ``T 2**-47``. The table entries
+themselves come from scipy's scaling-and-squaring ``expm`` [1]_.
 
 References
 ----------

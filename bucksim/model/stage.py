@@ -21,15 +21,15 @@ capacitor current ``iC = iL - io``.
 
 Switch-node voltage per conduction state (``iL`` sign in brackets):
 
-===========  =================================  ==========================
-state        vsw                                current through the part
-===========  =================================  ==========================
-HIGH         Vin - (Rs + Rds_hs) iL             high-side channel: iL
-LOW          -Rds_ls iL                         low-side channel: iL
-LOW_DIODE    -Vf_ls - r_ls iL      (iL > 0)     low-side diode: iL
-HIGH_DIODE   Vin + Vf_hs - (Rs + r_hs) iL (iL<0) high-side body diode: -iL
-IDLE         vo (iL = 0, held)                  none
-===========  =================================  ==========================
+===========  ======================================  ==========================
+state        vsw                                     current through the part
+===========  ======================================  ==========================
+HIGH         Vin - (Rs + Rds_hs) iL                  high-side channel: iL
+LOW          -Rds_ls iL                              low-side channel: iL
+LOW_DIODE    -Vf_ls - r_ls iL (iL > 0)               low-side diode: iL
+HIGH_DIODE   Vin + Vf_hs - (Rs + r_hs) iL (iL < 0)   high-side body diode: -iL
+IDLE         vo (iL = 0, held)                       none
+===========  ======================================  ==========================
 
 Analog closed loop (``control.implementation = "analog"``): the compensator
 ``w' = Ac w + Bc e``, ``u = Cc w + Dc e`` (:func:`bucksim.model.compensator.analog_realization`)

@@ -7,7 +7,7 @@ states are part of the stage; its reference state is held at
 The controller's update is a discrete map and the comparator instant is a
 state-dependent event, so the Jacobian is taken by central differences of
 the exact map (each column costs two one-period simulations); Newton's
-iteration is otherwise that of :mod:`bucksim.steady.open_loop`. Near a solution the
+shooting iteration [1]_ is otherwise that of :mod:`bucksim.steady.open_loop`. Near a solution the
 map is smooth, so the differenced Jacobian is accurate to ~1e-7 and Newton
 still converges to round-off in a few steps. The eigenvalues of that
 Jacobian are the loop's Floquet multipliers.

@@ -2,7 +2,7 @@
 
 A periodic state is a fixed point ``x = P(x)`` of the one-period map. Newton's
 update solves ``(J - I) dx = -(P(x) - x)`` with ``J`` the map's Jacobian (the
-monodromy matrix); the step is halved until the residual falls (or meets the
+monodromy matrix) [1]_; the step is halved [2]_ until the residual falls (or meets the
 tolerance), so a poor start cannot throw the iteration out of the basin. When
 Newton stalls, the map itself is iterated ("brute-force" settling: what a
 stable operating point does on the bench, period after period) until the change

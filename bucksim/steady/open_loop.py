@@ -1,9 +1,9 @@
-"""Periodic steady state by shooting-Newton on the one-period map.
+"""Periodic steady state by shooting-Newton on the one-period map [1]_.
 
 The one-period map ``x_{k+1} = P(x_k)`` is evaluated exactly by the engine.
 Its Jacobian, the monodromy matrix, is the product of the segments' state
 transition matrices ``expm(A_s d_s)``, with a saltation matrix at every
-state-dependent event (the inductor current reaching zero):
+state-dependent event (the inductor current reaching zero) [2]_:
 
 .. math::
 

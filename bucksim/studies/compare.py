@@ -5,7 +5,9 @@ For one set of parts, :func:`compare` evaluates in periodic steady state
 * the asynchronous stage: high-side MOSFET and a freewheel diode (by default
   a diode with the low-side MOSFET's body-diode values);
 * forced PWM: synchronous, the low-side channel on for the whole off-time;
-* diode emulation: synchronous, the low side turned off at zero current;
+* diode emulation: synchronous, the low side turned off at zero current
+  (switch realisations and DCM as in [1]_; why the choice matters at light
+  and at heavy load: [2]_);
 
 at each load level: efficiency and the loss of every device (conduction and
 switching), the inductor (DCR, and core loss when the scenario gives core

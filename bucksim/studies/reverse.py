@@ -6,7 +6,8 @@ period and charge flows back toward the supply. :func:`reverse_current`
 evaluates, in periodic steady state at each load level, the minimum inductor
 current, the share of the period with ``iL < 0``, and the charge and energy
 sent back to the supply per cycle, and finds the load at which reversal
-starts, both in closed form and on the exact waveforms.
+starts, both in closed form (the ripple and the CCM/DCM boundary of [1]_; the
+reversal rule [2]_) and on the exact waveforms.
 
 Diode emulation and the asynchronous stage cannot reverse (the low side stops
 at zero current); for them the same boundary is where the stage enters
