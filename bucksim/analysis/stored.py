@@ -20,7 +20,17 @@ a corrupt file is refused wherever the corruption lies.
 
 from __future__ import annotations
 
+from bucksim.analysis.extrema import piece_extrema
+from bucksim.analysis.summarize import summarize
 from bucksim.analysis.summary import Summary
+from bucksim.analysis.transients import (
+    DEFAULT_BAND,
+    _events,
+    _pieces,
+    _settle_time,
+    _target,
+    event_record,
+)
 from bucksim.engine.driver import EngineResult
 from bucksim.errors import StorageError
 from bucksim.io.runfile import guarded_read, open_run_file, read_rows
@@ -94,8 +104,6 @@ class _FileSummary:
 
     # ------------------------------------------------------------------ the summary
     def summary(self, cycles):
-        from bucksim.analysis.summarize import summarize
-
         head = self.head
         sc = head.scenario
         stats = self.scan()  # checks every row before any metric is trusted
@@ -108,8 +116,6 @@ class _FileSummary:
 
     def scan(self):
         """Check every row; per event, each block's extremes of vo and iL."""
-        from bucksim.analysis.transients import _events
-
         head = self.head
         n = head.n_segments
         self.first_t0 = float(guarded_read(head.path, self.t0.__getitem__, 0))
@@ -136,9 +142,6 @@ class _FileSummary:
     def block_extrema(run, rows, ta, tb, with_pieces=False):
         """Pieces of ``[ta, tb]`` among the first ``rows`` rows of a block run, and the
         extremes of vo and iL on them (None if the block holds none)."""
-        from bucksim.analysis.extrema import piece_extrema
-        from bucksim.analysis.transients import _pieces
-
         idx, tau_a, tau_b = _pieces(run, ta, tb)
         keep = idx < rows  # the extra row belongs to the next block
         idx, tau_a, tau_b = idx[keep], tau_a[keep], tau_b[keep]
@@ -152,8 +155,6 @@ class _FileSummary:
 
     def target(self, ta, tb):
         """The settled value of an event's interval, from the rows around its end."""
-        from bucksim.analysis.transients import _target
-
         sc = self.head.scenario
         a = self.row_at(max(ta, tb - sc.period), before=True)
         b = min(self.row_at(tb) + 1, self.head.n_segments)
@@ -161,8 +162,6 @@ class _FileSummary:
 
     def transients(self, tail, stats):
         """The per-event metrics of :func:`bucksim.analysis.transients.transients`, over blocks."""
-        from bucksim.analysis.transients import DEFAULT_BAND, _settle_time
-
         band = DEFAULT_BAND
         events = self.events
         out = []
@@ -184,20 +183,6 @@ class _FileSummary:
                 run = self.run(a, b)
                 idx, ta_, tb_, lo, hi = self.block_extrema(run, b - a, t_ev, tb, True)
                 t_last = _settle_time(run, idx, ta_, tb_, lo_b, hi_b, lo, hi)
-            if t_last is None:          # never left the band
-                settle, settled = 0.0, True
-            elif t_last >= tb - 1e-15 * max(tb, 1.0):
-                settle, settled = None, False   # still outside when the window ends
-            else:
-                settle, settled = t_last - t_ev, True
-            out.append({
-                "event": kind, "time": float(t_ev), "reference": float(ref),
-                "vo_max": vmax, "vo_min": vmin,
-                "overshoot": max(vmax - ref, 0.0), "undershoot": max(ref - vmin, 0.0),
-                "overshoot_percent": 100 * max(vmax - ref, 0.0) / abs(ref) if ref else 0.0,
-                "undershoot_percent": 100 * max(ref - vmin, 0.0) / abs(ref) if ref else 0.0,
-                "settling_time": settle, "settled": settled, "band": band,
-                "il_peak": float(il_peak),
-            })
+            out.append(event_record(kind, t_ev, tb, ref, vmin, vmax, il_peak, band, t_last))
         return out
 

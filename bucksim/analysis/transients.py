@@ -136,20 +136,26 @@ def transients(run, band: float = DEFAULT_BAND) -> list[dict]:
         width = band * abs(ref)
         lo_b, hi_b = ref - width, ref + width
         t_last = _settle_time(run, idx, ta_, tb_, lo_b, hi_b, lo, hi)
-        if t_last is None:          # never left the band
-            settle, settled = 0.0, True
-        elif t_last >= tb - 1e-15 * max(tb, 1.0):
-            settle, settled = None, False   # still outside when the window ends
-        else:
-            settle, settled = t_last - t_ev, True
-        vmax, vmin = float(hi.max()), float(lo.min())
-        out.append({
-            "event": kind, "time": float(t_ev), "reference": float(ref),
-            "vo_max": vmax, "vo_min": vmin,
-            "overshoot": max(vmax - ref, 0.0), "undershoot": max(ref - vmin, 0.0),
-            "overshoot_percent": 100 * max(vmax - ref, 0.0) / abs(ref) if ref else 0.0,
-            "undershoot_percent": 100 * max(ref - vmin, 0.0) / abs(ref) if ref else 0.0,
-            "settling_time": settle, "settled": settled, "band": band,
-            "il_peak": float(il_hi.max()),
-        })
+        out.append(event_record(kind, t_ev, tb, ref, float(lo.min()), float(hi.max()),
+                                float(il_hi.max()), band, t_last))
     return out
+
+
+def event_record(kind, t_ev, tb, ref, vmin, vmax, il_peak, band, t_last) -> dict:
+    """One event's metrics (keys as in :func:`transients`) from its extrema and the last
+    instant ``t_last`` [s] outside the band (None: never left it); ``tb`` ends its window."""
+    if t_last is None:          # never left the band
+        settle, settled = 0.0, True
+    elif t_last >= tb - 1e-15 * max(tb, 1.0):
+        settle, settled = None, False   # still outside when the window ends
+    else:
+        settle, settled = t_last - t_ev, True
+    return {
+        "event": kind, "time": float(t_ev), "reference": float(ref),
+        "vo_max": vmax, "vo_min": vmin,
+        "overshoot": max(vmax - ref, 0.0), "undershoot": max(ref - vmin, 0.0),
+        "overshoot_percent": 100 * max(vmax - ref, 0.0) / abs(ref) if ref else 0.0,
+        "undershoot_percent": 100 * max(ref - vmin, 0.0) / abs(ref) if ref else 0.0,
+        "settling_time": settle, "settled": settled, "band": band,
+        "il_peak": float(il_peak),
+    }

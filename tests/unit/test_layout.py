@@ -37,15 +37,9 @@ PYTHON_TREES = ("bucksim", "tests", "benchmarks", "tools", "docs")
 #: The only part of the package that talks to the terminal.
 CLI = "bucksim/cli/"
 
-# Over the limits when this test was written (issue 12, in progress): each
-# is an expected failure of its own, strict, so it turns red the moment it
-# is fixed and is then struck from the list. Anything not listed must hold.
-LONG_MODULES = {
-}
-#: The cycle loop has a limit of its own (MAX_CYCLE_LOOP_LINES): numba
-#: inlines its phase helpers, but it still reads as one period.
-LONG_FUNCTIONS = {
-}
+#: The cycle loop has a limit of its own (MAX_CYCLE_LOOP_LINES). It is still
+#: over it (issue 12): a strict expected failure, which turns red the moment
+#: the loop is short enough; then set this to "".
 LONG_CYCLE_LOOP = "phases and controller decisions become helpers"
 
 
@@ -265,26 +259,14 @@ def test_import_graph_is_acyclic():
 
 def test_modules_are_short():
     over = {m: n for m, n in module_lengths().items()
-            if n > MAX_MODULE_LINES and m not in LONG_MODULES}
+            if n > MAX_MODULE_LINES}
     assert over == {}, f"modules over {MAX_MODULE_LINES} lines"
-
-
-@pytest.mark.parametrize("module", sorted(LONG_MODULES))
-@pytest.mark.xfail(strict=True, reason="over 500 lines, issue 12, in progress")
-def test_listed_long_module_is_short(module):
-    assert module_lengths().get(module, 0) <= MAX_MODULE_LINES
 
 
 def test_functions_are_short():
     over = {f: n for f, n in function_lengths().items()
-            if n > MAX_FUNCTION_LINES and f not in LONG_FUNCTIONS and f != CYCLE_LOOP}
+            if n > MAX_FUNCTION_LINES and f != CYCLE_LOOP}
     assert over == {}, f"functions over {MAX_FUNCTION_LINES} lines"
-
-
-@pytest.mark.parametrize("function", sorted(LONG_FUNCTIONS))
-@pytest.mark.xfail(strict=True, reason="over 80 lines, issue 12, in progress")
-def test_listed_long_function_is_short(function):
-    assert function_lengths().get(function, 0) <= MAX_FUNCTION_LINES
 
 
 @pytest.mark.xfail(bool(LONG_CYCLE_LOOP), strict=True,
