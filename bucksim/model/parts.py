@@ -161,19 +161,30 @@ class Diode:
     """Diode as a forward drop ``vf`` [V] plus series ``r`` [ohm].
 
     ``qrr`` [C] is the reverse-recovery charge drawn when the diode is forced
-    off by the opposite switch. ``section`` is the scenario key it came from
-    (used in error messages only).
+    off by the opposite switch: a fixed charge per recovery, or, with
+    ``tau`` [s] (the charge-control lifetime), the charge stored by the
+    forward current, ``dq/dt = i_F - q / tau``; ``qrr_current`` [A] is the
+    forward current at which a stated ``qrr`` was measured. ``cj`` [F] is
+    the junction capacitance (a freewheel diode's share of the switch node's
+    capacitance). ``section`` is the scenario key it came from (used in
+    error messages only).
     """
 
     vf: float
     r: float = 0.0
     qrr: float = 0.0
+    cj: float = 0.0
+    tau: float = 0.0
+    qrr_current: float = 0.0
     section: str = field(default="low_side", compare=False, repr=False)
 
     def __post_init__(self):
         _non_negative(f"{self.section}.vf", self.vf, "V")
         _non_negative(f"{self.section}.r", self.r, "ohm")
         _non_negative(f"{self.section}.qrr", self.qrr, "C")
+        _non_negative(f"{self.section}.cj", self.cj, "F")
+        _non_negative(f"{self.section}.tau", self.tau, "s")
+        _non_negative(f"{self.section}.qrr_current", self.qrr_current, "A")
 
 
 @dataclass(frozen=True)

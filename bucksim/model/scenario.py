@@ -10,9 +10,10 @@ prefix and the unit (``"2.2 uH"``, ``"500 kHz"``; see :mod:`bucksim.model.units`
     [switching]         frequency, strategy, dead_time = [falling, rising]
     [inductor]          inductance, dcr = 0, core = {k, alpha, beta, volume, turns, area}
     [output_capacitor]  capacitance, esr = 0
-    [high_side]         rds_on, body_diode = {vf, r = 0, qrr = 0},
+    [high_side]         rds_on, body_diode = {vf, r = 0, qrr = 0, tau = 0, qrr_current = 0},
                         rise_time, fall_time, coss, qg, gate_voltage (all = 0)
-    [low_side]          device = "mosfet" (keys as [high_side]) | "diode" (vf, r, qrr)
+    [low_side]          device = "mosfet" (keys as [high_side]) | "diode" (vf, r, qrr, tau,
+                        qrr_current, cj)
     [load]              resistance (absent or inf: none), current = 0,
                         steps = [{time, resistance?, current?}, ...]
     [control]           mode = "open-loop", duty, soft_start = 0, reference,
@@ -63,7 +64,7 @@ SWITCHING_KEYS = ("frequency", "strategy", "dead_time")
 INDUCTOR_KEYS = ("inductance", "dcr", "core")
 CORE_KEYS = ("k", "alpha", "beta", "volume", "turns", "area")
 CAPACITOR_KEYS = ("capacitance", "esr")
-DIODE_KEYS = ("vf", "r", "qrr")
+DIODE_KEYS = ("vf", "r", "qrr", "cj", "tau", "qrr_current")
 MOSFET_KEYS = ("rds_on", "body_diode", "rise_time", "fall_time", "coss", "qg", "gate_voltage")
 LOW_SIDE_DEVICES = ("mosfet", "diode")
 #: ``profile`` (load levels with their share of time) is read by
@@ -252,7 +253,9 @@ def _capacitor(t):
 
 def _diode(t):
     return parts.Diode(vf=t.quantity("vf", "V"), r=t.quantity("r", "ohm", 0.0),
-                       qrr=t.quantity("qrr", "C", 0.0), section=t.key)
+                       qrr=t.quantity("qrr", "C", 0.0), cj=t.quantity("cj", "F", 0.0),
+                       tau=t.quantity("tau", "s", 0.0),
+                       qrr_current=t.quantity("qrr_current", "A", 0.0), section=t.key)
 
 
 def _mosfet(t):
@@ -329,7 +332,9 @@ def _drop_none(d):
 
 
 def _diode_dict(d):
-    return {"vf": d.vf, "r": d.r, "qrr": d.qrr}
+    out = {"vf": d.vf, "r": d.r, "qrr": d.qrr}
+    out.update({k: getattr(d, k) for k in ("cj", "tau", "qrr_current") if getattr(d, k)})
+    return out
 
 
 def _mosfet_dict(m):
