@@ -161,13 +161,24 @@ class Diode:
     """Diode as a forward drop ``vf`` [V] plus series ``r`` [ohm].
 
     ``qrr`` [C] is the reverse-recovery charge drawn when the diode is forced
-    off by the opposite switch: a fixed charge per recovery, or, with
-    ``tau`` [s] (the charge-control lifetime), the charge stored by the
-    forward current, ``dq/dt = i_F - q / tau``; ``qrr_current`` [A] is the
-    forward current at which a stated ``qrr`` was measured. ``cj`` [F] is
-    the junction capacitance (a freewheel diode's share of the switch node's
-    capacitance). ``section`` is the scenario key it came from (used in
-    error messages only).
+    off by the opposite switch. ``tau`` [s] (the charge-control lifetime)
+    turns on the stored-charge model ``dq/dt = i_F - q / tau``;
+    ``qrr_current`` [A] is the forward current at which a stated ``qrr`` was
+    measured (after long conduction). The keys combine as follows
+    (:func:`bucksim.analysis.recovery.recovery_parameters`):
+
+    - ``qrr`` alone: a fixed charge per forced recovery;
+    - ``qrr`` and ``qrr_current``: ``tau = qrr / qrr_current``, all the stored
+      charge is swept out (``k = 1``);
+    - ``tau`` alone: ``k = 1``;
+    - ``tau``, ``qrr`` and ``qrr_current``: the swept-out share
+      ``k = qrr / (qrr_current tau)``, which must lie in (0, 1];
+    - ``qrr_current`` without ``qrr``, or ``tau`` and ``qrr`` without
+      ``qrr_current``: refused.
+
+    ``cj`` [F] is the junction capacitance (a freewheel diode's share of the
+    switch node's capacitance). ``section`` is the scenario key it came from
+    (used in error messages only).
     """
 
     vf: float
@@ -185,6 +196,25 @@ class Diode:
         _non_negative(f"{self.section}.cj", self.cj, "F")
         _non_negative(f"{self.section}.tau", self.tau, "s")
         _non_negative(f"{self.section}.qrr_current", self.qrr_current, "A")
+        self._check_recovery_keys()
+
+    def _check_recovery_keys(self):
+        """Refuse combinations of ``qrr``, ``tau`` and ``qrr_current`` that say nothing
+        definite (see the class docstring)."""
+        s = self.section
+        if self.qrr_current > 0 and self.qrr == 0:
+            raise ScenarioError(f"{s}.qrr_current", "is the forward current at which qrr was "
+                                "measured: give qrr [C] with it, or leave qrr_current out",
+                                self.qrr_current)
+        if self.tau > 0 and self.qrr > 0 and self.qrr_current == 0:
+            raise ScenarioError(f"{s}.qrr_current", "must be > 0 A when tau and qrr are both "
+                                "given (the forward current at which qrr was measured); or "
+                                "give tau alone, or qrr with qrr_current", self.qrr_current)
+        # 1e-12: tau stated as exactly qrr / qrr_current must not fail on rounding
+        if self.tau > 0 and self.qrr > self.qrr_current * self.tau * (1 + 1e-12):
+            raise ScenarioError(f"{s}.tau", f"must be >= qrr / qrr_current = "
+                                f"{self.qrr / self.qrr_current:.6g} s (the swept-out share "
+                                "qrr / (qrr_current tau) must lie in (0, 1])", self.tau)
 
 
 @dataclass(frozen=True)
