@@ -53,7 +53,9 @@ the lag ``tau = R Cn`` of the branch, so the inductor sees ``dV tau`` less
 volt-seconds per jump ``dV``: the currents differ by ``dV tau / L`` per edge,
 relative differences of order ``R Cn / T`` (1e-6 to 1e-5 for milliohm
 branches and nanofarad nodes). :attr:`NodeTrace.lags` lists each jump's
-``(time, dV, tau)`` so that a comparison can bound what it should see.
+``(time, dV, tau)`` and :meth:`NodeTrace.drift_lags` the same for the node
+trailing its moving conducting value (``R^2 Cn diL/dt``, far smaller), so
+that a comparison can bound what it should see.
 
 References
 ----------
@@ -211,7 +213,7 @@ class NodeTrace:
     event_times : ndarray [s]   every diode on/off and diode-emulation turn-off
     lags : ndarray (n, 3)   ``(time [s], dV [V], tau [s])`` of every place where
         the engine's node jumps (a channel closing, a diode taking over) and this
-        model follows with the lag ``tau = R Cn``
+        model follows with the lag ``tau = R Cn`` (see also :meth:`drift_lags`)
     stop : float [s]
     """
 
@@ -235,6 +237,23 @@ class NodeTrace:
             m = idx == i
             out[m] = self.solutions[i](times[m]).T
         return out
+
+    def drift_lags(self):
+        """``(start [s], dV [V], tau [s])`` of the node following its moving
+        conducting value: in an interval where branches of total conductance
+        ``g`` conduct, that value ``(sum g_j V_j - iL) / g`` moves by
+        ``dV = -d(iL) / g`` and the node trails it by ``tau = Cn / g``, a
+        volt-second difference up to ``|dV| tau`` (listed at the start)."""
+        c = self.circuit
+        ends = np.append(self.t0[1:], self.stop)
+        rows = []
+        for t0, t1, topo, sol in zip(self.t0, ends, self.topology, self.solutions,
+                                     strict=True):
+            g_h, _, g_l, _ = c.branches(topo)
+            g = g_h + g_l
+            if g > 0.0:
+                rows.append((t0, -(sol(t1)[0] - sol(t0)[0]) / g, c.cn / g))
+        return np.array(rows, float).reshape(-1, 3)
 
     def at(self, times, signal):
         """One signal at ``times`` [s]: ``iL``, ``vC``, ``vsw``, ``vo`` or ``energy``."""
