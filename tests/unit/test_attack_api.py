@@ -31,6 +31,8 @@ from bucksim.model.parts import (
     Switching,
 )
 from bucksim.model.scenario import replace_key
+from bucksim.model.stage import Stage
+from bucksim.steady.result import periodic_scenario
 from tests.references.analog_solver import reference_loop
 
 CORE = "scenarios/core_rail_1v0.toml"
@@ -51,6 +53,11 @@ def rail(control, cycles=200, start="rest"):
 def short(path=CORE, cycles=50):
     sc = bucksim.load_scenario(path)
     return dataclasses.replace(sc, run=dataclasses.replace(sc.run, cycles=cycles, duration=None))
+
+
+def without_node(sc):
+    """The scenario with no switch-node capacitance (state ``[iL, vC]``, no ``vn``)."""
+    return replace_key(replace_key(sc, "high_side.coss", 0.0), "low_side.coss", 0.0)
 
 
 # ----------------------------------------------------------------------------- item 4: keys
@@ -84,13 +91,18 @@ def run():
 
 
 def test_at_accepts_any_shape_and_gives_the_same_values_as_a_flat_array(run):
-    t = np.linspace(0.1, 0.9, 12).reshape(3, 4) * run.t_end
-    x = run.at(t)
-    assert x.shape == (3, 4, 2)
-    assert np.array_equal(x.reshape(12, 2), run.at(t.ravel()))
-    vo = run.at(t, "vo")
-    assert vo.shape == (3, 4) and np.array_equal(vo.ravel(), run.at(t.ravel(), "vo"))
-    assert run.at(0.5 * run.t_end).shape == (1, 2)      # a scalar counts as one element
+    # the core rail has node capacitance (states iL, vC, vn); the same rail without it has two
+    for r in (run, bucksim.simulate(without_node(short()))):
+        n = len(r.stage.state_names)
+        assert n == (3 if r.stage.node else 2)
+        t = np.linspace(0.1, 0.9, 12).reshape(3, 4) * r.t_end
+        x = r.at(t)
+        assert x.shape == (3, 4, n)
+        assert np.array_equal(x.reshape(12, n), r.at(t.ravel()))
+        vo = r.at(t, "vo")
+        assert vo.shape == (3, 4) and np.array_equal(vo.ravel(), r.at(t.ravel(), "vo"))
+        assert r.at(0.5 * r.t_end).shape == (1, n)      # a scalar counts as one element
+    assert run.stage.node
 
 
 @pytest.mark.parametrize("bad", [np.nan, -1e-9, 1.0, np.inf])
@@ -236,14 +248,24 @@ def test_closed_loop_max_iter_and_tol_are_honoured(settled):
 
 def test_open_loop_x0_max_iter_and_tol_are_honoured():
     sc = short()
+    stage = Stage(sc)
+    assert stage.state_names == ("iL", "vC", "vn")      # the core rail has node capacitance
     x0 = np.array([1.0, 0.5])
     ss = bucksim.steady_state(sc, x0=x0, max_iter=0, max_brute_cycles=0)
-    assert ss.status == 2 and np.array_equal(ss.x, x0) and "max_iter = 0" in ss.message
+    assert ss.status == 2 and "max_iter = 0" in ss.message
+    assert ss.x.shape == (stage.n,) and np.array_equal(ss.x[:2], x0)
+    # a period starts with the high side on, which sets the node: the map of [iL, vC]
+    # never reads a start value of vn, and the state carries the node voltage the
+    # period from x0 ends with
+    node = bucksim.steady_state(sc, x0=[1.0, 0.5, 5.0], max_iter=0, max_brute_cycles=0)
+    assert np.array_equal(node.x, ss.x) and node.residual == ss.residual
+    one = bucksim.simulate(periodic_scenario(sc), x0=np.append(x0, 5.0))
+    assert ss.x[stage.i_node] == pytest.approx(one.x_end[stage.i_node], rel=1e-12, abs=1e-12)
     ss = bucksim.steady_state(sc, x0=x0)
     assert ss.success and ss.residual <= 1e-12
     # a tolerance the start already meets: no update at all
     lazy = bucksim.steady_state(sc, x0=x0, tol=10.0)
-    assert lazy.iterations == 0 and np.array_equal(lazy.x, x0)
+    assert lazy.iterations == 0 and np.array_equal(lazy.x[:2], x0)
     with pytest.raises(ValueError, match="controller"):
         bucksim.steady_state(sc, controller=[0.0])
 
@@ -270,7 +292,7 @@ def unstable_telemetry(start="steady-state"):
 
 
 def test_unstable_periodic_state_is_found_flagged_and_matches_the_reference():
-    sc = unstable_telemetry()
+    sc = without_node(unstable_telemetry())  # the reference has no switch-node capacitance
     ss = bucksim.steady_state(sc)
     _, mu_ref, res = reference_loop(sc).steady_state()
     assert res < 1e-10
