@@ -49,8 +49,10 @@ from bucksim.model.parts import (
 from bucksim.model.stage import Stage
 
 
-def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9)) -> Scenario:
-    """A 12 V -> 3.3 V, 500 kHz bench rail (invented demo values)."""
+def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9),
+         coss=(0.0, 0.0)) -> Scenario:
+    """A 12 V -> 3.3 V, 500 kHz bench rail (invented demo values); ``coss`` (high, low)
+    [F] above 0 makes the switch node a state."""
     return Scenario(
         title=f"bench {strategy}",
         supply=Supply(12.0),
@@ -58,9 +60,9 @@ def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9)) -> Sc
         inductor=Inductor(4.7e-6, 0.012),
         output_capacitor=Capacitor(47e-6, 0.004),
         high_side=Mosfet(0.012, Diode(0.75, 0.02, section="high_side.body_diode"),
-                         section="high_side"),
+                         coss=coss[0], section="high_side"),
         low_side=Mosfet(0.006, Diode(0.75, 0.02, section="low_side.body_diode"),
-                        section="low_side"),
+                        coss=coss[1], section="low_side"),
         load=Load(load_ohm),
         control=Control(duty=0.285),
         run=RunSettings(cycles=cycles),
@@ -141,6 +143,12 @@ def main(argv=None):
 
     fpwm, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles))
     de, _ = engine_rate(rail("diode-emulation", 30.0, a.cycles))
+    # the switch node as a state (400 pF + 1.2 nF, invented): swings in both dead
+    # times and, in DCM, the node's ring in the idle interval
+    node = (400e-12, 1.2e-9)
+    fpwm_node, res_node = engine_rate(rail("forced-pwm", 0.66, a.cycles, coss=node))
+    de_node, _ = engine_rate(rail("diode-emulation", 30.0, a.cycles, coss=node))
+    seg_node = len(res_node.t0) / a.cycles
 
     closed = closed_loop_rate(a.cycles)
     analog = closed_loop_rate(a.cycles, implementation="analog")
@@ -159,6 +167,9 @@ def main(argv=None):
                    f"python {platform.python_version()}",
         "forced_pwm_cycles_per_s": fpwm,
         "diode_emulation_dcm_cycles_per_s": de,
+        "forced_pwm_node_cycles_per_s": fpwm_node,
+        "forced_pwm_node_segments_per_cycle": seg_node,
+        "diode_emulation_dcm_node_cycles_per_s": de_node,
         "closed_loop_dcm_cycles_per_s": closed,
         "analog_loop_dcm_cycles_per_s": analog,
         "solve_ivp_cycles_per_s": ode_rate,
@@ -169,6 +180,10 @@ def main(argv=None):
     print("| measurement | figure |\n| --- | --- |")
     print(f"| engine, forced PWM + dead time, CCM, segments kept | {fpwm:.3g} cycles/s |")
     print(f"| engine, diode emulation, DCM (zero-current event each cycle) | {de:.3g} cycles/s |")
+    print(f"| engine, forced PWM with node capacitance (node a state, {seg_node:.0f} segments "
+          f"a cycle) | {fpwm_node:.3g} cycles/s |")
+    print(f"| engine, diode emulation in DCM with node capacitance (node ring) "
+          f"| {de_node:.3g} cycles/s |")
     print(f"| engine, digital voltage-mode loop, diode emulation in DCM | {closed:.3g} cycles/s |")
     print(f"| engine, analog voltage-mode loop (PI, 4 states), diode emulation in DCM "
           f"| {analog:.3g} cycles/s |")

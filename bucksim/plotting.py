@@ -23,9 +23,9 @@ import numpy as np
 # registering the `plot` verb keeps `bucksim --help` fast
 
 # A plain palette of our own: muted, distinguishable in grey-scale print.
-STATE_COLOURS = ("#c8553d", "#2e86ab", "#f2a541", "#8e6c8a", "#d9d9d9")
+STATE_COLOURS = ("#c8553d", "#2e86ab", "#f2a541", "#8e6c8a", "#d9d9d9", "#9bc49b")
 STATE_LABELS = ("high side on", "low side on", "low-side diode", "high-side diode",
-                "idle (both off)")
+                "idle (both off)", "node open (swing, ring)")
 STRATEGY_STYLE = {"asynchronous": ("#8c5e34", "s", "-"),
                   "forced-pwm": ("#3b6ea5", "o", "-"),
                   "diode-emulation": ("#4f9d69", "^", "--")}

@@ -100,7 +100,7 @@ def simulate_settled(scenario, cycles: int | None = None) -> Run:
     if sc.control.mode != "open-loop":
         run = _simulate_closed_loop(sc, ss.x, False, state=ss.controller)
     else:
-        run = simulate(sc)
+        run = simulate(sc, x0=ss.x)     # the whole state: the node's too
     run.steady_state = ss
     return run
 
@@ -174,7 +174,8 @@ def loop_settle_verdict(control, duty, status, last: int = 200):
     duty : array_like
         Per-period duty [-] (NaN where a period did not start).
     status : int
-        The engine's status; only a completed run (0) is judged.
+        The engine's status; a completed run (0) is judged, and a diverged one
+        (1: the cycle loop stops at the same range) gets the figure.
     last : int
         Periods at the end that are inspected.
 
@@ -226,7 +227,8 @@ def state_range_verdict(states, status):
     states : array_like
         State values of a run (any shape: segment start states, end state).
     status : int
-        The engine's status; only a completed run (0) is judged.
+        The engine's status; a completed run (0) is judged, and a diverged one
+        (1: the cycle loop stops at the same range) gets the figure.
 
     Returns
     -------
@@ -234,7 +236,7 @@ def state_range_verdict(states, status):
         ``STATUS_DIVERGED`` (1) and a message when some state is NaN, infinite
         or above :data:`STATE_RANGE` in magnitude; else ``status`` and None.
     """
-    if status != STATUS_OK:
+    if status not in (STATUS_OK, STATUS_DIVERGED):
         return status, None
     a = np.abs(np.asarray(states, dtype=float))
     if a.size == 0:
@@ -242,6 +244,8 @@ def state_range_verdict(states, status):
     peak = float(np.max(a))     # NaN propagates through max
     if np.isfinite(peak) and peak <= STATE_RANGE:
         return status, None
+    if status == STATUS_DIVERGED and not np.isfinite(peak):
+        return status, None     # the engine's own message says so already
     return STATUS_DIVERGED, (f"state diverged: a state reached {peak:.3g} (SI units), beyond "
                              f"{STATE_RANGE:.3g} where its square (energy, loss integrals) "
                              f"overflows; segments up to the end are kept")

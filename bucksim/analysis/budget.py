@@ -132,6 +132,7 @@ def _operating_point(scenario, D: float) -> dict:
     vf_h, r_h = hs.body_diode.vf, hs.body_diode.r
     d_ls = 1.0 - D - (tf + tr) * fs if sync else 0.0
     d_diode = 0.0 if sync else 1.0 - D
+    cn = node_capacitance(scenario)
 
     vo, io, ripple = D * vin, D * vin * g + icc, 0.0
     for _ in range(50):
@@ -148,6 +149,11 @@ def _operating_point(scenario, D: float) -> dict:
             else:
                 a0 += de * (vin + vf_h)
                 a1 += de * (rs + r_h)
+        if peak > 0 and cn > 0:
+            # the node's linear swing from Vin to -Vf at the peak current after the
+            # high side opens: it takes Cn (Vin + Vf) / I and averages (Vin - Vf) / 2
+            # where the diode would hold -Vf (derived)
+            a0 += fs * cn * (vin + vf_l) ** 2 / (2.0 * peak)
         vo_new = (a0 - a1 * icc) / (1.0 + a1 * g)
         io = g * vo_new + icc
         ripple = (vin - (rs + hs.rds_on + dcr) * io - vo_new) * D / (L * fs)
@@ -184,7 +190,9 @@ def estimate(scenario) -> LossBudget:
         - ``output_capacitor.conduction``: ``ESR dI^2/12``
         - ``supply.conduction``: ``Rs D (Io^2 + dI^2/12)``
         - ``switching.overlap``: ``0.5 Vin (I_valley tr + I_peak tf) fs``
-        - ``switching.coss``: ``0.5 (Coss_hs + Coss_ls) Vin^2 fs`` (hard turn-on)
+        - ``switching.coss``: the node's charge moved by closing switches,
+          ``0.5 Cn ((Vin + Vf)^2 + Vf^2) fs`` in CCM with dead times (see
+          :func:`_node_charge`; ``Cn`` from :func:`node_capacitance`)
         - ``switching.recovery``: ``Qrr Vin fs`` when a diode carries current
           at high-side turn-on
         - ``switching.gate``: ``(Qg_hs Vg_hs + Qg_ls Vg_ls) fs``
@@ -227,15 +235,22 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
         items.append(BudgetItem("low_side.conduction", "low_side", "conduction",
                                 ls.rds_on * d_ls * ms, "Rds_ls (1 - D - Dd)(Io^2 + dI^2/12)", EM))
         bd_l, bd_h = ls.body_diode, hs.body_diode
+        cn = node_capacitance(scenario)
         p_l = p_h = 0.0
-        for td, i_e in ((tf, pk), (tr, vl)):
+        # a body diode conducts once the node capacitance has swung to its clamp:
+        # at constant current I that takes Cn dV / I (derived)
+        swings = (op["vin"] - hs.rds_on * pk + bd_l.vf + bd_l.r * pk,
+                  bd_l.vf + (bd_l.r - ls.rds_on) * vl)
+        for td, i_e, dv in ((tf, pk, swings[0]), (tr, vl, swings[1])):
             if i_e >= 0:
+                td = max(td - cn * dv / i_e, 0.0) if i_e > 0 else td
                 p_l += (bd_l.vf * i_e + bd_l.r * i_e * i_e) * td * fs
             else:
                 p_h += (bd_h.vf * -i_e + bd_h.r * i_e * i_e) * td * fs
         items.append(BudgetItem("low_side_body_diode.conduction", "low_side_body_diode",
                                 "conduction", p_l,
-                                "sum over edges with I_e > 0 of (Vf I_e + r I_e^2) t_e fs", CP))
+                                "sum over edges with I_e > 0 of (Vf I_e + r I_e^2) t_e fs, "
+                                "t_e = t_dead - Cn dV / I_e (the node's swing first)", CP))
         items.append(BudgetItem("high_side_body_diode.conduction", "high_side_body_diode",
                                 "conduction", p_h,
                                 "sum over edges with I_e < 0 of (Vf |I_e| + r I_e^2) t_e fs", CP))
@@ -267,10 +282,10 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
     overlap = 0.5 * vin * (max(vl, 0.0) * hs.rise_time + max(pk, 0.0) * hs.fall_time) * fs
     items = [BudgetItem("switching.overlap", "high_side", "switching", overlap,
                         "0.5 Vin (I_valley t_rise + I_peak t_fall) fs", CP)]
-    c_node = hs.coss + (ls.coss if sync else 0.0)
-    items.append(BudgetItem("switching.coss", "high_side", "switching",
-                            0.5 * c_node * vin * vin * fs if hard_on else 0.0,
-                            "0.5 (Coss_hs + Coss_ls) Vin^2 fs (hard turn-on only)", CP))
+    coss, formula = _node_charge(scenario, op, hard_on)
+    items.append(BudgetItem("switching.coss", "high_side", "switching", coss * fs, formula,
+                            "derived (charge moved through a closing switch, Erickson & "
+                            "Maksimovic 3rd ed. ch. 4)"))
     qrr = ls.body_diode.qrr if sync else ls.qrr
     diode_at_turn_on = vl > 0 and (not sync or tr > 0)
     items.append(BudgetItem("switching.recovery", "high_side", "switching",
@@ -280,6 +295,64 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
     items.append(BudgetItem("switching.gate", "gate drive", "switching", gate * fs,
                             "(Qg_hs Vg_hs + Qg_ls Vg_ls) fs", CP))
     return items
+
+
+def node_capacitance(scenario) -> float:
+    """The switch node's capacitance [F]: high-side Coss plus the low-side MOSFET's
+    Coss or the freewheel diode's junction capacitance ``cj``."""
+    ls = scenario.low_side
+    return scenario.high_side.coss + (ls.coss if isinstance(ls, Mosfet) else ls.cj)
+
+
+def _node_charge(scenario, op, hard_on: bool) -> tuple[float, str]:
+    """Energy [J] per period that closing switches dissipate moving the node's charge.
+
+    A switch closing on the node at ``v_a`` that then holds it at ``v_b`` from a
+    source ``V_p`` dissipates ``Cn (v_b - v_a)(V_p - (v_a + v_b) / 2)``
+    (:mod:`bucksim.analysis.edges`). In CCM with dead times the high side
+    closes on the node clamped at ``-Vf`` by the low-side diode:
+    ``0.5 Cn (Vin + Vf)^2``; the low side closes on ``-Vf`` too: ``0.5 Cn
+    Vf^2``. With no rising (falling) dead time that switch closes on the
+    other channel's node voltage, ``0 (Vin)``: ``0.5 Cn Vin^2``. A negative
+    valley current swings the node up during the rising dead time, at most to
+    ``vo + sqrt(vo^2 + (Z I_valley)^2)``, ``Z = sqrt(L / Cn)`` (lossless L-Cn
+    swing, derived): the high side then closes on that voltage, or on a node
+    already clamped at ``Vin`` (full ZVS, no loss).
+    """
+    cn = node_capacitance(scenario)
+    vin, vo, vl = op["vin"], op["vo"], op["valley"]
+    ls = scenario.low_side
+    sync = isinstance(ls, Mosfet)
+    vf = ls.body_diode.vf if sync else ls.vf
+    tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
+    if not hard_on and sync and vl < 0:
+        z = math.sqrt(scenario.inductor.inductance / cn) if cn > 0 else 0.0
+        peak = min(vo + math.sqrt(vo * vo + (z * vl) ** 2), vin)
+        return 0.5 * cn * (vin - peak) ** 2, ("0.5 Cn (Vin - v_pk)^2 fs, v_pk = vo + "
+                                              "sqrt(vo^2 + (Z I_valley)^2) (partial ZVS)")
+    if not hard_on:
+        return 0.0, "none: the node swings to Vin before the high side closes"
+    r_d = ls.body_diode.r if sync else ls.r
+    r_hs = scenario.supply.resistance + scenario.high_side.rds_on
+    v_on = vin - r_hs * vl                      # the node once the high side conducts
+    # before it: the low-side channel's node (no rising dead time) or the diode's clamp
+    v_before = -ls.rds_on * vl if (sync and tr == 0) else -(vf + r_d * vl)
+    e_on = _transfer(cn, vin, v_before, v_on)
+    e_ls = 0.0
+    if sync:
+        pk = op["peak"]
+        v_ls = -ls.rds_on * pk
+        e_ls = _transfer(cn, 0.0, vin - r_hs * pk if tf == 0 else -(vf + r_d * pk), v_ls)
+    return e_on + e_ls, ("Cn (v_b - v_a)(V_p - (v_a + v_b)/2) fs per closing switch: "
+                         "~0.5 Cn (Vin + Vf)^2 at high-side turn-on from the diode "
+                         "(~Vin^2 without rising dead time), ~0.5 Cn Vf^2 at the low "
+                         "side's (~Vin^2 without falling dead time)")
+
+
+def _transfer(cn: float, v_path: float, v_a: float, v_b: float) -> float:
+    """Energy [J] a switch from a source at ``v_path`` dissipates taking the node from
+    ``v_a`` to ``v_b``: ``Cn (v_b - v_a)(v_path - (v_a + v_b) / 2)``."""
+    return cn * (v_b - v_a) * (v_path - 0.5 * (v_a + v_b))
 
 
 def _core_item(scenario, op) -> BudgetItem | None:

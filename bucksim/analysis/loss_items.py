@@ -9,7 +9,8 @@ from __future__ import annotations
 #: Loss items, in the order they are stacked and listed. The asynchronous
 #: stage's low side is the freewheel diode, kept apart from a MOSFET channel.
 LOSS_ITEMS = ("high_side.conduction", "high_side.switching", "high_side_body_diode.conduction",
-              "freewheel_diode.conduction", "low_side.conduction", "low_side.switching",
+              "freewheel_diode.conduction", "freewheel_diode.switching", "low_side.conduction",
+              "low_side.switching",
               "low_side_body_diode.conduction", "inductor.dcr", "inductor.core",
               "output_capacitor.esr", "supply.resistance")
 
@@ -17,6 +18,7 @@ _ITEM_LABELS = {
     "high_side.conduction": "high side conduction", "high_side.switching": "high side switching",
     "high_side_body_diode.conduction": "high-side body diode",
     "freewheel_diode.conduction": "freewheel diode",
+    "freewheel_diode.switching": "freewheel diode switching",
     "low_side.conduction": "low side conduction", "low_side.switching": "low side switching",
     "low_side_body_diode.conduction": "low-side body diode",
     "inductor.dcr": "inductor DCR", "inductor.core": "inductor core",

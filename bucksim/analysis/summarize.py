@@ -20,6 +20,7 @@ import math
 
 import numpy as np
 
+from bucksim.analysis.edges import node_transfers, node_voltage_at
 from bucksim.analysis.extrema import extrema
 from bucksim.analysis.moments import SegmentMoments
 from bucksim.analysis.summary import (
@@ -35,7 +36,7 @@ from bucksim.analysis.summary import (
 from bucksim.analysis.switching import switching_energy
 from bucksim.analysis.transients import transients as event_metrics
 from bucksim.analysis.windows import window_pieces
-from bucksim.model.stage import IDLE, current_reverses
+from bucksim.model.stage import IDLE, OPEN, current_reverses, zero_current_states
 
 
 def summarize(run, cycles: int | None = None) -> Summary:
@@ -53,20 +54,23 @@ def summarize(run, cycles: int | None = None) -> Summary:
     idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
     ig = WindowIntegrals(run, idx, tau_b - tau_a, z_a, width)
     devices, loss = _conduction(run.stage, ig, width)
-    e_sw = _switching(run, devices, t_start, t_stop)
-    loss += e_sw
+    e_sw, node = _switching(run, devices, t_start, t_stop)
+    loss += e_sw + node["high_side"] + node["low_side"]
     e_core = _core(run, devices, idx, tau_a, tau_b, width)
     loss += e_core
-    e_in = ig.integral("vin", "iin") + e_sw + e_core
+    # formula energies (overlap, recovery, gate, core) are added to both sides; the
+    # node's charge transfers are circuit: their source energy is the supply's own
+    e_in = ig.integral("vin", "iin") + float(np.sum(node["supply"])) + e_sw + e_core
     e_out = ig.integral("vo", "io")
     balance = _balance_error(run, t_start, e_in, e_out, loss)
     il_min, il_max = extrema(run, "iL", idx, tau_a, tau_b)
     vo_min, vo_max = extrema(run, "vo", idx, tau_a, tau_b)
-    idle = run.segments.conduction[idx] == IDLE
+    mode, dead_zero = _mode(run, idx, tau_b - tau_a)
     p_in, p_out = e_in / width, e_out / width
     return Summary(
         window=Window(start=t_start, stop=t_stop, cycles=n_cyc),
-        mode="dcm" if bool(np.any(idle & (tau_b - tau_a > 0))) else "ccm",
+        mode=mode,
+        zero_current_in_dead_time=dead_zero,
         reverse_current=current_reverses(il_min, il_max),
         output_voltage=OutputVoltage(mean=ig.mean("vo"), min=vo_min, max=vo_max,
                                      ripple=vo_max - vo_min),
@@ -79,6 +83,27 @@ def summarize(run, cycles: int | None = None) -> Summary:
         transients=tuple(Transient(**e) for e in event_metrics(run)),
         strategy=run.scenario.switching.strategy,
     )
+
+
+def _mode(run, idx, lengths):
+    """``(mode, zero current in a dead time)`` over the window's pieces.
+
+    ``"dcm"`` only where the stage blocks the current's reversal and idles
+    (diode emulation, asynchronous): a piece that starts at exactly zero
+    current after a zero-current event (the engine sets ``iL = 0`` there), in
+    ``IDLE`` or, with node capacitance, ``OPEN``. In forced PWM the same
+    happens only inside a dead time (a body diode stops conducting); that is
+    the flag, and the mode stays ``"ccm"``.
+    """
+    seg = run.segments
+    cond = seg.conduction[idx]
+    prev = seg.conduction[np.maximum(idx - 1, 0)]
+    stopped = np.isin(prev, sorted(zero_current_states(run.scenario.switching.strategy)))
+    idles = np.isin(cond, (IDLE, OPEN)) & (seg.x0[idx, 0] == 0.0) & (lengths > 0)
+    idles &= (cond == IDLE) | stopped
+    if run.scenario.switching.strategy == "forced-pwm":
+        return "ccm", bool(np.any(idles))
+    return ("dcm" if bool(np.any(idles)) else "ccm"), False
 
 
 def _window(run, cycles):
@@ -168,18 +193,24 @@ def _conduction(stage, ig, width):
 
 
 def _switching(run, devices, t_start, t_stop):
-    """Switching-event energies (drawn from the supply, dissipated in the switch)
-    booked to the two switches; returns their total [J]."""
+    """Switching energies booked to the two switches: the formula kinds (drawn from
+    the supply, dissipated in the switch) and, with node capacitance, the node's
+    charge transfers (``coss``, from :func:`~bucksim.analysis.edges.node_transfers`).
+    Returns the formula kinds' total [J] and the transfers."""
     width = t_stop - t_start
     sw = switching_energy(run, t_start, t_stop)
+    node = node_transfers(run, t_start)
     total = 0.0
     for name in ("high_side", "low_side"):
         parts = sw[name]
         energy = sum(parts.values())
+        total += energy
+        if run.stage.node:
+            parts["coss"] = node[name]
+            energy += node[name]
         devices[name]["switching_loss"] = energy / width
         devices[name]["switching"] = {kind: e / width for kind, e in parts.items()}
-        total += energy
-    return total
+    return total, node
 
 
 def _core(run, devices, idx, tau_a, tau_b, width):
@@ -199,12 +230,13 @@ def _balance_error(run, t_start, e_in, e_out, loss):
     stage = run.stage
     x_a = run.at([t_start])[0]
     x_b = run.x_end
-    d_stored = stage.stored_energy(x_b) - stage.stored_energy(x_a)
+    e_a = stage.stored_energy(x_a, node_voltage_at(run, t_start))
+    e_b = stage.stored_energy(x_b, node_voltage_at(run, run.t_end))
+    d_stored = e_b - e_a
     residual = e_in - e_out - loss - d_stored
     # the stored energy sets the rounding floor: an idle, unloaded stage moves
     # almost no energy, and its residual is rounding of the stored energy
-    ref = max(abs(e_in), abs(e_out) + abs(loss) + abs(d_stored),
-              stage.stored_energy(x_a), stage.stored_energy(x_b))
+    ref = max(abs(e_in), abs(e_out) + abs(loss) + abs(d_stored), e_a, e_b)
     return abs(residual) / ref if ref > 0 else 0.0
 
 

@@ -195,6 +195,8 @@ class Summary:
     efficiency : float            output over input power (0 when none is drawn)
     energy_balance_error : float  relative residual of the energy balance
     transients : tuple of Transient
+    zero_current_in_dead_time : bool  forced PWM: the current reached zero inside a
+        dead time (a body diode stopped conducting); the mode stays ``"ccm"``
     strategy : str or None        the stage's switching strategy (names the
         asynchronous low side a freewheel diode in :meth:`loss_items`); not
         part of :meth:`to_dict`
@@ -210,6 +212,7 @@ class Summary:
     efficiency: float
     energy_balance_error: float
     transients: tuple = ()
+    zero_current_in_dead_time: bool = False
     strategy: str | None = field(default=None, compare=False, metadata={"internal": True})
 
     # -- plain views ------------------------------------------------------------
@@ -228,6 +231,7 @@ class Summary:
                    power=Power(**data["power"]), efficiency=data["efficiency"],
                    energy_balance_error=data["energy_balance_error"],
                    transients=tuple(Transient(**e) for e in data.get("transients", ())),
+                   zero_current_in_dead_time=data.get("zero_current_in_dead_time", False),
                    strategy=strategy)
 
     def with_transients(self, events) -> Summary:
@@ -253,7 +257,9 @@ class Summary:
         """Loss items [W] (keys of :data:`LOSS_ITEMS`, in that order); they add up
         to ``power.loss``. An asynchronous stage's low side is booked as
         ``freewheel_diode.conduction`` (its reverse recovery is dissipated in,
-        and booked to, the high side)."""
+        and booked to, the high side) and, with node capacitance,
+        ``freewheel_diode.switching`` (the node's charge that moves along its
+        path, :mod:`bucksim.analysis.edges`)."""
         d = self.devices
         out = {}
         for dev in ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode"):
@@ -261,6 +267,8 @@ class Summary:
                 continue
             if dev == "low_side" and self.strategy == "asynchronous":
                 out["freewheel_diode.conduction"] = d[dev].conduction_loss
+                if d[dev].switching_loss:   # the node's charge moved along its path
+                    out["freewheel_diode.switching"] = d[dev].switching_loss
                 continue
             out[f"{dev}.conduction"] = d[dev].conduction_loss
             if not dev.endswith("body_diode"):

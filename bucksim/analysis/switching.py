@@ -1,32 +1,38 @@
-"""Switching-event losses on top of ideal-switch waveforms.
+"""Switching-event energies that are still formulas, at the exact currents.
 
-The engine's switches are ideal; the energy of each commutation is added at
-the instant it happens, with the exact inductor current there [1]_. Rules
-(common practice [2]_), per transition between consecutive segments (``i`` =
-iL at the instant, ``V`` = the voltage the switch node must swing):
+With node capacitance (``coss``/``cj`` > 0) the switch node is part of the
+circuit (:mod:`bucksim.model.stage`): its swings, ZVS or partial ZVS, the
+DCM ring and the charge each closing channel moves are in the waveforms, and
+:mod:`bucksim.analysis.edges` books that charge's energy (the ``coss`` kind)
+from the integrals. What remains a formula is added here at the instant of
+each commutation, with the exact inductor current there [1]_ (common
+practice [2]_; ``i`` = iL at the instant):
 
 ============================  =========================================================
 transition                    energy [J]
 ============================  =========================================================
 high side turns on            gate ``Qg_hs Vg_hs`` (always);
-  from low diode/low/idle     overlap ``0.5 Vin max(i, 0) t_rise_hs``;
-  (hard)                      output capacitance ``0.5 (Coss_hs + Coss_ls) V^2``,
-                              ``V = Vin`` (``Vin - vo`` from idle);
-  from low diode              reverse recovery ``Qrr_ls Vin`` (diode forced off)
-  from high body diode        none beyond gate (node already at Vin: soft)
+  from low diode/low/open     overlap ``0.5 Vin max(i, 0) t_rise_hs``;
+  (hard)                      reverse recovery ``Q Vin`` of the low-side diode's charge
 high side turns off, i > 0    overlap ``0.5 Vin i t_fall_hs``
 low side turns on             gate ``Qg_ls Vg_ls`` (always);
-  from high body diode, or    overlap ``0.5 Vin |i| t_rise_ls``, output capacitance
-  from high with i < 0        ``0.5 (Coss_hs + Coss_ls) Vin^2``, recovery ``Qrr_hs Vin``
-  from idle                   output capacitance ``0.5 (Coss_hs + Coss_ls) vo^2``
-low side turns off            none (the inductor current moves the node: soft)
+  from high body diode, or    overlap ``0.5 Vin |i| t_rise_ls``, recovery ``Q Vin`` of
+  from high with i < 0        the high-side body diode's charge
 ============================  =========================================================
+
+The recovered charge ``Q`` is a fixed ``qrr`` per forced recovery, or with a
+lifetime ``tau`` the charge-control model's stored charge at that instant
+(:mod:`bucksim.analysis.recovery`). Without node capacitance the node jumps
+and the ``coss`` kind is the formula ``0.5 (Coss_hs + Coss_ls) V^2`` per hard
+charge (``V = Vin``; ``Vin - vo`` from idle; ``vo^2`` for a low-side turn-on
+from idle), as before.
 
 Energies are booked to the MOSFET that turns on or off, where they are
 dissipated (reverse-recovery energy included: the recovering diode's charge
-flows through the switch while it still holds the voltage). The energy is
-drawn from the supply, so ``power.input`` and ``power.loss`` both include it
-and the energy balance still closes.
+flows through the switch while it still holds the voltage). The formula
+energies are drawn from the supply, so ``power.input`` and ``power.loss``
+both include them; the energy balance cannot see them (it certifies the
+circuit's energies only, the node's charge included).
 
 References
 ----------
@@ -42,33 +48,15 @@ from __future__ import annotations
 
 import numpy as np
 
+from bucksim.analysis.recovery import conduction_before_start, recovered_charges
 from bucksim.model.parts import Mosfet
-from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE
+from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, OPEN
 
 KINDS = ("overlap", "coss", "recovery", "gate")
 
 
 def _zeros():
     return {k: 0.0 for k in KINDS}
-
-
-def _conduction_before_start(scenario, il: float) -> int:
-    """Conduction state just before t = 0, as if the run had been switching before.
-
-    A run starts at a high-side turn-on; the state before it is the end of
-    the previous period: the rising dead time (diode chosen by the sign of
-    iL), the low-side channel in forced PWM without dead time, or idle.
-    """
-    sw = scenario.switching
-    if sw.strategy == "forced-pwm" and sw.dead_time[1] == 0.0:
-        return LOW
-    if sw.strategy == "diode-emulation" and sw.dead_time[1] == 0.0 and il > 0:
-        return LOW
-    if il > 0:
-        return LOW_DIODE
-    if il < 0:
-        return HIGH_DIODE
-    return IDLE
 
 
 def switching_energy(run, t_start: float, t_stop: float) -> dict:
@@ -85,13 +73,11 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
     hs, ls = sc.high_side, sc.low_side
     ls_fet = isinstance(ls, Mosfet)
     c_node = hs.coss + (ls.coss if ls_fet else 0.0)
-    qrr_ls = ls.body_diode.qrr if ls_fet else ls.qrr
-    qrr_hs = hs.body_diode.qrr
 
     k = np.nonzero((seg.t0 >= t_start) & (seg.t0 < t_stop))[0]
     prev = seg.conduction[np.maximum(k - 1, 0)].copy()
     if k.shape[0] and k[0] == 0:
-        prev[0] = _conduction_before_start(sc, seg.x0[0, 0])
+        prev[0] = conduction_before_start(sc, seg.x0[0, 0])
     cur = seg.conduction[k]
     changed = prev != cur
     k, prev, cur = k[changed], prev[changed], cur[changed]
@@ -105,13 +91,16 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
     h, lo = out["high_side"], out["low_side"]
 
     hs_on = cur == HIGH
-    hard_on = hs_on & np.isin(prev, (LOW_DIODE, LOW, IDLE))
+    hard_on = hs_on & np.isin(prev, (LOW_DIODE, LOW, IDLE, OPEN))
+    # with node capacitance the node's charge is circuit (analysis.edges), not a formula
+    formula_coss = 0.0 if run.stage.node else 1.0
     h["gate"] += hs.qg * hs.gate_voltage * np.count_nonzero(hs_on)
     h["overlap"] += np.sum(0.5 * vin[hard_on] * np.maximum(i[hard_on], 0.0)) * hs.rise_time
     swing = np.where(prev == IDLE, vin - vo, vin)
-    h["coss"] += 0.5 * c_node * np.sum(swing[hard_on] ** 2)
+    h["coss"] += formula_coss * 0.5 * c_node * np.sum(swing[hard_on] ** 2)
     recover = hs_on & (prev == LOW_DIODE)
-    h["recovery"] += qrr_ls * np.sum(vin[recover])
+    rec = recovered_charges(run, t_start, t_stop)
+    h["recovery"] += float(np.sum(rec["low_side"]["charges"] * rec["low_side"]["vin"]))
 
     hs_off = (prev == HIGH) & (cur != HIGH) & (i > 0)
     h["overlap"] += np.sum(0.5 * vin[hs_off] * i[hs_off]) * hs.fall_time
@@ -123,10 +112,10 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
         lo["gate"] += ls.qg * ls.gate_voltage * n_ls_on
         hard = ls_on & ((prev == HIGH_DIODE) | ((prev == HIGH) & (i < 0)))
         lo["overlap"] += np.sum(0.5 * vin[hard] * np.abs(i[hard])) * ls.rise_time
-        lo["coss"] += 0.5 * c_node * np.sum(vin[hard] ** 2)
-        lo["recovery"] += qrr_hs * np.sum(vin[hard & (prev == HIGH_DIODE)])
+        lo["coss"] += formula_coss * 0.5 * c_node * np.sum(vin[hard] ** 2)
+        lo["recovery"] += float(np.sum(rec["high_side"]["charges"] * rec["high_side"]["vin"]))
         from_idle = ls_on & (prev == IDLE)
-        lo["coss"] += 0.5 * c_node * np.sum(vo[from_idle] ** 2)
+        lo["coss"] += formula_coss * 0.5 * c_node * np.sum(vo[from_idle] ** 2)
         out["events"]["low_side_hard_on"] = int(np.count_nonzero(hard))
     out["events"].update({
         "high_side_on": int(np.count_nonzero(hs_on)),

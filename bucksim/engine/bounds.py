@@ -343,3 +343,54 @@ def third_norms(Ms, bnd, rows):
         for s in range(Ms.shape[0]):
             out[r, s] = third_norm(Ms, s, rows[r], bnd)
     return out
+
+
+# The open switch node: an energy bound for both clamps at once.
+#
+# While the node is open, L iL' = vn - vo - DCR iL and Cn vn' = -iL, with
+# vo = a vC + b iL + c0 (a = 1 / (1 + ESR g), b = ESR a, c0 = -ESR Icc a). With
+# u = vn - a vC - c0 (the node's distance from its slowly moving centre) and
+# R = DCR + b >= 0, the ring energy E = L iL^2 / 2 + Cn u^2 / 2 obeys
+#
+#     E' = -R iL^2 - Cn a u vC' <= Cn a |u| |vC'| <= sqrt(2 Cn E) a |vC'|,
+#
+# so sqrt(E) grows at most by sqrt(Cn / 2) a |vC'| per second (derived; the
+# damping is dropped, so the bound does not decay). |vC'| <= (|iL| (1 + g b) +
+# g (a |vC| + |c0|) + |Icc|) / C. Over a stretch of length d, a candidate bound
+# I* on |iL| and V* on |vC - vC(0)| is proved by bootstrapping: if the bounds they
+# imply are strictly inside them, neither can be reached first (continuity).
+# Then |u| <= sqrt(2 E_max / Cn) and each clamp row (low: r iL + vn + Vf;
+# high: -R_h iL + Vin + Vf - vn) keeps a lower bound that, when positive, proves
+# the stretch free of that clamp, however many ring lobes it holds: the cost is
+# independent of the ring frequency, where a Taylor bound needs steps of a
+# quarter of the ring's period.
+
+@njit(cache=True)
+def open_node_clear(coef, z, i_vn, d, low, high):
+    """``(low_clear, high_clear)``: the open node provably stays off each clamp over
+    ``[t, t + d]`` from state ``z`` (energy bound above). ``coef`` is
+    ``[L, Cn, C, a, b, c0, g, Icc]`` at the segment's level; ``low`` and ``high``
+    are the two clamp rows."""
+    m = z.shape[0]
+    L, cn, C, a, b, c0, g, icc = (coef[0], coef[1], coef[2], coef[3], coef[4], coef[5],
+                                   coef[6], coef[7])
+    il0, vc0 = z[0], z[1]
+    u0 = z[i_vn] - a * vc0 - c0
+    sq_e0 = np.sqrt(0.5 * L * il0 * il0 + 0.5 * cn * u0 * u0)
+    i_star = 1.5 * np.sqrt(2.0 / L) * sq_e0 + 1e-12 * (abs(il0) + 1.0)
+    slow = g * (a * abs(vc0) + abs(c0)) + abs(icc)
+    v_star = 2.0 * d * (i_star * (1.0 + g * b) + slow) / C + 1e-12 * (abs(vc0) + 1.0)
+    vdot = (i_star * (1.0 + g * b) + slow + g * a * v_star) / C
+    if d * vdot >= v_star:
+        return False, False
+    sq_e = sq_e0 + np.sqrt(0.5 * cn) * a * vdot * d
+    i_max = np.sqrt(2.0 / L) * sq_e
+    if i_max >= i_star:
+        return False, False
+    u_max = np.sqrt(2.0 / cn) * sq_e * (1.0 + 1e-12)
+    v_lo = a * (vc0 - v_star) + c0 - u_max
+    v_hi = a * (vc0 + v_star) + c0 + u_max
+    margin = 1e-12 * (abs(low[m - 1]) + abs(high[m - 1]) + abs(v_lo) + abs(v_hi) + 1.0)
+    low_clear = low[m - 1] - abs(low[0]) * i_max + v_lo > margin
+    high_clear = high[m - 1] - abs(high[0]) * i_max - v_hi > margin
+    return low_clear, high_clear

@@ -17,16 +17,10 @@ differs between controllers:
  4    off        rising dead time
 ====  =========  ===========================================================
 
-The cycle-by-cycle current limit is blanked together with the PWM comparator
-in every controller. Both comparators watch the same sensed current, and the
-turn-on spike on it (reverse recovery of the low-side diode, the discharge of
-the switch node's capacitance) would trip an unblanked limit in every period;
-leading-edge blanking of both is common practice. The price is that the
-on-time is at least the blanking time even in an overload: a short at the
-output still gains ``(Vin - vo) blank / L`` per period, which real controllers
-meet with frequency foldback or hiccup (not modelled). Digital voltage mode
-has no blanking (``min_on_time`` there raises short demands), so its limit is
-live from ``t_k``.
+The current limit is blanked with the PWM comparator in every controller (both
+watch the sensed current's turn-on spike; common practice), so the on-time in
+an overload is at least the blanking time; foldback and hiccup are not
+modelled (docs: architecture, Control). Digital voltage mode has no blanking.
 
 Controllers (``control``):
 
@@ -37,18 +31,16 @@ Controllers (``control``):
 * analog: the compensator is part of the state; the comparator is the
   event ``Cthr[level] . z + ramp (t - t_k) = 0`` (see :mod:`bucksim.model.stage`).
 
-The phase logic is written once, inline: calling a per-phase function with
-its dozen array arguments cost more than the propagation itself (measured
-with benchmarks/bench_engine.py). A phase that runs whole with its nominal
-duration applies the cached ``P[s, p] = expm(M_s d_p)``; any other interval
-goes through :func:`~bucksim.engine.kernels.advance`; events are located by
-:func:`~bucksim.engine.kernels.find_zero` on the analytic solution, after a
-cheap test that proves most segments free of a crossing: the sign holds at
-both ends, the segment is shorter than the guard, and the curvature bound of
-:mod:`bucksim.engine.bounds` (``|f''| <= B`` from the norms of the system)
-keeps the function off zero in between. The tests of the zero-current and
-integrator-limit rows are written out inline for the same reason as the
-phase logic.
+The phase logic is written once, inline: a per-phase function with its dozen
+array arguments cost more than the propagation (benchmarks/bench_engine.py). A
+whole nominal phase applies the cached ``P[s, p] = expm(M_s d_p)``, any other
+interval :func:`~bucksim.engine.kernels.advance`; events are located by
+:func:`~bucksim.engine.kernels.find_zero` after a cheap test proves most
+segments free of a crossing (:mod:`bucksim.engine.bounds`: the curvature bound,
+and for the open node's clamps the ring-energy bound). With node capacitance
+the node opens into ``OPEN`` (a state), its diodes conduct at the clamp events,
+and ``z[i_vn]`` holds the node voltage at every segment's end
+(:mod:`bucksim.analysis.edges`).
 """
 
 from __future__ import annotations
@@ -56,7 +48,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import clear_between, growth
+from bucksim.engine.bounds import clear_between, growth, open_node_clear
 from bucksim.engine.kernels import (
     ASYNC,
     CONTROL_ANALOG,
@@ -71,80 +63,26 @@ from bucksim.engine.kernels import (
     LOW,
     LOW_DIODE,
     N_CONDUCTION,
+    OPEN,
     TAYLOR_ORDER,
     advance,
     apply,
     conduction_for,
-    crossing_slope,
     crossing_value,
     find_zero,
 )
+from bucksim.engine.loop_parts import _compensate, _dot, _needs_search
 from bucksim.engine.status import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
 
 __all__ = ["CONTROL_OPEN", "CONTROL_DIGITAL", "CONTROL_ANALOG", "N_PHASES", "run_cycles"]
 
 N_PHASES = 5
 
-#: Cached phases match their nominal duration to this many units of the
-#: absolute time's rounding (durations are differences of absolute times).
+#: Cached phases match their nominal duration to this many ulps of absolute time.
 _NOMINAL_ULPS = 8.0
 
-
-@njit(cache=True)
-def _dot(c, z):
-    acc = 0.0
-    for j in range(z.shape[0]):
-        acc += c[j] * z[j]
-    return acc
-
-
-@njit(cache=True)
-def _compensate(Ad, Bd, Cd, Dd, w, e, lo, hi, wnew):
-    """One digital compensator step with conditional integration; returns the output."""
-    k = w.shape[0]
-    u = Dd * e
-    for i in range(k):
-        u += Cd[i] * w[i]
-    for i in range(k):
-        acc = Bd[i] * e
-        for j in range(k):
-            acc += Ad[i, j] * w[j]
-        wnew[i] = acc
-    if (u >= hi and e > 0.0) or (u <= lo and e < 0.0):
-        return u  # saturated and pushing further: hold the state
-    for i in range(k):
-        w[i] = wnew[i]
-    return u
-
-
-@njit(cache=True)
-def _needs_search(Ms, s, row, krow, zs, z, t_end_seg, d, guard, sign0, level, ramp, t_ref,
-                  bnd):
-    """False when the event function provably keeps ``sign0`` over the segment
-    (the curvature bound of :mod:`bucksim.engine.bounds`; ``krow`` is the
-    row's ``||c_x A_s W_s||_1``, :func:`~bucksim.engine.bounds.row_norms`)."""
-    if d > guard:
-        return True
-    f1 = sign0 * crossing_value(row, z, t_end_seg, level, ramp, t_ref)
-    if f1 <= 0.0:
-        return True
-    f0 = sign0 * crossing_value(row, zs, t_end_seg - d, level, ramp, t_ref)
-    if f0 <= 0.0:
-        return True
-    m = zs.shape[0]
-    s0 = ramp
-    vel = 0.0
-    for i in range(m - 1):
-        acc = 0.0
-        for j in range(m):
-            acc += Ms[s, i, j] * zs[j]
-        s0 += row[i] * acc
-        vel = max(vel, abs(acc) * bnd[s, i])
-    s0 *= sign0
-    B = krow * vel * growth(bnd[s, m - 1] * d) * (1.0 + 1e-12)
-    if f0 + min(s0, 0.0) * d - 0.5 * B * d * d > 0.0:
-        return False     # Taylor from the start over the whole segment
-    return not clear_between(f0, s0, f1, sign0 * crossing_slope(Ms, s, row, z, ramp), d, B)
+#: A state beyond sqrt(max float) has diverged (mirrors simulation.STATE_RANGE).
+_STATE_RANGE = 1.3407807929942596e154
 
 
 @njit(cache=True)
@@ -166,8 +104,11 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     are events located like the others.
     """
     # the records opened once: the loop then works on plain arrays (module notes)
-    Ms, E, h, guard, taylor_gap = tab.Ms, tab.E, tab.h, tab.guard, tab.taylor_gap
+    Ms, E, h, guards, taylor_gap = tab.Ms, tab.E, tab.h, tab.guards, tab.taylor_gap
     level_times, bnd, kil, k3il, e_il = tab.level_times, tab.bnd, tab.kil, tab.k3il, tab.e_il
+    i_vn, Vsw, Cls, Chs = tab.i_vn, tab.Vsw, tab.Cls, tab.Chs
+    kls, k3ls, khs, k3hs, open_coef = tab.kls, tab.k3ls, tab.khs, tab.k3hs, tab.open_coef
+    node = i_vn >= 0
     T, strategy, td_fall, td_rise = prog.T, prog.strategy, prog.td_fall, prog.td_rise
     nominal, P, t_end = prog.nominal, prog.P, prog.t_end
     cs = ctl.settings
@@ -287,7 +228,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                 p += 1
                 continue
             t = t_ph
-            cond = conduction_for(gate, strategy, z[0])
+            cond = conduction_for(gate, strategy, z[0], node)
             ph_dur = t_ph_end - t_ph
             whole_ok = nominal[p] > 0.0 and abs(ph_dur - nominal[p]) <= tol
             while t < t_ph_end:
@@ -298,6 +239,20 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     t_stop = level_times[level + 1]
                 if t_end < t_stop:
                     t_stop = t_end
+                search_ls = search_hs = False
+                if cond == OPEN:
+                    # a diode at its clamp conducts at once; one at the clamp with
+                    # the current driving the node away is not searched here
+                    f_ls = _dot(Cls[level], z)
+                    f_hs = _dot(Chs[level], z)
+                    clamp_tol = 1e-12 * (abs(Cls[level, m - 1]) + abs(Chs[level, m - 1]) + 1.0)
+                    if f_ls <= clamp_tol and z[0] > 0.0:
+                        cond = LOW_DIODE
+                    elif f_hs <= clamp_tol and z[0] < 0.0:
+                        cond = HIGH_DIODE
+                    else:
+                        search_ls = f_ls > clamp_tol
+                        search_hs = f_hs > clamp_tol
                 if n_modes == 2:
                     # the hold rule, with the release band: a hold goes on until
                     # the error is e_band past zero (e.g. after a load step)
@@ -306,8 +261,13 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     held = 1 if ((z[i_w] >= w_hi and e_now > -band)
                                  or (z[i_w] <= w_lo and e_now < band)) else 0
                 s = (level * n_modes + held) * N_CONDUCTION + cond
+                gs = guards[s]    # this system's longest search step
                 if nseg >= cap:
                     return nseg, level, STATUS_FULL, t
+                for i in range(m):
+                    # past sqrt(max float) the event searches' squares overflow
+                    if not abs(z[i]) < _STATE_RANGE:
+                        return nseg, level, STATUS_DIVERGED, t
                 # the analog comparator's row follows the level: a load step moves vo
                 row = Cthr[level] if ph_cmp and control == CONTROL_ANALOG else e_il
                 if ph_cmp and crossing_value(row, z, t, cmp_level, cmp_ramp, tc) >= 0.0:
@@ -332,13 +292,14 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                 else:
                     advance(Ms, E, h, s, z, d, tmp)
                 tz = -1.0
+                clamp = OPEN
                 evented = cond == LOW_DIODE or cond == HIGH_DIODE or (
                     cond == LOW and strategy == EMULATION)
                 if evented:
                     sign0 = -1.0 if cond == HIGH_DIODE else 1.0
                     # the zero-current test written out (a call with array arguments
                     # costs more than the test): bounds.current_clear
-                    search = d > guard or sign0 * z[0] <= 0.0
+                    search = d > gs or sign0 * z[0] <= 0.0
                     if not search:
                         s0 = 0.0
                         vel = 0.0
@@ -357,16 +318,45 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                             search = not clear_between(sign0 * zs[0], s0, sign0 * z[0],
                                                        sign0 * s1, d, B)
                     if search:
-                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, guard, tmp,
+                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, sign0, gs, tmp,
                                        trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly,
                                        bnd, k3il[0, s])
+                elif cond == OPEN:
+                    # the open node: the first of the two clamps ends the segment
+                    for i in range(m):
+                        zs2[i] = zs[i]
+                    if d > gs and (search_ls or search_hs):
+                        # a ring of many lobes: the energy bound clears it at once
+                        lo_ok, hi_ok = open_node_clear(open_coef[level], zs, i_vn, d,
+                                                       Cls[level], Chs[level])
+                        search_ls = search_ls and not lo_ok
+                        search_hs = search_hs and not hi_ok
+                    if search_ls and _needs_search(Ms, s, Cls[level], kls[level, s], zs, z,
+                                                   t_stop, d, gs, 1.0, 0.0, 0.0, t, bnd):
+                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, 1.0, gs, tmp, trial,
+                                       work, Cls[level], 0.0, 0.0, t, False, taylor_gap, poly,
+                                       bnd, k3ls[level, s])
+                    clamp = LOW_DIODE if tz >= 0.0 else OPEN
+                    if search_hs:
+                        zb = zs if tz >= 0.0 else z
+                        t_lim = tz if tz >= 0.0 else t_stop
+                        if _needs_search(Ms, s, Chs[level], khs[level, s], zs2, zb, t_lim,
+                                         t_lim - t, gs, 1.0, 0.0, 0.0, t, bnd):
+                            t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, 1.0, gs, tmp,
+                                           trial, work, Chs[level], 0.0, 0.0, t, False,
+                                           taylor_gap, poly, bnd, k3hs[level, s])
+                            if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
+                                tz = t2
+                                clamp = HIGH_DIODE
+                                for i in range(m):
+                                    zs[i] = zs2[i]
                 elif ph_cmp or np.isfinite(ph_lim):
                     for i in range(m):
                         zs2[i] = zs[i]
                     krow = kthr[level, s] if control == CONTROL_ANALOG else kil[s]
-                    if ph_cmp and _needs_search(Ms, s, row, krow, zs, z, t_stop, d, guard,
+                    if ph_cmp and _needs_search(Ms, s, row, krow, zs, z, t_stop, d, gs,
                                                 -1.0, cmp_level, cmp_ramp, tc, bnd):
-                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, guard, tmp,
+                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, -1.0, gs, tmp,
                                        trial, work, row, cmp_level, cmp_ramp, tc, False,
                                        taylor_gap, poly, bnd,
                                        k3thr[level, s] if control == CONTROL_ANALOG
@@ -376,9 +366,9 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                         # comparator's instant (zs holds the state there) or the stop
                         zb = zs if tz >= 0.0 else z
                         t_lim = tz if tz >= 0.0 else t_stop
-                        if _needs_search(Ms, s, e_il, kil[s], zs2, zb, t_lim, t_lim - t, guard,
+                        if _needs_search(Ms, s, e_il, kil[s], zs2, zb, t_lim, t_lim - t, gs,
                                          -1.0, ph_lim, 0.0, tc, bnd):
-                            t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, -1.0, guard, tmp,
+                            t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, -1.0, gs, tmp,
                                            trial, work, e_il, ph_lim, 0.0, tc, False,
                                            taylor_gap, poly, bnd, k3il[0, s])
                             if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
@@ -412,7 +402,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                             # _needs_search
                             f0h = hsign * (zst[i_w] - hlev)
                             f1h = hsign * (zb[i_w] - hlev)
-                            if dh <= guard and f0h > 0.0 and f1h > 0.0:
+                            if dh <= gs and f0h > 0.0 and f1h > 0.0:
                                 s0h = 0.0
                                 vel = 0.0
                                 for i in range(m - 1):
@@ -431,11 +421,11 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                 if clear_between(f0h, s0h, f1h, hsign * s1h, dh, B):
                                     continue
                         elif not _needs_search(Ms, s, hrow, kce[level, s], zst, zb, t_h, dh,
-                                               guard, hsign, hlev, 0.0, t, bnd):
+                                               gs, hsign, hlev, 0.0, t, bnd):
                             continue
                         for i in range(m):
                             zs2[i] = zst[i]
-                        t3 = find_zero(Ms, E, h, s, zs2, zb, t, t_h, hsign, guard, tmp, trial,
+                        t3 = find_zero(Ms, E, h, s, zs2, zb, t, t_h, hsign, gs, tmp, trial,
                                        work, hrow, hlev, 0.0, t, False, taylor_gap, poly, bnd,
                                        k3w[0, s] if kind < 3 else k3ce[level, s])
                         if t3 >= 0.0 and (th < 0.0 or t3 < th):
@@ -458,6 +448,8 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     elif hold_event == 2:
                         z[i_w] = w_lo
                     held = 1 if hold_event < 3 else 0
+                    if node and cond != OPEN:
+                        z[i_vn] = _dot(Vsw[level * N_CONDUCTION + cond], z)
                     if tz > t:          # (a hold starting at t itself leaves no segment)
                         seg_dt[nseg] = tz - t
                         nseg += 1
@@ -470,14 +462,29 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     seg_dt[nseg] = tz - t
                     nseg += 1
                     t = tz
-                    if evented:        # zero current: idle for the rest of the phase
-                        cond = IDLE
+                    if cond == OPEN:
+                        # a clamp: its diode conducts (unless the current already
+                        # turned: the node only touched the clamp)
+                        if (clamp == LOW_DIODE and z[0] > 0.0) or (
+                                clamp == HIGH_DIODE and z[0] < 0.0):
+                            cond = clamp
+                        continue
+                    if node:
+                        # the node opens at its clamped voltage (the invariant below)
+                        z[i_vn] = _dot(Vsw[level * N_CONDUCTION + cond], z)
+                    if evented:        # zero current: idle (the node opens) for the phase
+                        cond = OPEN if node else IDLE
                         continue
                     tripped = True     # comparator or limit: the on-time ends
                     break
                 seg_dt[nseg] = d
                 nseg += 1
                 t = t_stop
+                if node and cond != OPEN:
+                    # invariant: z[i_vn] holds the node voltage at every segment's end,
+                    # so an opening node starts there and a closing channel's jump is
+                    # the next segment's x0[i_vn] against its own node row
+                    z[i_vn] = _dot(Vsw[level * N_CONDUCTION + cond], z)
                 for i in range(m):
                     if not np.isfinite(z[i]):
                         return nseg, level, STATUS_DIVERGED, t

@@ -35,6 +35,9 @@ STREAM_LOG_TAIL = 1024
 #: by a zero-current event (asynchronous: 4). A chunk that needs more is run
 #: again with twice the rows, up to the memory budget (see :func:`run_chunks`).
 ROWS_PER_PERIOD = {"synchronous": 8, "asynchronous": 4}
+#: With node capacitance each open interval may add a swing and a ring before
+#: and after its diode conducts.
+ROWS_PER_PERIOD_NODE = {"synchronous": 14, "asynchronous": 8}
 
 
 @dataclass
@@ -258,11 +261,40 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
     bnd = system_bounds(Ms)
     e_il = np.zeros(m)
     e_il[0] = 1.0
-    return StageTables(Ms, table.exponentials, table.steps, float(table.guard),
+    n_levels = len(stage.levels)
+    if stage.node:
+        from bucksim.model.stage import N_CONDUCTION
+
+        Vsw = np.array([stage.signal("vsw", stage.system_id(lv, k)) for lv in range(n_levels)
+                        for k in range(N_CONDUCTION)])
+        clamps = [stage.clamp_rows(lv) for lv in range(n_levels)]
+        Cls = np.array([c[0] for c in clamps])
+        Chs = np.array([c[1] for c in clamps])
+        coef = []
+        for lev in stage.levels:
+            a = 1.0 / (1.0 + stage.esr * lev.conductance)
+            coef.append([stage.L, stage.cn, stage.C, a, stage.esr * a,
+                         -stage.esr * lev.current * a, lev.conductance, lev.current])
+        open_coef = np.array(coef)
+    else:
+        Vsw = Cls = Chs = np.zeros((1, m))
+        open_coef = np.ones((1, 8))
+    return StageTables(Ms, table.exponentials, table.steps, system_guards(Ms, table.guard),
                        float(table.taylor_gap),
                        np.array([lev.time for lev in stage.levels], dtype=float), bnd,
                        current_row_norms(Ms, bnd), third_norms(Ms, bnd, e_il.reshape(1, m)),
-                       e_il)
+                       e_il, int(stage.i_node), np.ascontiguousarray(Vsw),
+                       np.ascontiguousarray(Cls), np.ascontiguousarray(Chs),
+                       row_norms(Ms, bnd, Cls), third_norms(Ms, bnd, Cls),
+                       row_norms(Ms, bnd, Chs), third_norms(Ms, bnd, Chs), open_coef)
+
+
+def system_guards(Ms: np.ndarray, guard: float) -> np.ndarray:
+    """Per system: a quarter of its fastest time constant, ``0.25 / max|eig(M_s)|`` [s]
+    (never below the table's ``guard``, the same quantity for the fastest system)."""
+    rho = np.array([float(np.max(np.abs(np.linalg.eigvals(M)))) for M in Ms])
+    out = np.where(rho > 0, 0.25 / np.where(rho > 0, rho, 1.0), 1e300)
+    return np.ascontiguousarray(np.maximum(np.minimum(out, 1e300), guard), dtype=float)
 
 
 def phase_program(scenario, P, nominal, t_end: float) -> PhaseProgram:
@@ -337,7 +369,8 @@ def _run_chunk(scenario, tables, program, params, state, z, level, c, c_stop, he
     """
     n = z.shape[0] - 1
     k = c_stop - c
-    rows = ROWS_PER_PERIOD["synchronous" if program.strategy != 0 else "asynchronous"]
+    rows = (ROWS_PER_PERIOD_NODE if tables.i_vn >= 0 else ROWS_PER_PERIOD)[
+        "synchronous" if program.strategy != 0 else "asynchronous"]
     rows *= params.settings.n_modes
     saved = (z.copy(), state.w.copy(), state.queue.copy())
     while True:

@@ -51,8 +51,8 @@ from bucksim.engine.bounds import (
 from bucksim.engine.propagation import TAYLOR_ORDER, advance, apply, derivative
 
 # conduction codes (mirrors bucksim.model.stage; numba needs plain module constants)
-HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = 0, 1, 2, 3, 4
-N_CONDUCTION = 5
+HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE, OPEN = 0, 1, 2, 3, 4, 5
+N_CONDUCTION = 6
 GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2
 # strategy codes (mirrors bucksim.model.stage.STRATEGY_CODES)
 ASYNC, FORCED, EMULATION = 0, 1, 2
@@ -370,8 +370,12 @@ def _substep_count(guard, mu, a, b):
 
 
 @njit(cache=True)
-def conduction_for(gate, strategy, il):
-    """Conduction state entered under ``gate`` with inductor current ``il``."""
+def conduction_for(gate, strategy, il, node=False):
+    """Conduction state entered under ``gate`` with inductor current ``il``.
+
+    With node capacitance (``node``) a gate that leaves the node open enters
+    ``OPEN``; the caller then tests the clamps (a diode may conduct at once).
+    """
     if gate == GATE_HIGH:
         return HIGH
     if gate == GATE_LOW:
@@ -379,6 +383,8 @@ def conduction_for(gate, strategy, il):
             return LOW
         if il > 0.0:
             return LOW
+    if node:
+        return OPEN
     if il > 0.0:
         return LOW_DIODE
     if il < 0.0:

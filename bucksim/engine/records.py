@@ -40,8 +40,10 @@ class StageTables(NamedTuple):
     E: np.ndarray
     #: (K,) table steps ``h_k = T 2**-k`` [s].
     h: np.ndarray
-    #: Longest stretch [s] searched for a crossing in one piece.
-    guard: float
+    #: (n_sys,) longest stretch [s] searched for a crossing in one piece, per system:
+    #: a quarter of its fastest time constant (a fast node ring must not slow the
+    #: searches of the other systems).
+    guards: np.ndarray
     #: Brackets below this [s] are finished on the Taylor series.
     taylor_gap: float
     #: (n_levels,) start time of each operating level [s].
@@ -54,6 +56,22 @@ class StageTables(NamedTuple):
     k3il: np.ndarray
     #: (m,) the event row of the inductor current, ``e_iL``.
     e_il: np.ndarray
+    #: Index of the switch-node state ``vn`` in ``z`` (-1: the node has no capacitance).
+    i_vn: int
+    #: (n_levels * N_CONDUCTION, m) the node voltage's row per (level, conduction).
+    Vsw: np.ndarray
+    #: (n_levels, m) the clamp rows of the open node
+    #: (:meth:`~bucksim.model.stage.Stage.clamp_rows`): low-side diode, high-side
+    #: diode; with their curvature and third-derivative constants, (n_levels, n_sys).
+    Cls: np.ndarray
+    Chs: np.ndarray
+    kls: np.ndarray
+    k3ls: np.ndarray
+    khs: np.ndarray
+    k3hs: np.ndarray
+    #: (n_levels, 8) ``[L, Cn, C, a, b, c0, g, Icc]`` of the open node's energy bound
+    #: (:func:`~bucksim.engine.bounds.open_node_clear`).
+    open_coef: np.ndarray
 
 
 class PhaseProgram(NamedTuple):

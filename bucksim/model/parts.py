@@ -242,6 +242,10 @@ class Mosfet:
         _non_negative(f"{s}.rise_time", self.rise_time, "s")
         _non_negative(f"{s}.fall_time", self.fall_time, "s")
         _non_negative(f"{s}.coss", self.coss, "F")
+        if self.body_diode.cj > 0:
+            raise ScenarioError(f"{s}.body_diode.cj", "must be 0: a body diode's junction "
+                                f"capacitance is part of the MOSFET's coss (give it as {s}.coss)",
+                                self.body_diode.cj)
         _non_negative(f"{s}.qg", self.qg, "C")
         _non_negative(f"{s}.gate_voltage", self.gate_voltage, "V")
 

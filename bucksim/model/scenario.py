@@ -10,19 +10,16 @@ prefix and the unit (``"2.2 uH"``, ``"500 kHz"``; see :mod:`bucksim.model.units`
     [switching]         frequency, strategy, dead_time = [falling, rising]
     [inductor]          inductance, dcr = 0, core = {k, alpha, beta, volume, turns, area}
     [output_capacitor]  capacitance, esr = 0
-    [high_side]         rds_on, body_diode = {vf, r = 0, qrr = 0, tau = 0, qrr_current = 0},
-                        rise_time, fall_time, coss, qg, gate_voltage (all = 0)
-    [low_side]          device = "mosfet" (keys as [high_side]) | "diode" (vf, r, qrr, tau,
-                        qrr_current, cj)
+    [high_side]         rds_on, body_diode = {vf, r, qrr, tau, qrr_current}, rise_time,
+                        fall_time, coss, qg, gate_voltage (all but vf, rds_on = 0)
+    [low_side]          device = "mosfet" (as [high_side]) | "diode" (the diode keys, cj)
     [load]              resistance (absent or inf: none), current = 0,
                         steps = [{time, resistance?, current?}, ...]
     [control]           mode = "open-loop", duty, soft_start = 0, reference,
                         compensator (table), slope_compensation = 0
-    [run]               duration | cycles, start = "rest", summary_cycles = 20,
-                        initial_current = 0, initial_voltage = 0
+    [run]               duration | cycles, start, summary_cycles, initial_current, initial_voltage
 
-Every rejected input raises :class:`~bucksim.errors.ScenarioError` naming the
-file, the line of the key, the dotted key, what was expected and the value::
+Rejected input raises :class:`~bucksim.errors.ScenarioError` (file, line, key, expected, value)::
 
     rail.toml:12: inductor.inductance: must be > 0 H, got -2.2e-06
 """
@@ -252,10 +249,9 @@ def _capacitor(t):
 
 
 def _diode(t):
+    extra = {k: t.quantity(k, u, 0.0) for k, u in (("cj", "F"), ("tau", "s"), ("qrr_current", "A"))}
     return parts.Diode(vf=t.quantity("vf", "V"), r=t.quantity("r", "ohm", 0.0),
-                       qrr=t.quantity("qrr", "C", 0.0), cj=t.quantity("cj", "F", 0.0),
-                       tau=t.quantity("tau", "s", 0.0),
-                       qrr_current=t.quantity("qrr_current", "A", 0.0), section=t.key)
+                       qrr=t.quantity("qrr", "C", 0.0), section=t.key, **extra)
 
 
 def _mosfet(t):
@@ -332,9 +328,8 @@ def _drop_none(d):
 
 
 def _diode_dict(d):
-    out = {"vf": d.vf, "r": d.r, "qrr": d.qrr}
-    out.update({k: getattr(d, k) for k in ("cj", "tau", "qrr_current") if getattr(d, k)})
-    return out
+    extra = {k: getattr(d, k) for k in ("cj", "tau", "qrr_current") if getattr(d, k)}
+    return {"vf": d.vf, "r": d.r, "qrr": d.qrr, **extra}
 
 
 def _mosfet_dict(m):

@@ -29,7 +29,24 @@ LOW          -Rds_ls iL                              low-side channel: iL
 LOW_DIODE    -Vf_ls - r_ls iL (iL > 0)               low-side diode: iL
 HIGH_DIODE   Vin + Vf_hs - (Rs + r_hs) iL (iL < 0)   high-side body diode: -iL
 IDLE         vo (iL = 0, held)                       none
+OPEN         vn (the node capacitance's voltage)     none
 ===========  ======================================  ==========================
+
+The switch node's capacitance ``Cn`` (high-side ``coss`` plus the low-side
+MOSFET's ``coss`` or the freewheel diode's ``cj``) makes the node a state
+``vn`` whenever nothing conducts (``OPEN``: dead times, the DCM idle
+interval, the asynchronous off-time once the diode stops):
+``Cn vn' = -iL``, ``L iL' = vn - vo - DCR iL``. A body diode (or the
+freewheel diode) starts conducting when ``vn`` reaches its clamp, ``-Vf_ls
+- r_ls iL`` or ``Vin + Vf_hs - (Rs + r_hs) iL``, where the clamped node
+voltage of the table above equals ``vn``: an event on the analytic solution,
+and the state stays continuous. While a channel or diode conducts the node
+is algebraic (the table) and ``vn`` is not integrated (its row is zero; the
+cycle loop sets it to the node voltage whenever the node opens). A channel
+that closes on the node at another voltage moves the node's charge through
+itself at once (:mod:`bucksim.analysis.edges` books that energy). Without
+node capacitance (``Cn = 0``) the node jumps: the stage idles in ``IDLE``
+and the states are ``[iL, vC]`` alone, as before.
 
 Analog closed loop (``control.implementation = "analog"``): the compensator
 ``w' = Ac w + Bc e``, ``u = Cc w + Dc e`` (:func:`bucksim.model.compensator.analog_realization`)
@@ -45,15 +62,14 @@ every system has a second copy with the integrator held (anti-windup, see
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
+from bucksim.model.levels import Level, is_analog_loop, operating_levels
 from bucksim.model.parts import STRATEGIES, Diode, Mosfet, Scenario
 
-HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE = range(5)
-N_CONDUCTION = 5
-CONDUCTION_NAMES = ("high", "low", "low-diode", "high-diode", "idle")
+HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE, OPEN = range(6)
+N_CONDUCTION = 6
+CONDUCTION_NAMES = ("high", "low", "low-diode", "high-diode", "idle", "open")
 
 #: Gate commands of a switching phase.
 GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2
@@ -62,6 +78,8 @@ STRATEGY_CODES = {name: code for code, name in enumerate(STRATEGIES)}
 
 N_STATES = 2
 STATE_NAMES = ("iL", "vC")
+#: Name of the switch-node state (present when the node has capacitance).
+NODE_STATE = "vn"
 #: Units of the controller states appended in an analog loop.
 CONTROLLER_UNIT = "V"
 
@@ -150,45 +168,6 @@ def clamp_current(il, conduction, strategy: str) -> np.ndarray:
     return np.where(conduction == HIGH_DIODE, np.minimum(il, 0.0), il)
 
 
-@dataclass(frozen=True)
-class Level:
-    """Supply and load values that hold from ``time`` [s] to the next level."""
-
-    time: float
-    vin: float
-    conductance: float
-    current: float
-    ref_slope: float = 0.0
-
-
-def is_analog_loop(scenario: Scenario) -> bool:
-    """True when the scenario's compensator runs as analog states of the stage."""
-    ctl = scenario.control
-    return ctl.mode != "open-loop" and ctl.implementation == "analog"
-
-
-def operating_levels(scenario: Scenario) -> list[Level]:
-    """Merge supply and load steps into one list of piecewise-constant levels.
-
-    In an analog loop the end of the soft-start ramp is a level change too:
-    before it the reference state rises at ``reference / soft_start`` [V/s].
-    """
-    supply = [(0.0, scenario.supply.voltage)] + [(s.time, s.voltage) for s in scenario.supply.steps]
-    load = scenario.load.levels()
-    times = {t for t, _ in supply} | {t for t, _, _ in load}
-    ctl = scenario.control
-    ramp_end = ctl.soft_start if is_analog_loop(scenario) else 0.0
-    if ramp_end > 0:
-        times.add(ramp_end)
-    out = []
-    for t in sorted(times):
-        vin = [v for ts, v in supply if ts <= t][-1]
-        g, i = [(g, i) for ts, g, i in load if ts <= t][-1]
-        slope = ctl.reference / ramp_end if t < ramp_end else 0.0
-        out.append(Level(float(t), float(vin), float(g), float(i), float(slope)))
-    return out
-
-
 class Stage:
     """Linear systems and output maps for every (level, conduction state).
 
@@ -221,10 +200,18 @@ class Stage:
             self.loop = analog_realization(scenario.control.compensator)
             k = self.loop.order
         self.n_controller = k
-        self.n = N_STATES + (k + 1 if self.analog else 0)
-        self.state_names = STATE_NAMES + (tuple(f"w{i + 1}" for i in range(k)) + ("vref",)
-                                          if self.analog else ())
-        self.plant_index = np.array([0, 1, self.n])
+        hs, ls = scenario.high_side, scenario.low_side
+        self.cn = hs.coss + (ls.coss if isinstance(ls, Mosfet) else ls.cj)
+        #: the node is a state (index 2) when it has capacitance
+        self.node = self.cn > 0.0
+        self.i_node = N_STATES if self.node else -1
+        #: position of the first controller state (analog loop)
+        self.i_ctl = N_STATES + int(self.node)
+        self.n = self.i_ctl + (k + 1 if self.analog else 0)
+        self.state_names = (STATE_NAMES + ((NODE_STATE,) if self.node else ())
+                            + (tuple(f"w{i + 1}" for i in range(k)) + ("vref",)
+                               if self.analog else ()))
+        self.plant_index = np.array([0, 1] + ([2] if self.node else []) + [self.n])
         # anti-windup of an analog integrator: a second copy of every system
         # with the integrator held (its row zeroed), see integrator_limits
         self.n_modes = 2 if self.analog and scenario.control.compensator.get(
@@ -233,7 +220,6 @@ class Stage:
         self.L, self.dcr = ind.inductance, ind.dcr
         self.C, self.esr = cap.capacitance, cap.esr
         self.rs = scenario.supply.resistance
-        hs, ls = scenario.high_side, scenario.low_side
         self.rds_hs = hs.rds_on
         self.vf_hs, self.r_hs = hs.body_diode.vf, hs.body_diode.r
         if isinstance(ls, Mosfet):
@@ -260,7 +246,7 @@ class Stage:
     @property
     def integrator_index(self) -> int:
         """Position of the analog compensator's integrator in ``z`` (-1: none)."""
-        return 2 if self.n_modes == 2 else -1
+        return self.i_ctl if self.n_modes == 2 else -1
 
     def integrator_limits(self) -> tuple[float, float]:
         """Range [V] of the analog integrator state (anti-windup).
@@ -290,13 +276,33 @@ class Stage:
         den = 1.0 + self.esr * lev.conductance
         return np.array([self.esr, 1.0, -self.esr * lev.current]) / den
 
-    def _embed(self, row3: np.ndarray) -> np.ndarray:
-        """A row over ``[iL, vC, 1]`` as a row over the whole augmented state."""
-        if not self.analog:
+    def _embed(self, row3: np.ndarray, vn: float = 0.0) -> np.ndarray:
+        """A row over ``[iL, vC, 1]`` (plus ``vn`` times the node state) as a
+        row over the whole augmented state."""
+        if not self.analog and not self.node:
             return row3
         out = np.zeros(self.n + 1)
-        out[self.plant_index] = row3
+        out[[0, 1, self.n]] = row3
+        if self.node:
+            out[self.i_node] = vn
+        elif vn != 0.0:
+            raise ValueError("a node-voltage term in a stage without node capacitance")
         return out
+
+    def clamp_rows(self, level: int) -> tuple[np.ndarray, np.ndarray]:
+        """Event rows of the two clamps on the open node at ``level``.
+
+        Returns ``(low, high)``: ``low @ z = vn + Vf_ls + r_ls iL`` and
+        ``high @ z = Vin + Vf_hs - (Rs + r_hs) iL - vn``; each is positive
+        while its diode blocks and reaches zero where the diode's clamped node
+        voltage (the module table) equals ``vn``.
+        """
+        if not self.node:
+            raise ValueError("the node has no capacitance: it has no clamp events")
+        vin = self.levels[level].vin
+        low = self._embed(np.array([self.r_ls, 0.0, self.vf_ls]), vn=1.0)
+        high = self._embed(np.array([-(self.rs + self.r_hs), 0.0, vin + self.vf_hs]), vn=-1.0)
+        return low, high
 
     def initial_state(self, x0) -> np.ndarray:
         """Full state at t = 0 from ``[iL, vC]`` (controller at rest) or a full state.
@@ -320,7 +326,7 @@ class Stage:
     def control_output(self, level: int) -> np.ndarray:
         """Row ``c_u`` with the analog compensator output ``u = c_u @ z`` at ``level`` [V]."""
         row = self.loop.D * self.error_row(level)
-        row[2:2 + self.n_controller] += self.loop.C
+        row[self.i_ctl:self.i_ctl + self.n_controller] += self.loop.C
         return row
 
     def _vsw(self, lev: Level, k: int, vo: np.ndarray):
@@ -338,25 +344,38 @@ class Stage:
         vo = self._vo(lev)
         io = lev.conductance * vo + np.array([0.0, 0.0, lev.current])
         ic = np.array([1.0, 0.0, 0.0]) - io
-        if k == IDLE:
-            di = np.zeros(3)  # iL is held at exactly zero
+        di_vn = dvn = 0.0
+        dvn_row = np.zeros(3)
+        if k == IDLE or (k == OPEN and not self.node):
+            di = np.zeros(3)  # iL is held at exactly zero (OPEN is unused without Cn)
+        elif k == OPEN:
+            # L iL' = vn - vo - DCR iL, Cn vn' = -iL (the open node)
+            di = (-vo - np.array([self.dcr, 0.0, 0.0])) / self.L
+            di_vn = 1.0 / self.L
+            if self.node:
+                dvn_row = np.array([-1.0 / self.cn, 0.0, 0.0])
         else:
             di = (self._vsw(lev, k, vo) - vo - np.array([self.dcr, 0.0, 0.0])) / self.L
         dv = ic / self.C
-        if not self.analog:
+        if not self.analog and not self.node:
             return np.array([di, dv, [0.0, 0.0, 0.0]])
         m = self.n + 1
         q = self.n_controller
         M = np.zeros((m, m))
-        M[0], M[1] = self._embed(di), self._embed(dv)
+        M[0], M[1] = self._embed(di, vn=di_vn if self.node else 0.0), self._embed(dv)
+        if self.node:
+            M[self.i_node] = self._embed(dvn_row, vn=dvn)
+        if not self.analog:
+            return M
         # compensator: w' = Ac w + Bc e, e = H (vref - vo)
         e_row = self._error_row(lev)
+        c0 = self.i_ctl
         for i in range(q):
-            M[2 + i] = self.loop.B[i] * e_row
-            M[2 + i, 2:2 + q] += self.loop.A[i]
-        M[2 + q, m - 1] = lev.ref_slope
+            M[c0 + i] = self.loop.B[i] * e_row
+            M[c0 + i, c0:c0 + q] += self.loop.A[i]
+        M[c0 + q, m - 1] = lev.ref_slope
         if held:
-            M[2] = 0.0      # the integrator (first section) holds its value
+            M[c0] = 0.0     # the integrator (first section) holds its value
         return M
 
     def signal(self, name: str, system: int) -> np.ndarray:
@@ -369,8 +388,11 @@ class Stage:
         channels carry iL, the high-side body diode carries -iL). In an
         analog loop also ``u`` (compensator output [V]) and ``vref`` [V].
         """
-        return self._embed(self._signal3(name, system)) if name not in ("u", "vref") \
-            else self._controller_signal(name, system)
+        if name in ("u", "vref"):
+            return self._controller_signal(name, system)
+        if name == "vsw" and self.node and self.split_id(system)[1] == OPEN:
+            return self._embed(np.zeros(3), vn=1.0)
+        return self._embed(self._signal3(name, system))
 
     def _controller_signal(self, name: str, system: int) -> np.ndarray:
         if not self.analog:
@@ -433,12 +455,13 @@ class Stage:
                     ("low_side_body_diode", self.r_ls, self.vf_ls)]
         return out
 
-    def stored_energy(self, x: np.ndarray) -> float:
-        """Energy in L and C [J] for state ``x = [iL, vC, ...]``."""
-        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2
+    def stored_energy(self, x: np.ndarray, vsw: float = 0.0) -> float:
+        """Energy in L, C and the node capacitance [J] for state ``x = [iL, vC, ...]``
+        and switch-node voltage ``vsw`` [V]."""
+        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2 + 0.5 * self.cn * vsw ** 2
 
 
 #: Unit of each signal and state a run can evaluate.
 UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw": "V",
          "vin": "V", "high_side": "A", "low_side": "A", "high_side_body_diode": "A",
-         "low_side_body_diode": "A", "t": "s", "u": "V", "vref": "V"}
+         "low_side_body_diode": "A", "t": "s", "u": "V", "vref": "V", "vn": "V"}

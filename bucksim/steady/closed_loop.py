@@ -49,7 +49,7 @@ class LoopMap:
         else:
             self.comp = design(self.scenario.control.compensator, self.scenario.period)
             self.k = self.comp.order
-            self.n_plant = 2
+            self.n_plant = self.stage.i_ctl  # iL, vC (and vn with node capacitance)
         self.delay = self.scenario.control.delay
         self.evaluations = 0
         self._phases = {}
@@ -158,13 +158,14 @@ def _start_vector(lm, x0, controller):
             c = controller.vector() if not lm.analog else np.asarray(controller.w, dtype=float)
         else:
             c = np.asarray(controller, dtype=float).ravel()
-        width = (p - 2) if lm.analog else n_ctl
+        c0 = lm.stage.i_ctl
+        width = (p - c0) if lm.analog else n_ctl
         if c.shape[0] != width or not np.all(np.isfinite(c)):
             raise ValueError(f"controller must hold {width} finite values (the compensator "
                              f"states{'' if lm.analog else ', then the delayed duties'}), "
                              f"got {c.tolist()}")
         if lm.analog:
-            y[2:p] = c
+            y[c0:p] = c
         else:
             y[p:] = c
     return y
@@ -182,6 +183,8 @@ def _averaged_guess(lm):
     sc = lm.scenario
     ctl = sc.control
     op = operating_point(sc)
+    # the node's value at a period's start only sets the first edge's jump: 0 V
+    plant = [op["valley"], op["vo"]] + [0.0] * (lm.stage.i_ctl - 2)
     if ctl.mode == "peak-current":
         u = ctl.current_sense * op["peak"] + ctl.slope_compensation * op["duty"] * sc.period
     else:
@@ -192,12 +195,12 @@ def _averaged_guess(lm):
         lhs = np.vstack([lm.comp.A, lm.comp.C[None, :]])
         rhs = np.concatenate([np.zeros(q), [u]])
         w = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
-        return np.concatenate([[op["valley"], op["vo"]], w])
+        return np.concatenate([plant, w])
     k = lm.k
     lhs = np.vstack([lm.comp.Ad - np.eye(k), lm.comp.Cd[None, :]])
     rhs = np.concatenate([np.zeros(k), [u]])
     w = np.linalg.lstsq(lhs, rhs, rcond=None)[0]
-    return np.concatenate([[op["valley"], op["vo"]], w, np.full(lm.delay, op["duty"])])
+    return np.concatenate([plant, w, np.full(lm.delay, op["duty"])])
 
 
 def _solve(lm, y0, tol, max_iter, max_brute_cycles=0):

@@ -148,11 +148,24 @@ def shoot(period_map: PeriodMapFn, x0, *, jacobian, scale, tol: float, max_iter:
                 status=status, message=msg)
 
 
+#: Full Newton steps allowed to raise the residual before the best point is
+#: restored and damping takes over (a watchdog: Chamberlain, Powell, Lemarechal
+#: and Pedersen, "The watchdog technique for forcing convergence in algorithms
+#: for constrained optimization", Math. Programming Study 16, 1982; from memory).
+#: A map that is nearly neutral in one state (an output capacitor over a DCM
+#: period whose turn-on current depends on a node ring's phase) sends the first
+#: full step far out and back; strict monotone damping then crawls.
+WATCHDOG_STEPS = 4
+
+
 def _newton(period_map, jacobian, measure, x, x1, aux, s, tol, max_iter, max_halvings):
-    """Damped Newton updates from ``x`` while the residual is above ``tol``."""
+    """Newton updates from ``x`` while the residual is above ``tol``: full steps under
+    a watchdog (:data:`WATCHDOG_STEPS`), then damped steps from the best point."""
     eye = np.eye(x.shape[0])
     method = "newton"
     resid = residual(x, x1, s)
+    best = (x, x1, aux, s, resid)
+    free = WATCHDOG_STEPS
     it = 0
     while resid > tol and it < max_iter:
         J = jacobian(x, x1, aux, s)
@@ -160,6 +173,23 @@ def _newton(period_map, jacobian, measure, x, x1, aux, s, tol, max_iter, max_hal
             step = np.linalg.solve(J - eye, -(x1 - x))
         except np.linalg.LinAlgError:
             break
+        if free > 0:
+            xt = x + step
+            xt1, auxt = period_map(xt)
+            st = measure(xt, xt1, auxt)
+            rt = residual(xt, xt1, st)
+            if np.isfinite(rt):
+                free = WATCHDOG_STEPS if rt < best[4] else free - 1
+                x, x1, aux, s, resid = xt, xt1, auxt, st, rt
+                if rt < best[4]:
+                    best = (x, x1, aux, s, resid)
+                it += 1
+                if free == 0 and best[4] < resid:
+                    x, x1, aux, s, resid = best     # the watchdog: back to the best point
+                continue
+            free = 0
+            x, x1, aux, s, resid = best
+            continue
         lam = 1.0
         for _ in range(max_halvings):
             xt = x + lam * step

@@ -27,6 +27,8 @@ References
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 from scipy.linalg import expm
 
@@ -64,6 +66,8 @@ class PeriodMap:
         return x1, self.monodromy(res), res
 
     def monodromy(self, res) -> np.ndarray:
+        """The one-period map's Jacobian: the segments' transition matrices, each
+        followed by its reset and saltation matrix (:func:`jump_matrix`)."""
         n = self.stage.n
         Ms = self.table.matrices
         J = np.eye(n)
@@ -72,23 +76,65 @@ class PeriodMap:
         for j in range(count):
             s = res.system[j]
             J = expm(Ms[s] * res.dt[j])[:n, :n] @ J
-            ended = res.conduction[j] in self._evented
-            if j + 1 < count and res.conduction[j + 1] == IDLE and ended:
-                t_next = res.t0[j + 1]
-                if np.min(np.abs(self._edges - t_next)) > 1e-12 * T:
-                    z = np.append(res.x0[j + 1], 1.0)
-                    f_minus = (Ms[s] @ z)[:n]
-                    f_plus = (Ms[res.system[j + 1]] @ z)[:n]
-                    if f_minus[0] != 0.0:
-                        salt = np.eye(n)
-                        salt[:, 0] += (f_plus - f_minus) / f_minus[0]
-                        J = salt @ J
+            at_edge = j + 1 >= count or np.min(np.abs(self._edges - res.t0[j + 1])) <= 1e-12 * T
+            nxt = -1 if j + 1 >= count else res.conduction[j + 1]
+            S = jump_matrix(self.stage, s, res.conduction[j], nxt, at_edge, self._evented,
+                            None if j + 1 >= count else res.x0[j + 1], res.system[j + 1]
+                            if j + 1 < count else -1)
+            if S is not None:
+                J = S @ J
         return J
 
 
-def _scale(x, x1, res):
-    """Residual scale: each state's largest magnitude over the period and at its ends."""
-    mags = np.abs(res.x0).max(axis=0) if res.x0.shape[0] else np.zeros_like(x)
+#: Periods settled in one engine call before Newton is tried again (doubled each time).
+PRE_SETTLE_CYCLES = 2000
+
+
+def jump_matrix(stage, s, cond, nxt, at_edge, evented, x_next, s_next):
+    """Reset and saltation at the end of a segment in system ``s`` (None: identity).
+
+    With node capacitance the cycle loop sets ``vn`` to the node's voltage
+    ``c_sw . z`` at the end of every conducting segment: a linear reset ``R``
+    (identity with the ``vn`` row replaced by ``c_sw``). A segment that ends at
+    a state-dependent event ``g . x = const`` (zero current; a clamp of the
+    open node) rather than at a fixed gate edge adds the saltation term [2]_:
+    ``S = R + (f^+ - R f^-) g^T / (g^T f^-)``, with the vector fields ``f^-``
+    of the ending system and ``f^+`` of the next at the event state.
+    """
+    from bucksim.model.stage import HIGH_DIODE as HD
+    from bucksim.model.stage import LOW_DIODE as LD
+    from bucksim.model.stage import OPEN
+    n = stage.n
+    R = None
+    if stage.node and cond not in (OPEN, IDLE):
+        R = np.eye(n)
+        R[stage.i_node] = stage.signal("vsw", s)[:n]
+    g = None
+    if not at_edge and x_next is not None:
+        level = stage.split_id(s)[0]
+        if cond in evented and nxt in (IDLE, OPEN):
+            g = np.zeros(n)
+            g[0] = 1.0
+        elif cond == OPEN and nxt in (LD, HD):
+            g = stage.clamp_rows(level)[0 if nxt == LD else 1][:n]
+    if g is None:
+        return R
+    Ms = stage.matrices
+    z = np.append(x_next, 1.0)
+    f_minus = (Ms[s] @ z)[:n]
+    f_plus = (Ms[s_next] @ z)[:n]
+    den = float(g @ f_minus)
+    if den == 0.0:
+        return R
+    base = np.eye(n) if R is None else R
+    return base + np.outer(f_plus - base @ f_minus, g) / den
+
+
+def _scale(x, x1, res, n=None):
+    """Residual scale: each state's largest magnitude over the period and at its ends
+    (the first ``n`` states)."""
+    n = x.shape[0] if n is None else n
+    mags = np.abs(res.x0[:, :n]).max(axis=0) if res.x0.shape[0] else np.zeros_like(x)
     return np.maximum(np.maximum(mags, np.abs(x)), np.maximum(np.abs(x1), 1e-12))
 
 
@@ -106,14 +152,27 @@ def initial_guess(scenario) -> np.ndarray:
     from bucksim.analysis.budget import operating_point
     op = operating_point(scenario)
     guess = np.array([op["valley"], op["vo"]])  # a cycle starts at high-side turn-on
+    guess = _with_node(scenario, guess)
     r = scenario.load.resistance
-    if scenario.switching.strategy != "forced-pwm" and r not in (None, np.inf):
+    if r in (None, np.inf) and scenario.load.current > 0 and op["vo"] > 0:
+        r = op["vo"] / scenario.load.current    # a current sink: its resistance at Vo
+    if scenario.switching.strategy != "forced-pwm" and r not in (None, np.inf) and r > 0:
         D = scenario.control.duty
         K = 2.0 * scenario.inductor.inductance * scenario.switching.frequency / r
         if K < 1.0 - D:
             M = 2.0 / (1.0 + np.sqrt(1.0 + 4.0 * K / D ** 2))
-            guess = np.array([0.0, M * scenario.supply.voltage])
+            # the node rings about the output in the idle interval
+            vo = M * scenario.supply.voltage
+            guess = _with_node(scenario, np.array([0.0, vo]), vo)
     return guess
+
+
+def _with_node(scenario, x, vn: float = 0.0):
+    """``[iL, vC]`` with the node state ``vn`` [V] appended when the node has
+    capacitance (its value at a period's start only sets the first edge's jump)."""
+    hs, ls = scenario.high_side, scenario.low_side
+    cn = hs.coss + getattr(ls, "coss", 0.0) + getattr(ls, "cj", 0.0)
+    return np.append(x, vn) if cn > 0 else x
 
 
 def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1e-12,
@@ -131,11 +190,61 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
                          f"scenario has no controller state, got {controller!r}")
     check_settings(tol, max_iter, max_brute_cycles)
     pmap = PeriodMap(scenario)
-    x = initial_guess(scenario) if x0 is None else _start_state(x0)
-    shot = shoot(pmap.step, x, jacobian=lambda x, x1, res, s: pmap.monodromy(res),
-                 scale=_scale, tol=tol, max_iter=max_iter, max_halvings=30,
-                 max_brute_cycles=max_brute_cycles)
+    x = initial_guess(scenario) if x0 is None else _start_state(x0, pmap.stage.n)
     n = x.shape[0]
+    # a period that starts with the high side on never reads the node's start value
+    # (the channel sets the node): shoot on [iL, vC] and carry vn along, so that
+    # Newton's damping is not judged on a state the map does not depend on
+    reduced = pmap.stage.node and pmap.scenario.control.duty > 0
+    node = {"vn": x[-1]}
+
+    def step(xr):
+        if not reduced:
+            return pmap.step(xr)
+        x1, res = pmap.step(np.append(xr, node["vn"]))
+        node["vn"] = x1[-1]
+        return x1[:-1], res
+
+    def jacobian(xr, x1, res, s):
+        J = pmap.monodromy(res)
+        return J[:-1, :-1] if reduced else J
+
+    def scale(xr, x1, res):
+        return _scale(xr, x1, res, xr.shape[0])
+
+    start = x[:-1] if reduced else x
+    shot = shoot(step, start, jacobian=jacobian, scale=scale, tol=tol, max_iter=max_iter,
+                 max_halvings=30, max_brute_cycles=0)
+    used, block = 0, PRE_SETTLE_CYCLES
+    while not shot.success and used + block <= max_brute_cycles:
+        # Newton's basin can be small (an output that settles over thousands of
+        # periods; a DCM node ring whose phase at the next turn-on moves with the
+        # state): settle a block of periods in one engine call, shoot again, and
+        # double the block; brute-force settling period by period is the last resort
+        x_full = np.append(shot.x, node["vn"]) if reduced else shot.x
+        if not np.all(np.isfinite(x_full)):
+            x_full = np.append(start, node["vn"]) if reduced else start
+        res = integrate(pmap.stage, x_full, table=pmap.table, n_cycles=block,
+                        t_end=block * pmap.scenario.period, phase_cache=pmap._phases)
+        pmap.evaluations += block
+        used += block
+        block *= 2
+        if not (res.success and np.all(np.isfinite(res.x_end))):
+            break
+        node["vn"] = res.x_end[-1]
+        again = res.x_end[:-1] if reduced else res.x_end
+        shot = shoot(step, again, jacobian=jacobian, scale=scale, tol=tol, max_iter=max_iter,
+                     max_halvings=30, max_brute_cycles=0)
+    if not shot.success and max_brute_cycles > used:
+        again = shot.x if np.all(np.isfinite(shot.x)) else start
+        last = shot.message
+        shot = shoot(step, again, jacobian=jacobian, scale=scale, tol=tol, max_iter=0,
+                     max_halvings=30, max_brute_cycles=max_brute_cycles - used)
+        settled = shot.message.split("; ", 1)[-1]
+        shot = dataclasses.replace(shot, message=f"{last}, also after {used} settled "
+                                                 f"periods; {settled}")
+    if reduced:
+        shot = dataclasses.replace(shot, x=np.append(shot.x, shot.aux.x_end[-1]))
     if shot.method == "brute-force" and not shot.success:
         J = np.eye(n)       # settling failed: no period to linearise about
     else:
@@ -146,9 +255,13 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
                        status=shot.status, message=shot.message)
 
 
-def _start_state(x0) -> np.ndarray:
-    """A caller's starting state ``[iL, vC]``, refused unless two finite values."""
+def _start_state(x0, n: int = 2) -> np.ndarray:
+    """A caller's starting state ``[iL, vC]`` (or ``[iL, vC, vn]`` with node
+    capacitance, ``n = 3``), refused unless finite values of that length."""
     x = np.asarray(x0, dtype=float).ravel().copy()
-    if x.shape[0] != 2 or not np.all(np.isfinite(x)):
-        raise ValueError(f"x0 must be two finite values [iL [A], vC [V]], got {x.tolist()}")
+    if n > 2 and x.shape[0] == 2:
+        x = np.append(x, 0.0)
+    if x.shape[0] != n or not np.all(np.isfinite(x)):
+        names = "[iL [A], vC [V]]" if n == 2 else "[iL [A], vC [V]] or [iL, vC, vn [V]]"
+        raise ValueError(f"x0 must be finite values {names}, got {x.tolist()}")
     return x

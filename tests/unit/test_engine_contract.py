@@ -26,10 +26,11 @@ ROOT = Path(__file__).resolve().parents[2]
 # ----------------------------------------------------------------------------- mirrored constants
 
 def test_conduction_codes_of_the_kernels_are_the_stage_codes():
-    for name in ("HIGH", "LOW", "LOW_DIODE", "HIGH_DIODE", "IDLE", "N_CONDUCTION"):
+    for name in ("HIGH", "LOW", "LOW_DIODE", "HIGH_DIODE", "IDLE", "OPEN", "N_CONDUCTION"):
         assert getattr(kernels, name) == getattr(stage_mod, name), name
     assert len(stage_mod.CONDUCTION_NAMES) == kernels.N_CONDUCTION
-    codes = [kernels.HIGH, kernels.LOW, kernels.LOW_DIODE, kernels.HIGH_DIODE, kernels.IDLE]
+    codes = [kernels.HIGH, kernels.LOW, kernels.LOW_DIODE, kernels.HIGH_DIODE, kernels.IDLE,
+             kernels.OPEN]
     assert sorted(codes) == list(range(kernels.N_CONDUCTION))
 
 
@@ -162,3 +163,10 @@ def test_simulate_builds_each_stage_once(path, monkeypatch):
 
         periodic = periodic_scenario(sc)
         assert built[1].supply == periodic.supply and built[1].load == periodic.load
+
+
+def test_the_cycle_loops_divergence_range_is_the_simulations():
+    from bucksim import simulation
+    from bucksim.engine import cycles
+
+    assert cycles._STATE_RANGE == simulation.STATE_RANGE

@@ -95,13 +95,18 @@ def test_light_load_forced_pwm_is_least_efficient(pol):
     least efficient: its current reverses every period and its loss hardly falls
     with the load (the circulating ripple sets it), while the others' loss does.
 
-    The ranking depends on the parts: in this model a diode-emulating stage pays
-    a hard turn-on of the node capacitance from the idle state, 0.5 C (Vin - Vo)^2
-    fs, which forced PWM avoids at light load (its negative current swings the
-    node), so a large low-side Coss or gate charge can reverse it."""
+    The ranking depends on the parts: a diode-emulating or asynchronous stage
+    pays for its node capacitance twice at light load (the ring after the current
+    stops, about 0.5 Cn vo^2 a period, and the high side closing on the ringing
+    node), which forced PWM avoids (its negative current swings the node toward
+    Vin), so a large low-side Coss or gate charge can reverse it. The DCM stages'
+    current also crosses zero, in the node's ring (amplitude about (vo + Vf) / Z,
+    Z = sqrt(L / Cn): derived), which the reversal flag reports too; their mode
+    says they block the reversal."""
     fp = pol.row("forced-pwm", LIGHT)
     others = [pol.row(s, LIGHT) for s in ("asynchronous", "diode-emulation")]
-    assert fp.reverse_current and not any(r.reverse_current for r in others)
+    assert fp.reverse_current and fp.mode == "ccm"
+    assert all(r.mode == "dcm" for r in others)
     assert all(fp.efficiency < r.efficiency for r in others)
     # from 20 mA to 100 mA: forced PWM's loss stays put, the others' grows with load
     assert pol.row("forced-pwm", 0.1).loss == pytest.approx(pol.row("forced-pwm", 0.02).loss,

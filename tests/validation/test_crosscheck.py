@@ -56,9 +56,14 @@ def test_conduction_items_agree_in_ccm_with_small_ripple(strategy):
         tol = 0.05 if key.startswith("output_capacitor") else 0.005
         r = rows[key]
         assert r["simulated"] == pytest.approx(r["closed_form"], rel=tol), key
-    # Coss, Qrr and gate terms do not depend on the current: equal to rounding
-    for key in ("switching.coss", "switching.recovery", "switching.gate"):
+    # Qrr and gate terms do not depend on the current: equal to rounding
+    for key in ("switching.recovery", "switching.gate"):
         assert rows[key]["simulated"] == pytest.approx(rows[key]["closed_form"], rel=1e-9), key
+    # the node's charge: the closed form Cn (v_b - v_a)(V_p - (v_a + v_b)/2) per closing
+    # switch at the averaged edge currents (derived; budget._node_charge) against the
+    # circuit's node state, where the clamp voltages move with the exact currents: ~1e-5
+    r = rows["switching.coss"]
+    assert r["simulated"] == pytest.approx(r["closed_form"], rel=1e-4)
 
 
 def test_overlap_energy_uses_the_exact_edge_currents():
@@ -124,12 +129,16 @@ def test_estimate_items_name_formula_and_source():
 
 
 def test_zero_dead_time_counts_every_hard_turn_on():
-    """Forced PWM, no dead time, reverse current: the high side turns on from the
-    low-side channel every period (hard), so Coss energy is 0.5 C V^2 fs exactly."""
+    """Forced PWM, no dead time, reverse current: each switch closes on the node the
+    other held, so each edge moves the node's whole swing: about 0.5 Cn Vin^2 fs per
+    edge, Cn Vin^2 fs in all (derived: the charge Cn Vin moved through a closing switch
+    from a source at Vin or ground)."""
     sc = dataclasses.replace(rail(R=16.5, L=4.7e-6, dead=(0.0, 0.0)))
     cc = crosscheck(sc)
     assert cc.summary["reverse_current"]
     row = {r["item"]: r for r in cc.rows}["switching.coss"]
-    assert row["simulated"] == pytest.approx(row["closed_form"], rel=1e-9)
+    assert row["simulated"] == pytest.approx(row["closed_form"], rel=1e-4)
+    cn = 300e-12 + 600e-12
+    assert row["simulated"] == pytest.approx(cn * 12.0 ** 2 * 500e3, rel=0.01)
     run = bucksim.simulate(dataclasses.replace(sc, run=RunSettings(cycles=300)))
     assert run.segments.dt.min() > 1e-3 * sc.period   # no sliver segments
