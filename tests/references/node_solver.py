@@ -47,15 +47,18 @@ and opens at ``iL = 0``, staying open for the rest of the period. The node
 starts at its conducting value ``Vin - (Rs + Rds_hs) iL(0)``.
 
 Difference from the engine's model: the engine treats ``vn`` as algebraic
-while a branch conducts and jumps it at once when a channel closes (or a
-diode takes over) at another voltage. Here the node follows the jump with
-the lag ``tau = R Cn`` of the branch, so the inductor sees ``dV tau`` less
-volt-seconds per jump ``dV``: the currents differ by ``dV tau / L`` per edge,
-relative differences of order ``R Cn / T`` (1e-6 to 1e-5 for milliohm
-branches and nanofarad nodes). :attr:`NodeTrace.lags` lists each jump's
-``(time, dV, tau)`` and :meth:`NodeTrace.drift_lags` the same for the node
-trailing its moving conducting value (``R^2 Cn diL/dt``, far smaller), so
-that a comparison can bound what it should see.
+while a branch conducts and jumps it at once when a channel closes at
+another voltage. Here the node follows the jump with the lag ``tau = R Cn``
+of the branch, so the inductor sees ``dV tau`` less volt-seconds per jump
+``dV``: the currents differ by ``dV tau / L`` per edge, relative differences
+of order ``R Cn / T`` (1e-6 to 1e-5 for milliohm branches and nanofarad
+nodes). A diode's conducting value ``-Vf - r iL`` lies ``dV = -r iL`` past
+its threshold; a model that jumps there at the threshold, or lets the free
+node slew on to it, differs from this one by at most ``|dV| tau`` as well.
+:attr:`NodeTrace.lags` lists each such ``(time, dV, tau)`` and
+:meth:`NodeTrace.drift_lags` the same for the node trailing its moving
+conducting value (``R^2 Cn diL/dt``, far smaller), so that a comparison can
+bound what it should see.
 
 References
 ----------
@@ -212,8 +215,10 @@ class NodeTrace:
     gate_times : ndarray [s]   every gate edge
     event_times : ndarray [s]   every diode on/off and diode-emulation turn-off
     lags : ndarray (n, 3)   ``(time [s], dV [V], tau [s])`` of every place where
-        the engine's node jumps (a channel closing, a diode taking over) and this
-        model follows with the lag ``tau = R Cn`` (see also :meth:`drift_lags`)
+        an algebraic-node model's node changes at once (a channel closing at a
+        gate edge; a diode taking over, from its threshold to its conducting
+        value) and this model follows with the lag ``tau = R Cn`` (see also
+        :meth:`drift_lags`)
     stop : float [s]
     """
 
@@ -320,7 +325,7 @@ class _Integrator:
             new[flag] = not new[flag]
             topo = tuple(new)
             self.events.append(t_ev)
-            if new[flag] and flag in (1, 3):     # a diode takes over: the engine jumps
+            if new[flag] and flag in (1, 3):     # a diode takes over past its threshold
                 self.record_lag(t_ev, x, tuple(f and i == flag for i, f in enumerate(new)))
             t = t_ev
             if t >= t_end:
