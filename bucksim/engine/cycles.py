@@ -71,7 +71,7 @@ from bucksim.engine.kernels import (
     crossing_value,
     find_zero,
 )
-from bucksim.engine.loop_parts import _compensate, _dot, _needs_search
+from bucksim.engine.loop_parts import _compensate, _dot, _needs_search, newton_crossing
 from bucksim.engine.status import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
 
 __all__ = ["CONTROL_OPEN", "CONTROL_DIGITAL", "CONTROL_ANALOG", "N_PHASES", "run_cycles"]
@@ -241,8 +241,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     t_stop = t_end
                 search_ls = search_hs = False
                 if cond == OPEN:
-                    # a diode at its clamp conducts at once; one at the clamp with
-                    # the current driving the node away is not searched here
+                    # at a clamp: its diode conducts now, or (current away) is not searched
                     f_ls = _dot(Cls[level], z)
                     f_hs = _dot(Chs[level], z)
                     clamp_tol = 1e-12 * (abs(Cls[level, m - 1]) + abs(Chs[level, m - 1]) + 1.0)
@@ -297,8 +296,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     cond == LOW and strategy == EMULATION)
                 if evented:
                     sign0 = -1.0 if cond == HIGH_DIODE else 1.0
-                    # the zero-current test written out (a call with array arguments
-                    # costs more than the test): bounds.current_clear
+                    # the zero-current test written out (module notes): bounds.current_clear
                     search = d > gs or sign0 * z[0] <= 0.0
                     if not search:
                         s0 = 0.0
@@ -333,9 +331,17 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                         search_hs = search_hs and not hi_ok
                     if search_ls and _needs_search(Ms, s, Cls[level], kls[level, s], zs, z,
                                                    t_stop, d, gs, 1.0, 0.0, 0.0, t, bnd):
-                        tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, 1.0, gs, tmp, trial,
-                                       work, Cls[level], 0.0, 0.0, t, False, taylor_gap, poly,
-                                       bnd, k3ls[level, s])
+                        # a slew at high current: Newton, proven; else the general search
+                        u = newton_crossing(Ms, E, h, s, zs, t, d, Cls[level], kls[level, s],
+                                            bnd, tmp, work)
+                        if u > 0.0:
+                            tz = t + u
+                            for i in range(m):
+                                zs[i] = work[i]
+                        else:
+                            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, 1.0, gs, tmp,
+                                           trial, work, Cls[level], 0.0, 0.0, t, False,
+                                           taylor_gap, poly, bnd, k3ls[level, s])
                     clamp = LOW_DIODE if tz >= 0.0 else OPEN
                     if search_hs:
                         zb = zs if tz >= 0.0 else z
@@ -362,8 +368,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                        k3thr[level, s] if control == CONTROL_ANALOG
                                        else k3il[0, s])
                     if np.isfinite(ph_lim):
-                        # the limit counts only if it comes first: search up to the
-                        # comparator's instant (zs holds the state there) or the stop
+                        # the limit counts only before the comparator's instant (zs there)
                         zb = zs if tz >= 0.0 else z
                         t_lim = tz if tz >= 0.0 else t_stop
                         if _needs_search(Ms, s, e_il, kil[s], zs2, zb, t_lim, t_lim - t, gs,
@@ -377,8 +382,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                     zs[i] = zs2[i]
                 hold_event = 0
                 if n_modes == 2:
-                    # the integrator's limits and the error's sign compete with the
-                    # events above: search up to the earliest of those
+                    # the integrator's limits and the error's sign: up to the earliest event
                     t_h = tz if tz >= 0.0 else t_stop
                     zb = zs if tz >= 0.0 else z
                     th = -1.0
@@ -397,9 +401,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                             continue
                         dh = t_h - t
                         if kind < 3:
-                            # the integrator's own row: the cheap test written out (a call
-                            # with array arguments costs more than the test), as in
-                            # _needs_search
+                            # the integrator's own row: the cheap test written out
                             f0h = hsign * (zst[i_w] - hlev)
                             f1h = hsign * (zb[i_w] - hlev)
                             if dh <= gs and f0h > 0.0 and f1h > 0.0:
@@ -463,8 +465,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     nseg += 1
                     t = tz
                     if cond == OPEN:
-                        # a clamp: its diode conducts (unless the current already
-                        # turned: the node only touched the clamp)
+                        # a clamp: its diode conducts (unless the node only touched it)
                         if (clamp == LOW_DIODE and z[0] > 0.0) or (
                                 clamp == HIGH_DIODE and z[0] < 0.0):
                             cond = clamp
@@ -481,9 +482,8 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                 nseg += 1
                 t = t_stop
                 if node and cond != OPEN:
-                    # invariant: z[i_vn] holds the node voltage at every segment's end,
-                    # so an opening node starts there and a closing channel's jump is
-                    # the next segment's x0[i_vn] against its own node row
+                    # invariant: z[i_vn] holds the node voltage at every segment's end
+                    # (an opening node starts there; analysis.edges reads the jumps)
                     z[i_vn] = _dot(Vsw[level * N_CONDUCTION + cond], z)
                 for i in range(m):
                     if not np.isfinite(z[i]):

@@ -9,8 +9,8 @@ from __future__ import annotations
 
 from numba import njit
 
-from bucksim.engine.bounds import clear_between, growth
-from bucksim.engine.kernels import crossing_slope, crossing_value
+from bucksim.engine.bounds import clear_between, growth, reach
+from bucksim.engine.kernels import advance, crossing_slope, crossing_value
 
 
 @njit(cache=True)
@@ -68,3 +68,53 @@ def _needs_search(Ms, s, row, krow, zs, z, t_end_seg, d, guard, sign0, level, ra
     if f0 + min(s0, 0.0) * d - 0.5 * B * d * d > 0.0:
         return False     # Taylor from the start over the whole segment
     return not clear_between(f0, s0, f1, sign0 * crossing_slope(Ms, s, row, z, ramp), d, B)
+
+
+@njit(cache=True)
+def newton_crossing(Ms, E, h, s, zs, t0, d, row, krow, bnd, tmp, work):
+    """A proven first downward crossing of ``row . z = 0`` in ``(0, d]``, by Newton.
+
+    From the start state ``zs`` (``row . zs > 0``, heading down) Newton steps on
+    the exact solution converge on the crossing ``u``; it is accepted only when
+    the curvature bound ``|f''| <= B`` (:mod:`bucksim.engine.bounds`) proves
+    ``f > 0`` on ``[0, u)``: the reach forward from 0 and backward from ``u``
+    must cover it. Returns ``u`` (``work`` then holds ``z(t0 + u)``) or -1.0,
+    and the caller falls back to :func:`~bucksim.engine.kernels.find_zero`. A
+    switch node that slews at a nearly constant current crosses its clamp on
+    a nearly straight line: two or three steps, no table descent.
+    """
+    m = zs.shape[0]
+    f0 = _dot(row, zs)
+    s0 = crossing_slope(Ms, s, row, zs, 0.0)
+    if not (f0 > 0.0 and s0 < 0.0):
+        return -1.0
+    u = -f0 / s0
+    sl = s0
+    done = False
+    for _ in range(8):
+        if not (0.0 < u <= d):
+            return -1.0
+        for i in range(m):
+            work[i] = zs[i]
+        advance(Ms, E, h, s, work, u, tmp)
+        f = _dot(row, work)
+        sl = crossing_slope(Ms, s, row, work, 0.0)
+        if not sl < 0.0:
+            return -1.0
+        du = -f / sl
+        if abs(du) <= 2.220446049250313e-16 * 4.0 * (abs(t0) + u):
+            done = True
+            break
+        u += du
+    if not done or not (0.0 < u <= d):
+        return -1.0
+    vel = 0.0
+    for i in range(m - 1):
+        acc = 0.0
+        for j in range(m):
+            acc += Ms[s, i, j] * zs[j]
+        vel = max(vel, abs(acc) * bnd[s, i])
+    B = krow * vel * growth(bnd[s, m - 1] * u) * (1.0 + 1e-12)
+    if reach(f0, s0, B) + reach(0.0, -sl, B) < u * (1.0 + 1e-12):
+        return -1.0
+    return u
