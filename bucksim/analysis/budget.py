@@ -189,7 +189,9 @@ def estimate(scenario) -> LossBudget:
         - ``inductor.conduction``: ``DCR (Io^2 + dI^2/12)``
         - ``output_capacitor.conduction``: ``ESR dI^2/12``
         - ``supply.conduction``: ``Rs D (Io^2 + dI^2/12)``
-        - ``switching.overlap``: ``0.5 Vin (I_valley tr + I_peak tf) fs``
+        - ``switching.overlap``: ``0.5 Vin I_valley tr fs`` plus the turn-off
+          energy at ``I_peak`` (``0.5 Vin I tf``, snubbed by the node capacitance
+          at low current: :func:`bucksim.analysis.edges.snubbed_turn_off`)
         - ``switching.coss``: the node's charge moved by closing switches,
           ``0.5 Cn ((Vin + Vf)^2 + Vf^2) fs`` in CCM with dead times (see
           :func:`_node_charge`; ``Cn`` from :func:`node_capacitance`)
@@ -279,9 +281,12 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
     # the node is at ground when the high side turns on unless a negative
     # current has already carried it to Vin during the rising dead time
     hard_on = vl > 0 or (sync and tr == 0)
-    overlap = 0.5 * vin * (max(vl, 0.0) * hs.rise_time + max(pk, 0.0) * hs.fall_time) * fs
+    from bucksim.analysis.edges import snubbed_turn_off
+    e_off = float(snubbed_turn_off(vin, pk, hs.fall_time, node_capacitance(scenario)))
+    overlap = (0.5 * vin * max(vl, 0.0) * hs.rise_time + e_off) * fs
     items = [BudgetItem("switching.overlap", "high_side", "switching", overlap,
-                        "0.5 Vin (I_valley t_rise + I_peak t_fall) fs", CP)]
+                        "(0.5 Vin I_valley t_rise + E_off(I_peak)) fs, E_off = 0.5 Vin I t_fall "
+                        "snubbed by Cn at low current", CP)]
     coss, formula = _node_charge(scenario, op, hard_on)
     items.append(BudgetItem("switching.coss", "high_side", "switching", coss * fs, formula,
                             "derived (charge moved through a closing switch, Erickson & "

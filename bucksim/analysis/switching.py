@@ -14,7 +14,10 @@ transition                    energy [J]
 high side turns on            gate ``Qg_hs Vg_hs`` (always);
   from low diode/low/open     overlap ``0.5 Vin max(i, 0) t_rise_hs``;
   (hard)                      reverse recovery ``Q Vin`` of the low-side diode's charge
-high side turns off, i > 0    overlap ``0.5 Vin i t_fall_hs``
+high side turns off, i > 0    overlap: the channel's current ramp against the node
+                              capacitance, ``I^2 t_f^2 / (24 Cn)`` at low current,
+                              ``-> 0.5 Vin i t_fall_hs`` at high current
+                              (:func:`~bucksim.analysis.edges.snubbed_turn_off`)
 low side turns on             gate ``Qg_ls Vg_ls`` (always);
   from high body diode, or    overlap ``0.5 Vin |i| t_rise_ls``, recovery ``Q Vin`` of
   from high with i < 0        the high-side body diode's charge
@@ -48,6 +51,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.analysis.recovery import conduction_before_start, recovered_charges
 from bucksim.model.parts import Mosfet
 from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, OPEN
@@ -103,7 +107,9 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
     h["recovery"] += float(np.sum(rec["low_side"]["charges"] * rec["low_side"]["vin"]))
 
     hs_off = (prev == HIGH) & (cur != HIGH) & (i > 0)
-    h["overlap"] += np.sum(0.5 * vin[hs_off] * i[hs_off]) * hs.fall_time
+    # the node capacitance snubs a turn-off at low current (edges.snubbed_turn_off)
+    h["overlap"] += float(np.sum(snubbed_turn_off(vin[hs_off], i[hs_off], hs.fall_time,
+                                                  run.stage.cn)))
 
     n_ls_on = 0
     if ls_fet:

@@ -3,7 +3,7 @@
 For one set of parts, :func:`compare` evaluates in periodic steady state
 
 * the asynchronous stage: high-side MOSFET and a freewheel diode (by default
-  a diode with the low-side MOSFET's body-diode values);
+  the undriven low-side MOSFET's body diode, its ``coss`` kept on the node);
 * forced PWM: synchronous, the low-side channel on for the whole off-time;
 * diode emulation: synchronous, the low side turned off at zero current
   (switch realisations and DCM as in [1]_; why the choice matters at light
@@ -13,18 +13,16 @@ at each load level: efficiency and the loss of every device (conduction and
 switching), the inductor (DCR, and core loss when the scenario gives core
 data), the output capacitor (ESR) and the supply resistance.
 
-By default the duty is trimmed at each point so that the mean output voltage
-equals the scenario's own (an ideal regulator), so every strategy delivers
-the same power to the same load and efficiencies compare like for like;
-``regulate=False`` keeps the scenario's duty.
+By default the duty is trimmed so that the mean output voltage equals the
+scenario's own (an ideal regulator): every strategy delivers the same power
+to the same load; ``regulate=False`` keeps the scenario's duty.
 
 A load profile (levels and the share of time the rail spends at each) gives
 each strategy's energy-weighted efficiency ``sum(share P_out) / sum(share
 P_in)`` and its energy lost per day, names the best strategy and the one
 number that decides it.
 
-Load levels are written as in :mod:`bucksim.studies.reverse` (``"0.3 A"``,
-``"2 ohm"`` or a number in the scenario's load unit).
+Load levels are written as in :mod:`bucksim.studies.reverse` (``"0.3 A"``, ``"2 ohm"``).
 
 References
 ----------
@@ -71,16 +69,18 @@ STRATEGY_ORDER = STRATEGIES
 def strategy_scenario(scenario, strategy: str, diode: Diode | None = None):
     """The scenario's parts run with ``strategy``.
 
-    The synchronous strategies need a low-side MOSFET in the scenario; the
-    asynchronous one uses ``diode`` (default: the scenario's own freewheel
-    diode, else the low-side MOSFET's body diode) and no dead time.
-    """
+    Synchronous strategies need a low-side MOSFET; the asynchronous one uses
+    ``diode`` (its own ``cj``, ``tau``, ``qrr_current``), by default the
+    scenario's freewheel diode or else the undriven low-side MOSFET's body diode,
+    with that MOSFET's ``coss`` as its ``cj``; and no dead time."""
     rep = dataclasses.replace
     ls = scenario.low_side
     if strategy == "asynchronous":
-        if diode is None:
-            diode = ls if isinstance(ls, Diode) else ls.body_diode
-        diode = Diode(diode.vf, diode.r, diode.qrr, section="low_side")
+        if diode is None and isinstance(ls, Mosfet):
+            diode = rep(ls.body_diode, cj=ls.coss)
+        elif diode is None:
+            diode = ls
+        diode = rep(diode, section="low_side")
         return rep(scenario, low_side=diode,
                    switching=rep(scenario.switching, strategy=strategy, dead_time=(0.0, 0.0)))
     if not isinstance(ls, Mosfet):

@@ -137,3 +137,31 @@ def test_a_ringing_dcm_node_is_found_by_newton_not_by_settling():
                                        "run.summary_cycles", 1), x0=ss.x)
     scale = np.maximum(np.abs(run.segments.x0).max(axis=0), 1e-9)
     assert np.max(np.abs(run.x_end - ss.x) / scale) < 1e-9
+
+
+@pytest.mark.parametrize("current", [0.05, 0.5, 3.0, 7.6, 20.0, 400.0])
+def test_snubbed_turn_off_is_the_integral_of_the_ramp_against_the_node(current):
+    """The channel's current falls linearly over t_f; the node capacitance takes the
+    rest until the node has swung V, then the opposite diode clamps it. Integrate
+    v i_ch numerically (scipy quad) and compare; check the two limits (derived):
+    I^2 t_f^2 / (24 Cn) below I = 2 Cn V / t_f, and 0.5 V I t_f far above."""
+    from scipy.integrate import quad
+
+    from bucksim.analysis.edges import snubbed_turn_off
+
+    cn, tf, v = 1.9e-9, 6e-9, 12.0
+
+    def power(t):
+        i_ch = current * (1.0 - t / tf)
+        return min(current * t * t / (2.0 * cn * tf), v) * i_ch
+
+    t_v = np.sqrt(2 * cn * v * tf / current)
+    points = [t_v] if t_v < tf else None
+    want, _ = quad(power, 0.0, tf, points=points, epsabs=0.0, epsrel=1e-12, limit=200)
+    got = float(snubbed_turn_off(v, current, tf, cn))
+    assert got == pytest.approx(want, rel=1e-9)
+    if current < 2 * cn * v / tf:
+        assert got == pytest.approx(current ** 2 * tf ** 2 / (24 * cn), rel=1e-12)
+    if current > 100 * 2 * cn * v / tf:
+        assert got == pytest.approx(0.5 * v * current * tf, rel=0.2)
+    assert float(snubbed_turn_off(v, current, tf, 0.0)) == pytest.approx(0.5 * v * current * tf)
