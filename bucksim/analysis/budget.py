@@ -23,7 +23,9 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.model.parts import Mosfet
+from bucksim.model.stage import node_capacitance
 
 
 @dataclass(frozen=True)
@@ -194,7 +196,7 @@ def estimate(scenario) -> LossBudget:
           at low current: :func:`bucksim.analysis.edges.snubbed_turn_off`)
         - ``switching.coss``: the node's charge moved by closing switches,
           ``0.5 Cn ((Vin + Vf)^2 + Vf^2) fs`` in CCM with dead times (see
-          :func:`_node_charge`; ``Cn`` from :func:`node_capacitance`)
+          :func:`_node_charge`; ``Cn`` from :func:`bucksim.model.stage.node_capacitance`)
         - ``switching.recovery``: ``Qrr Vin fs`` when a diode carries current
           at high-side turn-on
         - ``switching.gate``: ``(Qg_hs Vg_hs + Qg_ls Vg_ls) fs``
@@ -281,7 +283,6 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
     # the node is at ground when the high side turns on unless a negative
     # current has already carried it to Vin during the rising dead time
     hard_on = vl > 0 or (sync and tr == 0)
-    from bucksim.analysis.edges import snubbed_turn_off
     e_off = float(snubbed_turn_off(vin, pk, hs.fall_time, node_capacitance(scenario)))
     overlap = (0.5 * vin * max(vl, 0.0) * hs.rise_time + e_off) * fs
     items = [BudgetItem("switching.overlap", "high_side", "switching", overlap,
@@ -300,13 +301,6 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
     items.append(BudgetItem("switching.gate", "gate drive", "switching", gate * fs,
                             "(Qg_hs Vg_hs + Qg_ls Vg_ls) fs", CP))
     return items
-
-
-def node_capacitance(scenario) -> float:
-    """The switch node's capacitance [F]: high-side Coss plus the low-side MOSFET's
-    Coss or the freewheel diode's junction capacitance ``cj``."""
-    ls = scenario.low_side
-    return scenario.high_side.coss + (ls.coss if isinstance(ls, Mosfet) else ls.cj)
 
 
 def _node_charge(scenario, op, hard_on: bool) -> tuple[float, str]:

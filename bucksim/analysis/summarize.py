@@ -1,10 +1,10 @@
 """Summary metrics from stored waveforms, by exact per-segment integration.
 
 Every metric is a linear or quadratic functional of the augmented state
-``z = [iL, vC, 1]``, so it is a sum over segments of the exact moments
-``int z dt`` and ``int z z^T dt`` (:mod:`bucksim.analysis.moments`: block
-exponentials after Van Loan [1]_, taken about each system's equilibrium so
-that rounding is relative to each moment's own size). RMS values, losses,
+``z = [iL, vC, 1]`` (``[iL, vC, vn, 1]`` with node capacitance), so it is a
+sum over segments of the exact moments ``int z dt`` and ``int z z^T dt``
+(:mod:`bucksim.analysis.moments`: block exponentials after Van Loan [1]_,
+taken about each segment's start state). RMS values, losses,
 powers and the energy balance are therefore exact to rounding. Extrema are
 located on the analytic solution (zeros of the derivative).
 
@@ -128,7 +128,7 @@ def _window(run, cycles):
 class WindowIntegrals:
     """Exact integrals of signals and their products over the window's pieces.
 
-    Every power signal lives on ``[iL, vC, 1]``, a block the controller states
+    Every power signal lives on the plant block ``[iL, vC, (vn,) 1]``, a block the controller states
     of an analog loop do not feed within a segment: that block alone is
     integrated, one second-moment matrix per system summed over its pieces.
     """
@@ -194,8 +194,8 @@ def _conduction(stage, ig, width):
 
 def _switching(run, devices, t_start, t_stop):
     """Switching energies booked to the two switches: the formula kinds (drawn from
-    the supply, dissipated in the switch) and, with node capacitance, the node's
-    charge transfers (``coss``, from :func:`~bucksim.analysis.edges.node_transfers`).
+    the supply, dissipated in the switch) and the node's charge transfers (``coss``,
+    from :func:`~bucksim.analysis.edges.node_transfers`; none without node capacitance).
     Returns the formula kinds' total [J] and the transfers."""
     width = t_stop - t_start
     sw = switching_energy(run, t_start, t_stop)
@@ -205,9 +205,8 @@ def _switching(run, devices, t_start, t_stop):
         parts = sw[name]
         energy = sum(parts.values())
         total += energy
-        if run.stage.node:
-            parts["coss"] = node[name]
-            energy += node[name]
+        parts["coss"] = node[name]      # 0 without node capacitance
+        energy += node[name]
         devices[name]["switching_loss"] = energy / width
         devices[name]["switching"] = {kind: e / width for kind, e in parts.items()}
     return total, node

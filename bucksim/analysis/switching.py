@@ -25,10 +25,10 @@ low side turns on             gate ``Qg_ls Vg_ls`` (always);
 
 The recovered charge ``Q`` is a fixed ``qrr`` per forced recovery, or with a
 lifetime ``tau`` the charge-control model's stored charge at that instant
-(:mod:`bucksim.analysis.recovery`). Without node capacitance the node jumps
-and the ``coss`` kind is the formula ``0.5 (Coss_hs + Coss_ls) V^2`` per hard
-charge (``V = Vin``; ``Vin - vo`` from idle; ``vo^2`` for a low-side turn-on
-from idle), as before.
+(:mod:`bucksim.analysis.recovery`). The ``coss`` kind is never a formula: it
+is the node's charge from the circuit (:mod:`bucksim.analysis.summarize` fills
+it from :func:`~bucksim.analysis.edges.node_transfers`), zero without node
+capacitance.
 
 Energies are booked to the MOSFET that turns on or off, where they are
 dissipated (reverse-recovery energy included: the recovering diode's charge
@@ -76,7 +76,6 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
     seg = run.segments
     hs, ls = sc.high_side, sc.low_side
     ls_fet = isinstance(ls, Mosfet)
-    c_node = hs.coss + (ls.coss if ls_fet else 0.0)
 
     k = np.nonzero((seg.t0 >= t_start) & (seg.t0 < t_stop))[0]
     prev = seg.conduction[np.maximum(k - 1, 0)].copy()
@@ -89,19 +88,14 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
     z = np.column_stack([seg.x0[k], np.ones(k.shape[0])])
     systems = seg.system[k]
     vin = np.einsum("ij,ij->i", run.signal_table("vin")[systems], z)
-    vo = np.einsum("ij,ij->i", run.signal_table("vo")[systems], z)
 
     out = {"high_side": _zeros(), "low_side": _zeros(), "events": {}}
     h, lo = out["high_side"], out["low_side"]
 
     hs_on = cur == HIGH
     hard_on = hs_on & np.isin(prev, (LOW_DIODE, LOW, IDLE, OPEN))
-    # with node capacitance the node's charge is circuit (analysis.edges), not a formula
-    formula_coss = 0.0 if run.stage.node else 1.0
     h["gate"] += hs.qg * hs.gate_voltage * np.count_nonzero(hs_on)
     h["overlap"] += np.sum(0.5 * vin[hard_on] * np.maximum(i[hard_on], 0.0)) * hs.rise_time
-    swing = np.where(prev == IDLE, vin - vo, vin)
-    h["coss"] += formula_coss * 0.5 * c_node * np.sum(swing[hard_on] ** 2)
     recover = hs_on & (prev == LOW_DIODE)
     rec = recovered_charges(run, t_start, t_stop)
     h["recovery"] += float(np.sum(rec["low_side"]["charges"] * rec["low_side"]["vin"]))
@@ -118,10 +112,7 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
         lo["gate"] += ls.qg * ls.gate_voltage * n_ls_on
         hard = ls_on & ((prev == HIGH_DIODE) | ((prev == HIGH) & (i < 0)))
         lo["overlap"] += np.sum(0.5 * vin[hard] * np.abs(i[hard])) * ls.rise_time
-        lo["coss"] += formula_coss * 0.5 * c_node * np.sum(vin[hard] ** 2)
         lo["recovery"] += float(np.sum(rec["high_side"]["charges"] * rec["high_side"]["vin"]))
-        from_idle = ls_on & (prev == IDLE)
-        lo["coss"] += formula_coss * 0.5 * c_node * np.sum(vo[from_idle] ** 2)
         out["events"]["low_side_hard_on"] = int(np.count_nonzero(hard))
     out["events"].update({
         "high_side_on": int(np.count_nonzero(hs_on)),

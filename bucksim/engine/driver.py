@@ -22,7 +22,12 @@ from bucksim.engine.records import (
     segment_buffers,
 )
 from bucksim.engine.status import STATUS_FULL, STATUS_OK, run_message
-from bucksim.engine.tables import TransitionTable, build_table, phase_exponentials
+from bucksim.engine.tables import (
+    TransitionTable,
+    build_table,
+    phase_exponentials,
+    system_guards,
+)
 
 __all__ = ["EngineResult", "integrate", "build_table", "TransitionTable", "duty_schedule"]
 
@@ -279,7 +284,7 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
     else:
         Vsw = Cls = Chs = np.zeros((1, m))
         open_coef = np.ones((1, 8))
-    return StageTables(Ms, table.exponentials, table.steps, system_guards(Ms, table.guard),
+    return StageTables(Ms, table.exponentials, table.steps, system_guards(table),
                        float(table.taylor_gap),
                        np.array([lev.time for lev in stage.levels], dtype=float), bnd,
                        current_row_norms(Ms, bnd), third_norms(Ms, bnd, e_il.reshape(1, m)),
@@ -287,14 +292,6 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
                        np.ascontiguousarray(Cls), np.ascontiguousarray(Chs),
                        row_norms(Ms, bnd, Cls), third_norms(Ms, bnd, Cls),
                        row_norms(Ms, bnd, Chs), third_norms(Ms, bnd, Chs), open_coef)
-
-
-def system_guards(Ms: np.ndarray, guard: float) -> np.ndarray:
-    """Per system: a quarter of its fastest time constant, ``0.25 / max|eig(M_s)|`` [s]
-    (never below the table's ``guard``, the same quantity for the fastest system)."""
-    rho = np.array([float(np.max(np.abs(np.linalg.eigvals(M)))) for M in Ms])
-    out = np.where(rho > 0, 0.25 / np.where(rho > 0, rho, 1.0), 1e300)
-    return np.ascontiguousarray(np.maximum(np.minimum(out, 1e300), guard), dtype=float)
 
 
 def phase_program(scenario, P, nominal, t_end: float) -> PhaseProgram:

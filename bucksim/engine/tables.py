@@ -21,7 +21,7 @@ References
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.linalg import expm
@@ -62,6 +62,14 @@ class TransitionTable:
     steps: np.ndarray
     guard: float
     taylor_gap: float = 0.0
+    #: Per system: a quarter of its own fastest time constant [s] (:func:`system_guards`);
+    #: derived from ``matrices`` and ``guard``, so not stored with a run.
+    guards: np.ndarray | None = field(default=None, compare=False, repr=False)
+
+    def __post_init__(self):
+        if self.guards is None:   # a table read back from a file: derive them again
+            object.__setattr__(self, "guards",
+                               _guards_from(_spectral_radii(self.matrices), self.guard))
 
 
 def build_table(matrices: np.ndarray, period: float, depth: int = TABLE_DEPTH) -> TransitionTable:
@@ -80,14 +88,31 @@ def build_table(matrices: np.ndarray, period: float, depth: int = TABLE_DEPTH) -
         levels = min(depth, max(need, 1))
     steps = period * 2.0 ** -np.arange(levels, dtype=float)
     exps = np.empty((n_sys, levels, m, m))
-    rho = 0.0
+    rho = _spectral_radii(matrices)
     for s in range(n_sys):
         for k, hk in enumerate(steps):
             exps[s, k] = expm(matrices[s] * hk)
-        rho = max(rho, float(np.max(np.abs(np.linalg.eigvals(matrices[s])))))
     _exact_constant_row(exps)
-    guard = 0.25 / rho if rho > 0 else np.inf
-    return TransitionTable(matrices, exps, steps, float(min(guard, 1e300)), float(steps[-1]))
+    top = float(np.max(rho)) if n_sys else 0.0
+    guard = float(min(0.25 / top if top > 0 else np.inf, 1e300))
+    return TransitionTable(matrices, exps, steps, guard, float(steps[-1]),
+                           _guards_from(rho, guard))
+
+
+def _spectral_radii(matrices: np.ndarray) -> np.ndarray:
+    return np.array([float(np.max(np.abs(np.linalg.eigvals(M)))) for M in matrices])
+
+
+def _guards_from(rho: np.ndarray, guard: float) -> np.ndarray:
+    out = np.where(rho > 0, 0.25 / np.where(rho > 0, rho, 1.0), 1e300)
+    return np.ascontiguousarray(np.maximum(np.minimum(out, 1e300), guard), dtype=float)
+
+
+def system_guards(table: TransitionTable) -> np.ndarray:
+    """Per system: a quarter of its fastest time constant, ``0.25 / max|eig(M_s)|`` [s]
+    (never below the table's ``guard``, the same quantity for the fastest system), so
+    that a fast node ring does not shorten the searches of the other systems."""
+    return table.guards
 
 
 def phase_exponentials(matrices: np.ndarray, durations) -> np.ndarray:

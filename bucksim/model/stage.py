@@ -144,6 +144,13 @@ def zero_current_states(strategy: str) -> frozenset[int]:
     return frozenset((LOW_DIODE, HIGH_DIODE))
 
 
+def node_capacitance(scenario: Scenario) -> float:
+    """The switch node's capacitance [F]: the high side's ``coss`` plus the low-side
+    MOSFET's ``coss`` or the freewheel diode's ``cj``. Above 0 the node is a state."""
+    ls = scenario.low_side
+    return scenario.high_side.coss + (ls.coss if isinstance(ls, Mosfet) else ls.cj)
+
+
 def clamp_current(il, conduction, strategy: str) -> np.ndarray:
     """``iL`` [A] with the sign its conduction state guarantees.
 
@@ -201,7 +208,7 @@ class Stage:
             k = self.loop.order
         self.n_controller = k
         hs, ls = scenario.high_side, scenario.low_side
-        self.cn = hs.coss + (ls.coss if isinstance(ls, Mosfet) else ls.cj)
+        self.cn = node_capacitance(scenario)
         #: the node is a state (index 2) when it has capacitance
         self.node = self.cn > 0.0
         self.i_node = N_STATES if self.node else -1

@@ -33,7 +33,15 @@ import numpy as np
 from scipy.linalg import expm
 
 from bucksim.engine.driver import build_table, integrate, phase_durations
-from bucksim.model.stage import IDLE, Stage, zero_current_states
+from bucksim.model.stage import (
+    HIGH_DIODE,
+    IDLE,
+    LOW_DIODE,
+    OPEN,
+    Stage,
+    node_capacitance,
+    zero_current_states,
+)
 from bucksim.steady.newton import shoot
 from bucksim.steady.result import SteadyState, check_settings, periodic_scenario
 
@@ -101,9 +109,6 @@ def jump_matrix(stage, s, cond, nxt, at_edge, evented, x_next, s_next):
     ``S = R + (f^+ - R f^-) g^T / (g^T f^-)``, with the vector fields ``f^-``
     of the ending system and ``f^+`` of the next at the event state.
     """
-    from bucksim.model.stage import HIGH_DIODE as HD
-    from bucksim.model.stage import LOW_DIODE as LD
-    from bucksim.model.stage import OPEN
     n = stage.n
     R = None
     if stage.node and cond not in (OPEN, IDLE):
@@ -115,8 +120,8 @@ def jump_matrix(stage, s, cond, nxt, at_edge, evented, x_next, s_next):
         if cond in evented and nxt in (IDLE, OPEN):
             g = np.zeros(n)
             g[0] = 1.0
-        elif cond == OPEN and nxt in (LD, HD):
-            g = stage.clamp_rows(level)[0 if nxt == LD else 1][:n]
+        elif cond == OPEN and nxt in (LOW_DIODE, HIGH_DIODE):
+            g = stage.clamp_rows(level)[0 if nxt == LOW_DIODE else 1][:n]
     if g is None:
         return R
     Ms = stage.matrices
@@ -170,9 +175,7 @@ def initial_guess(scenario) -> np.ndarray:
 def _with_node(scenario, x, vn: float = 0.0):
     """``[iL, vC]`` with the node state ``vn`` [V] appended when the node has
     capacitance (its value at a period's start only sets the first edge's jump)."""
-    hs, ls = scenario.high_side, scenario.low_side
-    cn = hs.coss + getattr(ls, "coss", 0.0) + getattr(ls, "cj", 0.0)
-    return np.append(x, vn) if cn > 0 else x
+    return np.append(x, vn) if node_capacitance(scenario) > 0 else x
 
 
 def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1e-12,
