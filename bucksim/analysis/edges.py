@@ -24,6 +24,12 @@ segment in the state ``vn`` (the cycle loop keeps it so), so a segment's
 ``x0[vn]`` is the node voltage just before it, and ``v_b`` at its end is the
 next segment's ``x0[vn]``.
 
+With a voltage-dependent capacitance (a ``coss`` table,
+:mod:`bucksim.model.capacitance`) the same work-less-stored-energy reads
+``E = integral_{v_a}^{v_b} (V_p - v) Cn(v) dv``, computed band by band: the
+low side's ``coss`` charged from 0 to ``Vin`` costs ``Qoss Vin - Eoss``, the
+high side's own discharge its ``Eoss`` (common practice).
+
 References
 ----------
 .. [1] R. W. Erickson and D. Maksimovic, *Fundamentals of Power Electronics*,
@@ -98,15 +104,20 @@ def node_transfers(run, t_start: float, t_stop: float | None = None) -> dict:
     if np.any(~full):
         z_b = run.augmented_at(seg.t0[idx[~full]] + tau_b[~full])[0]
         v_to[~full] = np.einsum("ij,ij->i", rows[~full], z_b)
-    vin = np.array([lev.vin for lev in stage.levels])[seg.system[idx] // (
-        N_CONDUCTION * stage.n_modes)]
+    level = seg.system[idx] // (N_CONDUCTION * stage.n_modes * stage.n_bands)
+    vin = np.array([lev.vin for lev in stage.levels])[level]
     high = np.isin(cond, (HIGH, HIGH_DIODE))
     v_path = np.where(high, vin, 0.0)
-    cn = stage.cn
-    dv = v_to - v_from
-    loss = v_path * cn * dv - 0.5 * cn * (v_to ** 2 - v_from ** 2)
+    # the charge moved through the closing branch, and the energy it leaves there:
+    # integral (V_path - v) Cn(v) dv (Cn (v_b - v_a)(V_path - (v_a + v_b)/2) when linear)
+    loss = np.zeros(len(idx))
+    charge = np.zeros(len(idx))
+    for lv, curve in enumerate(stage.curves):
+        k = level == lv
+        charge[k] = curve.charge(v_from[k], v_to[k])
+        loss[k] = curve.transfer_loss(v_from[k], v_to[k], v_path[k])
     out.update(index=idx, t=seg.t0[idx] + tau_a, conduction=cond, v_from=v_from, v_to=v_to,
-               loss=loss, supply=np.where(high, vin * cn * dv, 0.0),
+               loss=loss, supply=np.where(high, vin * charge, 0.0),
                high_side=float(np.sum(loss[high])), low_side=float(np.sum(loss[~high])))
     return out
 

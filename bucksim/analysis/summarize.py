@@ -30,12 +30,14 @@ from bucksim.analysis.summary import (
     OutputVoltage,
     Power,
     Summary,
+    SwitchNode,
     Transient,
     Window,
 )
 from bucksim.analysis.switching import switching_energy
 from bucksim.analysis.transients import transients as event_metrics
 from bucksim.analysis.windows import window_pieces
+from bucksim.model.capacitance import charge, energy
 from bucksim.model.stage import IDLE, OPEN, current_reverses, zero_current_states
 
 
@@ -81,8 +83,22 @@ def summarize(run, cycles: int | None = None) -> Summary:
         efficiency=p_out / p_in if p_in > 0 else 0.0,
         energy_balance_error=float(balance),
         transients=tuple(Transient(**e) for e in event_metrics(run)),
+        switch_node=_switch_node(run.stage, t_stop),
         strategy=run.scenario.switching.strategy,
     )
+
+
+def _switch_node(stage, t: float) -> SwitchNode | None:
+    """Qoss and Eoss of each device at the input voltage in force at ``t``."""
+    if not stage.node:
+        return None
+    curve = stage.curves[stage.level_at(t)]
+    v = curve.vin
+    return SwitchNode(input_voltage=v, capacitance=curve.equivalent(),
+                      high_side_qoss=float(charge(curve.high, v)),
+                      high_side_eoss=float(energy(curve.high, v)),
+                      low_side_qoss=float(charge(curve.low, v)),
+                      low_side_eoss=float(energy(curve.low, v)))
 
 
 def _mode(run, idx, lengths):
@@ -229,8 +245,8 @@ def _balance_error(run, t_start, e_in, e_out, loss):
     stage = run.stage
     x_a = run.at([t_start])[0]
     x_b = run.x_end
-    e_a = stage.stored_energy(x_a, node_voltage_at(run, t_start))
-    e_b = stage.stored_energy(x_b, node_voltage_at(run, run.t_end))
+    e_a = stage.stored_energy(x_a, node_voltage_at(run, t_start), stage.level_at(t_start))
+    e_b = stage.stored_energy(x_b, node_voltage_at(run, run.t_end), stage.level_at(run.t_end))
     d_stored = e_b - e_a
     residual = e_in - e_out - loss - d_stored
     # the stored energy sets the rounding floor: an idle, unloaded stage moves

@@ -2,7 +2,7 @@
 
 Every part of a summary is a frozen dataclass (:class:`Window`,
 :class:`OutputVoltage`, :class:`InductorCurrent`, :class:`Device`,
-:class:`Power`, :class:`Transient`); read them as attributes
+:class:`Power`, :class:`Transient`, :class:`SwitchNode`); read them as attributes
 (``summary.power.loss``). :meth:`Summary.to_dict` gives the plain, JSON-ready
 nested dict that ``bucksim run --json`` prints (keys in the order of the
 summary reference, docs/summary-reference.md), and :meth:`Summary.from_dict`
@@ -149,6 +149,24 @@ class Power:
 
 
 @dataclass(frozen=True)
+class SwitchNode:
+    """The switch node's capacitance at the input voltage (present with node capacitance).
+
+    ``capacitance`` [F] is charge-equivalent over ``0 .. input_voltage`` [V]; each
+    device's ``qoss`` [C] and ``eoss`` [J] are its output charge and stored energy
+    at ``Vds = input_voltage`` (the freewheel diode's from its ``cj``), from its
+    ``coss`` (a number or a table, :mod:`bucksim.model.capacitance`).
+    """
+
+    input_voltage: float
+    capacitance: float
+    high_side_qoss: float
+    high_side_eoss: float
+    low_side_qoss: float
+    low_side_eoss: float
+
+
+@dataclass(frozen=True)
 class Transient:
     """One event (start-up, load step, supply step) and the output's response.
 
@@ -197,6 +215,8 @@ class Summary:
     transients : tuple of Transient
     zero_current_in_dead_time : bool  forced PWM: the current reached zero inside a
         dead time (a body diode stopped conducting); the mode stays ``"ccm"``
+    switch_node : SwitchNode or None  the node's capacitance, Qoss and Eoss at the
+        input voltage (None without node capacitance)
     strategy : str or None        the stage's switching strategy (names the
         asynchronous low side a freewheel diode in :meth:`loss_items`); not
         part of :meth:`to_dict`
@@ -213,6 +233,7 @@ class Summary:
     energy_balance_error: float
     transients: tuple = ()
     zero_current_in_dead_time: bool = False
+    switch_node: SwitchNode | None = field(default=None, metadata={"optional": True})
     strategy: str | None = field(default=None, compare=False, metadata={"internal": True})
 
     # -- plain views ------------------------------------------------------------
@@ -232,6 +253,8 @@ class Summary:
                    energy_balance_error=data["energy_balance_error"],
                    transients=tuple(Transient(**e) for e in data.get("transients", ())),
                    zero_current_in_dead_time=data.get("zero_current_in_dead_time", False),
+                   switch_node=(SwitchNode(**data["switch_node"]) if data.get("switch_node")
+                                else None),
                    strategy=strategy)
 
     def with_transients(self, events) -> Summary:
@@ -314,6 +337,14 @@ class Summary:
                          f"{_mean_text(v.mean, v.rms, 'A'):>12}"
                          f"{format_si(v.conduction_loss, 'W'):>13}"
                          f"{format_si(v.switching_loss, 'W'):>13}")
+        if self.switch_node is not None:
+            sn = self.switch_node
+            lines += [f"switch node   Cn {format_si(sn.capacitance, 'F')} (charge-equivalent,"
+                      f" 0 .. {format_si(sn.input_voltage, 'V')})",
+                      f"              high side Qoss {format_si(sn.high_side_qoss, 'C')}, Eoss "
+                      f"{format_si(sn.high_side_eoss, 'J')}   low side Qoss "
+                      f"{format_si(sn.low_side_qoss, 'C')}, Eoss "
+                      f"{format_si(sn.low_side_eoss, 'J')}"]
         inductor = self.devices.get("inductor")
         if inductor is not None and inductor.core_loss is not None:
             lines.append(f"{'inductor core (iGSE)':<22}{'':>24}"

@@ -48,7 +48,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import clear_between, growth, open_node_clear
+from bucksim.engine.bounds import clear_between, growth
 from bucksim.engine.kernels import (
     ASYNC,
     CONTROL_ANALOG,
@@ -71,7 +71,8 @@ from bucksim.engine.kernels import (
     crossing_value,
     find_zero,
 )
-from bucksim.engine.loop_parts import _compensate, _dot, _needs_search, newton_crossing
+from bucksim.engine.loop_parts import _compensate, _dot, _needs_search
+from bucksim.engine.open_node import BAND_DOWN, BAND_UP, band_of, open_node_event, step_band
 from bucksim.engine.status import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
 
 __all__ = ["CONTROL_OPEN", "CONTROL_DIGITAL", "CONTROL_ANALOG", "N_PHASES", "run_cycles"]
@@ -108,6 +109,10 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     level_times, bnd, kil, k3il, e_il = tab.level_times, tab.bnd, tab.kil, tab.k3il, tab.e_il
     i_vn, Vsw, Cls, Chs = tab.i_vn, tab.Vsw, tab.Cls, tab.Chs
     kls, k3ls, khs, k3hs, open_coef = tab.kls, tab.k3ls, tab.khs, tab.k3hs, tab.open_coef
+    edges, e_vn, kvn, k3vn = tab.band_edges, tab.e_vn, tab.kvn, tab.k3vn
+    n_bands = edges.shape[1] - 1
+    band = 0
+    band_known = False
     node = i_vn >= 0
     T, strategy, td_fall, td_rise = prog.T, prog.strategy, prog.td_fall, prog.td_rise
     nominal, P, t_end = prog.nominal, prog.P, prog.t_end
@@ -130,6 +135,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     work = np.empty(m)
     zs = np.empty(m)
     zs2 = np.empty(m)
+    zs3 = np.empty(m)
     zst = np.empty(m)
     zh = np.empty(m)
     held = 0
@@ -256,10 +262,14 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     # the hold rule, with the release band: a hold goes on until
                     # the error is e_band past zero (e.g. after a load step)
                     e_now = _dot(Ce[level], z)
-                    band = e_band if held == 1 else 0.0
-                    held = 1 if ((z[i_w] >= w_hi and e_now > -band)
-                                 or (z[i_w] <= w_lo and e_now < band)) else 0
-                s = (level * n_modes + held) * N_CONDUCTION + cond
+                    release = e_band if held == 1 else 0.0
+                    held = 1 if ((z[i_w] >= w_hi and e_now > -release)
+                                 or (z[i_w] <= w_lo and e_now < release)) else 0
+                if cond == OPEN and not band_known:
+                    band = band_of(edges[level], z[i_vn], z[0])
+                band_known = False
+                s = ((level * n_modes + held) * n_bands + (band if cond == OPEN else 0)
+                     ) * N_CONDUCTION + cond
                 gs = guards[s]    # this system's longest search step
                 if nseg >= cap:
                     return nseg, level, STATUS_FULL, t
@@ -320,42 +330,15 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                        trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly,
                                        bnd, k3il[0, s])
                 elif cond == OPEN:
-                    # the open node: the first of the two clamps ends the segment
-                    for i in range(m):
-                        zs2[i] = zs[i]
-                    if d > gs and (search_ls or search_hs):
-                        # a ring of many lobes: the energy bound clears it at once
-                        lo_ok, hi_ok = open_node_clear(open_coef[level], zs, i_vn, d,
-                                                       Cls[level], Chs[level])
-                        search_ls = search_ls and not lo_ok
-                        search_hs = search_hs and not hi_ok
-                    if search_ls and _needs_search(Ms, s, Cls[level], kls[level, s], zs, z,
-                                                   t_stop, d, gs, 1.0, 0.0, 0.0, t, bnd):
-                        # a slew at high current: Newton, proven; else the general search
-                        u = newton_crossing(Ms, E, h, s, zs, t, d, Cls[level], kls[level, s],
-                                            bnd, tmp, work)
-                        if u > 0.0:
-                            tz = t + u
-                            for i in range(m):
-                                zs[i] = work[i]
-                        else:
-                            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, 1.0, gs, tmp,
-                                           trial, work, Cls[level], 0.0, 0.0, t, False,
-                                           taylor_gap, poly, bnd, k3ls[level, s])
-                    clamp = LOW_DIODE if tz >= 0.0 else OPEN
-                    if search_hs:
-                        zb = zs if tz >= 0.0 else z
-                        t_lim = tz if tz >= 0.0 else t_stop
-                        if _needs_search(Ms, s, Chs[level], khs[level, s], zs2, zb, t_lim,
-                                         t_lim - t, gs, 1.0, 0.0, 0.0, t, bnd):
-                            t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, 1.0, gs, tmp,
-                                           trial, work, Chs[level], 0.0, 0.0, t, False,
-                                           taylor_gap, poly, bnd, k3hs[level, s])
-                            if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
-                                tz = t2
-                                clamp = HIGH_DIODE
-                                for i in range(m):
-                                    zs[i] = zs2[i]
+                    # the open node: a clamp or its band's edge ends the segment
+                    tz, node_event = open_node_event(
+                        Ms, E, h, s, zs, z, t, t_stop, d, gs, search_ls, search_hs,
+                        edges[level, band], edges[level, band + 1], i_vn,
+                        open_coef[level * n_bands + band], Cls[level], Chs[level],
+                        kls[level, s], k3ls[level, s], khs[level, s], k3hs[level, s], e_vn,
+                        kvn[0, s], k3vn[0, s], bnd, taylor_gap, tmp, trial, work, poly, zs2,
+                        zs3)
+                    clamp = node_event
                 elif ph_cmp or np.isfinite(ph_lim):
                     for i in range(m):
                         zs2[i] = zs[i]
@@ -465,6 +448,12 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     nseg += 1
                     t = tz
                     if cond == OPEN:
+                        if clamp == BAND_DOWN or clamp == BAND_UP:
+                            # the next band's system from here, the node on the edge
+                            z[i_vn] = edges[level, band if clamp == BAND_DOWN else band + 1]
+                            band = step_band(edges[level], band, clamp)
+                            band_known = True
+                            continue
                         # a clamp: its diode conducts (unless the node only touched it)
                         if (clamp == LOW_DIODE and z[0] > 0.0) or (
                                 clamp == HIGH_DIODE and z[0] < 0.0):

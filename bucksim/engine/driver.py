@@ -266,6 +266,7 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
     bnd = system_bounds(Ms)
     e_il = np.zeros(m)
     e_il[0] = 1.0
+    e_vn = np.zeros(m)
     n_levels = len(stage.levels)
     if stage.node:
         from bucksim.model.stage import N_CONDUCTION
@@ -276,14 +277,17 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
         Cls = np.array([c[0] for c in clamps])
         Chs = np.array([c[1] for c in clamps])
         coef = []
-        for lev in stage.levels:
+        for lev, curve in zip(stage.levels, stage.curves, strict=True):
             a = 1.0 / (1.0 + stage.esr * lev.conductance)
-            coef.append([stage.L, stage.cn, stage.C, a, stage.esr * a,
-                         -stage.esr * lev.current * a, lev.conductance, lev.current])
+            coef += [[stage.L, cn, stage.C, a, stage.esr * a, -stage.esr * lev.current * a,
+                      lev.conductance, lev.current] for cn in curve.caps]
         open_coef = np.array(coef)
+        edges = np.array([curve.edges for curve in stage.curves])
+        e_vn[stage.i_node] = 1.0
     else:
         Vsw = Cls = Chs = np.zeros((1, m))
-        open_coef = np.ones((1, 8))
+        open_coef = np.ones((n_levels, 8))
+        edges = np.tile([-np.inf, np.inf], (n_levels, 1))
     return StageTables(Ms, table.exponentials, table.steps, system_guards(table),
                        float(table.taylor_gap),
                        np.array([lev.time for lev in stage.levels], dtype=float), bnd,
@@ -291,7 +295,10 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
                        e_il, int(stage.i_node), np.ascontiguousarray(Vsw),
                        np.ascontiguousarray(Cls), np.ascontiguousarray(Chs),
                        row_norms(Ms, bnd, Cls), third_norms(Ms, bnd, Cls),
-                       row_norms(Ms, bnd, Chs), third_norms(Ms, bnd, Chs), open_coef)
+                       row_norms(Ms, bnd, Chs), third_norms(Ms, bnd, Chs), open_coef,
+                       np.ascontiguousarray(edges, dtype=float), e_vn,
+                       row_norms(Ms, bnd, e_vn.reshape(1, m)),
+                       third_norms(Ms, bnd, e_vn.reshape(1, m)))
 
 
 def phase_program(scenario, P, nominal, t_end: float) -> PhaseProgram:

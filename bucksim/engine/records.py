@@ -69,9 +69,17 @@ class StageTables(NamedTuple):
     k3ls: np.ndarray
     khs: np.ndarray
     k3hs: np.ndarray
-    #: (n_levels, 8) ``[L, Cn, C, a, b, c0, g, Icc]`` of the open node's energy bound
-    #: (:func:`~bucksim.engine.bounds.open_node_clear`).
+    #: (n_levels * n_bands, 8) ``[L, Cn, C, a, b, c0, g, Icc]`` of the open node's energy
+    #: bound (:func:`~bucksim.engine.bounds.open_node_clear`), per (level, band).
     open_coef: np.ndarray
+    #: (n_levels, n_bands + 1) edges [V] of the node capacitance's bands in ``vn``,
+    #: ``-inf`` first and ``+inf`` last (:class:`~bucksim.model.capacitance.NodeCurve`).
+    band_edges: np.ndarray
+    #: (m,) the node voltage's event row ``e_vn`` (zero without node capacitance), with
+    #: its curvature and third-derivative constants, (1, n_sys).
+    e_vn: np.ndarray
+    kvn: np.ndarray
+    k3vn: np.ndarray
 
 
 class PhaseProgram(NamedTuple):

@@ -89,7 +89,11 @@ def build_table(matrices: np.ndarray, period: float, depth: int = TABLE_DEPTH) -
     steps = period * 2.0 ** -np.arange(levels, dtype=float)
     exps = np.empty((n_sys, levels, m, m))
     rho = _spectral_radii(matrices)
+    first = _first_copies(matrices)
     for s in range(n_sys):
+        if first[s] < s:
+            exps[s] = exps[first[s]]    # a copy (e.g. a conduction state in another band)
+            continue
         for k, hk in enumerate(steps):
             exps[s, k] = expm(matrices[s] * hk)
     _exact_constant_row(exps)
@@ -97,6 +101,13 @@ def build_table(matrices: np.ndarray, period: float, depth: int = TABLE_DEPTH) -
     guard = float(min(0.25 / top if top > 0 else np.inf, 1e300))
     return TransitionTable(matrices, exps, steps, guard, float(steps[-1]),
                            _guards_from(rho, guard))
+
+
+def _first_copies(matrices: np.ndarray) -> np.ndarray:
+    """Per system, the first system with an identical matrix (itself when unique)."""
+    flat = matrices.reshape(matrices.shape[0], -1)
+    _, first, inverse = np.unique(flat, axis=0, return_index=True, return_inverse=True)
+    return first[inverse.ravel()]
 
 
 def _spectral_radii(matrices: np.ndarray) -> np.ndarray:
@@ -119,7 +130,11 @@ def phase_exponentials(matrices: np.ndarray, durations) -> np.ndarray:
     """``expm(M_s d_p)`` for each system and each nominal phase duration ``d_p``."""
     n_sys, m, _ = matrices.shape
     out = np.empty((n_sys, len(durations), m, m))
+    first = _first_copies(matrices)
     for s in range(n_sys):
+        if first[s] < s:
+            out[s] = out[first[s]]
+            continue
         for p, d in enumerate(durations):
             out[s, p] = expm(matrices[s] * d) if d > 0 else np.eye(m)
     _exact_constant_row(out)

@@ -12,6 +12,7 @@ import math
 from dataclasses import dataclass, field
 
 from bucksim.errors import ScenarioError
+from bucksim.model.capacitance import CapacitanceTable, is_positive
 
 STRATEGIES = ("asynchronous", "forced-pwm", "diode-emulation")
 #: Readable name of each strategy, for tables and figures.
@@ -37,6 +38,12 @@ def _non_negative(key, value, unit):
     _finite(key, value, unit)
     if value < 0:
         raise ScenarioError(key, f"must be >= 0 {unit}", value)
+
+
+def _capacitance(key, value):
+    """A number >= 0 [F] or a checked :class:`~bucksim.model.capacitance.CapacitanceTable`."""
+    if not isinstance(value, CapacitanceTable):
+        _non_negative(key, value, "F")
 
 
 def _choice(key, value, choices):
@@ -184,7 +191,7 @@ class Diode:
     vf: float
     r: float = 0.0
     qrr: float = 0.0
-    cj: float = 0.0
+    cj: float | CapacitanceTable = 0.0
     tau: float = 0.0
     qrr_current: float = 0.0
     section: str = field(default="low_side", compare=False, repr=False)
@@ -193,7 +200,7 @@ class Diode:
         _non_negative(f"{self.section}.vf", self.vf, "V")
         _non_negative(f"{self.section}.r", self.r, "ohm")
         _non_negative(f"{self.section}.qrr", self.qrr, "C")
-        _non_negative(f"{self.section}.cj", self.cj, "F")
+        _capacitance(f"{self.section}.cj", self.cj)
         _non_negative(f"{self.section}.tau", self.tau, "s")
         _non_negative(f"{self.section}.qrr_current", self.qrr_current, "A")
         self._check_recovery_keys()
@@ -222,7 +229,8 @@ class Mosfet:
     """MOSFET: channel ``rds_on`` [ohm], body diode, and switching-loss data.
 
     ``rise_time``/``fall_time`` [s] are the drain voltage-current overlap
-    times, ``coss`` [F] the output capacitance, ``qg`` [C] the total gate
+    times, ``coss`` [F] the output capacitance (a number, or a
+    :class:`~bucksim.model.capacitance.CapacitanceTable` against ``Vds``), ``qg`` [C] the total gate
     charge at ``gate_voltage`` [V]. The body diode's ``qrr`` [C] is its
     reverse-recovery charge.
     """
@@ -231,7 +239,7 @@ class Mosfet:
     body_diode: Diode
     rise_time: float = 0.0
     fall_time: float = 0.0
-    coss: float = 0.0
+    coss: float | CapacitanceTable = 0.0
     qg: float = 0.0
     gate_voltage: float = 0.0
     section: str = field(default="high_side", compare=False, repr=False)
@@ -241,8 +249,8 @@ class Mosfet:
         _positive(f"{s}.rds_on", self.rds_on, "ohm")
         _non_negative(f"{s}.rise_time", self.rise_time, "s")
         _non_negative(f"{s}.fall_time", self.fall_time, "s")
-        _non_negative(f"{s}.coss", self.coss, "F")
-        if self.body_diode.cj > 0:
+        _capacitance(f"{s}.coss", self.coss)
+        if is_positive(self.body_diode.cj):
             raise ScenarioError(f"{s}.body_diode.cj", "must be 0: a body diode's junction "
                                 f"capacitance is part of the MOSFET's coss (give it as {s}.coss)",
                                 self.body_diode.cj)

@@ -11,7 +11,7 @@ prefix and the unit (``"2.2 uH"``, ``"500 kHz"``; see :mod:`bucksim.model.units`
     [inductor]          inductance, dcr = 0, core = {k, alpha, beta, volume, turns, area}
     [output_capacitor]  capacitance, esr = 0
     [high_side]         rds_on, body_diode = {vf, r, qrr, tau, qrr_current}, rise_time,
-                        fall_time, coss, qg, gate_voltage (all but vf, rds_on = 0)
+                        fall_time, coss (F, or [[V, F], ...]), qg, gate_voltage (else 0)
     [low_side]          device = "mosfet" (as [high_side]) | "diode" (the diode keys, cj)
     [load]              resistance (absent or inf: none), current = 0,
                         steps = [{time, resistance?, current?}, ...]
@@ -36,6 +36,7 @@ import tomli_w
 
 from bucksim.errors import ScenarioError
 from bucksim.model import parts
+from bucksim.model.capacitance import as_plain, is_positive, read_capacitance
 from bucksim.model.keylines import (
     key_lines,
     line_of,
@@ -249,7 +250,8 @@ def _capacitor(t):
 
 
 def _diode(t):
-    extra = {k: t.quantity(k, u, 0.0) for k, u in (("cj", "F"), ("tau", "s"), ("qrr_current", "A"))}
+    extra = {k: t.quantity(k, u, 0.0) for k, u in (("tau", "s"), ("qrr_current", "A"))}
+    extra["cj"] = read_capacitance(t, "cj")
     return parts.Diode(vf=t.quantity("vf", "V"), r=t.quantity("r", "ohm", 0.0),
                        qrr=t.quantity("qrr", "C", 0.0), section=t.key, **extra)
 
@@ -259,7 +261,7 @@ def _mosfet(t):
     return parts.Mosfet(rds_on=t.quantity("rds_on", "ohm"), body_diode=_diode(body),
                         rise_time=t.quantity("rise_time", "s", 0.0),
                         fall_time=t.quantity("fall_time", "s", 0.0),
-                        coss=t.quantity("coss", "F", 0.0), qg=t.quantity("qg", "C", 0.0),
+                        coss=read_capacitance(t, "coss"), qg=t.quantity("qg", "C", 0.0),
                         gate_voltage=t.quantity("gate_voltage", "V", 0.0), section=t.key)
 
 
@@ -328,13 +330,14 @@ def _drop_none(d):
 
 
 def _diode_dict(d):
-    extra = {k: getattr(d, k) for k in ("cj", "tau", "qrr_current") if getattr(d, k)}
+    extra = {k: as_plain(getattr(d, k)) for k in ("cj", "tau", "qrr_current")
+             if is_positive(getattr(d, k))}
     return {"vf": d.vf, "r": d.r, "qrr": d.qrr, **extra}
 
 
 def _mosfet_dict(m):
     return {"rds_on": m.rds_on, "body_diode": _diode_dict(m.body_diode),
-            "rise_time": m.rise_time, "fall_time": m.fall_time, "coss": m.coss,
+            "rise_time": m.rise_time, "fall_time": m.fall_time, "coss": as_plain(m.coss),
             "qg": m.qg, "gate_voltage": m.gate_voltage}
 
 
@@ -382,9 +385,7 @@ def scenario_to_dict(scenario):
                       "initial_current": r.initial_current,
                       "initial_voltage": r.initial_voltage})
     return {
-        "schema": SCHEMA,
-        "title": s.title,
-        "supply": supply,
+        "schema": SCHEMA, "title": s.title, "supply": supply,
         "switching": {"frequency": s.switching.frequency, "strategy": s.switching.strategy,
                       "dead_time": list(s.switching.dead_time)},
         "inductor": inductor,
@@ -392,9 +393,7 @@ def scenario_to_dict(scenario):
                              "esr": s.output_capacitor.esr},
         "high_side": _mosfet_dict(s.high_side),
         "low_side": low_side,
-        "load": load,
-        "control": control,
-        "run": run,
+        "load": load, "control": control, "run": run,
     }
 
 

@@ -56,14 +56,19 @@ with ``e = H (vref - vo)`` joins the state, and so does the reference ``vref``
 controller's states, so within a segment the plant evolves as in open loop;
 the controller acts only through the switching instants. With an integrator,
 every system has a second copy with the integrator held (anti-windup, see
-:meth:`Stage.integrator_limits`): system id
-``s = (level * n_modes + held) * N_CONDUCTION + conduction``.
+:meth:`Stage.integrator_limits`). A node capacitance given as a table
+(:mod:`bucksim.model.capacitance`) is piecewise constant in ``vn``: the open
+node has one system per band, and the band's edges are events. System id
+``s = ((level * n_modes + held) * n_bands + band) * N_CONDUCTION + conduction``
+(``band = 0`` but for the open node).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from bucksim.errors import ScenarioError
+from bucksim.model.capacitance import NodeCurve
 from bucksim.model.levels import Level, is_analog_loop, operating_levels
 from bucksim.model.parts import STRATEGIES, Diode, Mosfet, Scenario
 
@@ -84,16 +89,12 @@ NODE_STATE = "vn"
 CONTROLLER_UNIT = "V"
 
 #: The inductor current "reverses" when its minimum lies below
-#: ``-REVERSE_CURRENT_THRESHOLD`` times the window's current scale
-#: ``max(|min iL|, |max iL|)``. The one definition for the summary and the
-#: light-load tools. Why 1e-9: a current that the stage holds at zero is
-#: computed to rounding only, and that rounding grows beyond the 1e-16 of one
-#: evaluation: an event instant rounded to the spacing of absolute time leaves
-#: ``|diL/dt| ulp(t)`` (about 1e-16 of the ripple per elapsed period), and a
-#: periodic state from shooting carries the solve's residual, ~1e-12 of the
-#: scale and more in high-Q stages. A reversal of one part in 1e9 of the peak
-#: current returns no charge anyone could measure, so the flag is robust on
-#: both sides.
+#: ``-REVERSE_CURRENT_THRESHOLD max(|min iL|, |max iL|)`` (the one definition for the
+#: summary and the light-load tools). Why 1e-9: a current held at zero is exact to
+#: rounding only, and that grows past 1e-16: an event instant rounded to the spacing
+#: of absolute time leaves ``|diL/dt| ulp(t)``, a shooting solve leaves ~1e-12 of the
+#: scale (more in high-Q stages); one part in 1e9 of the peak returns no charge
+#: anyone could measure, so the flag is robust on both sides.
 REVERSE_CURRENT_THRESHOLD = 1e-9
 
 
@@ -144,11 +145,20 @@ def zero_current_states(strategy: str) -> frozenset[int]:
     return frozenset((LOW_DIODE, HIGH_DIODE))
 
 
-def node_capacitance(scenario: Scenario) -> float:
-    """The switch node's capacitance [F]: the high side's ``coss`` plus the low-side
-    MOSFET's ``coss`` or the freewheel diode's ``cj``. Above 0 the node is a state."""
+def node_curve(scenario: Scenario, vin: float) -> NodeCurve:
+    """The switch node's capacitance against ``vn`` at input voltage ``vin`` [V]:
+    the high side's ``coss`` plus the low-side MOSFET's ``coss`` or the freewheel
+    diode's ``cj`` (:class:`~bucksim.model.capacitance.NodeCurve`)."""
     ls = scenario.low_side
-    return scenario.high_side.coss + (ls.coss if isinstance(ls, Mosfet) else ls.cj)
+    return NodeCurve(scenario.high_side.coss, ls.coss if isinstance(ls, Mosfet) else ls.cj, vin)
+
+
+def node_capacitance(scenario: Scenario) -> float:
+    """The switch node's capacitance [F], charge-equivalent over ``0 .. Vin``
+    (:meth:`~bucksim.model.capacitance.NodeCurve.equivalent`; for linear parts
+    the sum of the high side's ``coss`` and the low side's ``coss`` or ``cj``).
+    Above 0 the node is a state."""
+    return node_curve(scenario, scenario.supply.voltage).equivalent()
 
 
 def clamp_current(il, conduction, strategy: str) -> np.ndarray:
@@ -160,14 +170,8 @@ def clamp_current(il, conduction, strategy: str) -> np.ndarray:
     ``iL >= 0`` in ``LOW_DIODE`` (and ``LOW`` in diode emulation), ``iL <= 0``
     in ``HIGH_DIODE``; other states are left as they are.
 
-    Parameters
-    ----------
-    il : array_like
-        Inductor current [A].
-    conduction : array_like of int
-        Conduction state of each value (broadcast against ``il``).
-    strategy : str
-        ``switching.strategy``.
+    ``il`` [A] and ``conduction`` (each value's state) broadcast; ``strategy``:
+    ``switching.strategy``.
     """
     conduction = np.asarray(conduction)
     from_above = sorted(zero_current_states(strategy) - {HIGH_DIODE})
@@ -178,7 +182,7 @@ def clamp_current(il, conduction, strategy: str) -> np.ndarray:
 class Stage:
     """Linear systems and output maps for every (level, conduction state).
 
-    System id ``s = (level * n_modes + held) * N_CONDUCTION + conduction``
+    System id ``s = ((level * n_modes + held) * n_bands + band) * N_CONDUCTION + conduction``
     (``n_modes = 1`` but for an analog integrator). ``matrices[s]`` is the
     augmented ``M`` (``m x m``, ``m = n + 1``; 3 x 3 without an analog loop).
     :meth:`signal` returns a row vector ``c`` such that a signal equals
@@ -211,6 +215,14 @@ class Stage:
         self.cn = node_capacitance(scenario)
         #: the node is a state (index 2) when it has capacitance
         self.node = self.cn > 0.0
+        #: the node's capacitance against vn per level, piecewise constant in bands
+        self.curves = [node_curve(scenario, lev.vin) for lev in self.levels]
+        self.n_bands = self.curves[0].n_bands if self.node else 1
+        if self.node and any(np.any(c.caps <= 0) for c in self.curves):
+            raise ScenarioError("high_side.coss", "the switch node's capacitance (high-side "
+                                "coss plus low-side coss or cj) must be > 0 at every voltage "
+                                "once it is given anywhere", min(float(np.min(c.caps))
+                                                                for c in self.curves))
         self.i_node = N_STATES if self.node else -1
         #: position of the first controller state (analog loop)
         self.i_ctl = N_STATES + int(self.node)
@@ -236,19 +248,30 @@ class Stage:
             assert isinstance(ls, Diode)
             self.rds_ls = 0.0  # no channel: the LOW state is never entered
             self.vf_ls, self.r_ls = ls.vf, ls.r
-        self.matrices = np.array([self._matrix(lev, k, held) for lev in self.levels
+        self.matrices = np.array([self._matrix(lev, k, held, self._band_cn(i, b))
+                                  for i, lev in enumerate(self.levels)
                                   for held in range(self.n_modes)
+                                  for b in range(self.n_bands)
                                   for k in range(N_CONDUCTION)])
 
+    def _band_cn(self, level: int, band: int) -> float:
+        return float(self.curves[level].caps[band]) if self.node else 0.0
+
     # -- maps ----------------------------------------------------------------
-    def system_id(self, level: int, conduction: int, held: int = 0) -> int:
-        """System id of a level, a conduction state and (analog loop) the integrator hold."""
-        return (level * self.n_modes + held) * N_CONDUCTION + conduction
+    def system_id(self, level: int, conduction: int, held: int = 0, band: int = 0) -> int:
+        """System id of a level, a conduction state, (analog loop) the integrator hold
+        and (open node, nonlinear capacitance) the node's band."""
+        return ((level * self.n_modes + held) * self.n_bands + band) * N_CONDUCTION + conduction
 
     def split_id(self, system: int) -> tuple[int, int]:
         """Return ``(level, conduction)`` of a system id."""
         group, conduction = divmod(int(system), N_CONDUCTION)
-        return group // self.n_modes, conduction
+        return group // (self.n_bands * self.n_modes), conduction
+
+    def level_at(self, t: float) -> int:
+        """Index of the operating level in force at time ``t`` [s]."""
+        times = [lev.time for lev in self.levels]
+        return max(int(np.searchsorted(times, t, side="right")) - 1, 0)
 
     @property
     def integrator_index(self) -> int:
@@ -347,7 +370,7 @@ class Stage:
             return np.array([-(self.rs + self.r_hs), 0.0, lev.vin + self.vf_hs])
         return vo.copy()  # idle: inductor voltage is zero
 
-    def _matrix(self, lev: Level, k: int, held: int = 0) -> np.ndarray:
+    def _matrix(self, lev: Level, k: int, held: int = 0, cn: float = 0.0) -> np.ndarray:
         vo = self._vo(lev)
         io = lev.conductance * vo + np.array([0.0, 0.0, lev.current])
         ic = np.array([1.0, 0.0, 0.0]) - io
@@ -360,7 +383,7 @@ class Stage:
             di = (-vo - np.array([self.dcr, 0.0, 0.0])) / self.L
             di_vn = 1.0 / self.L
             if self.node:
-                dvn_row = np.array([-1.0 / self.cn, 0.0, 0.0])
+                dvn_row = np.array([-1.0 / cn, 0.0, 0.0])
         else:
             di = (self._vsw(lev, k, vo) - vo - np.array([self.dcr, 0.0, 0.0])) / self.L
         dv = ic / self.C
@@ -462,10 +485,13 @@ class Stage:
                     ("low_side_body_diode", self.r_ls, self.vf_ls)]
         return out
 
-    def stored_energy(self, x: np.ndarray, vsw: float = 0.0) -> float:
+    def stored_energy(self, x: np.ndarray, vsw: float = 0.0, level: int = 0) -> float:
         """Energy in L, C and the node capacitance [J] for state ``x = [iL, vC, ...]``
-        and switch-node voltage ``vsw`` [V]."""
-        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2 + 0.5 * self.cn * vsw ** 2
+        and switch-node voltage ``vsw`` [V] at operating ``level`` (the node's energy
+        is :meth:`~bucksim.model.capacitance.NodeCurve.stored`, ``Cn vsw^2 / 2`` when
+        linear)."""
+        node = float(self.curves[level].stored(vsw)) if self.node else 0.0
+        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2 + node
 
 
 #: Unit of each signal and state a run can evaluate.
