@@ -105,7 +105,8 @@ def jump_matrix(stage, s, cond, nxt, at_edge, evented, x_next, s_next):
     ``c_sw . z`` at the end of every conducting segment: a linear reset ``R``
     (identity with the ``vn`` row replaced by ``c_sw``). A segment that ends at
     a state-dependent event ``g . x = const`` (zero current; a clamp of the
-    open node) rather than at a fixed gate edge adds the saltation term [2]_:
+    open node; an edge of its capacitance band) rather than at a fixed gate edge
+    adds the saltation term [2]_:
     ``S = R + (f^+ - R f^-) g^T / (g^T f^-)``, with the vector fields ``f^-``
     of the ending system and ``f^+`` of the next at the event state.
     """
@@ -122,6 +123,10 @@ def jump_matrix(stage, s, cond, nxt, at_edge, evented, x_next, s_next):
             g[0] = 1.0
         elif cond == OPEN and nxt in (LOW_DIODE, HIGH_DIODE):
             g = stage.clamp_rows(level)[0 if nxt == LOW_DIODE else 1][:n]
+        elif (cond == OPEN and nxt == OPEN and s_next != s
+              and stage.split_id(s_next)[0] == level):
+            g = np.zeros(n)         # an edge of the node capacitance's band: vn = edge
+            g[stage.i_node] = 1.0
     if g is None:
         return R
     Ms = stage.matrices

@@ -194,3 +194,25 @@ def test_constant_table_equals_linear_model():
     assert s1.efficiency == pytest.approx(s0.efficiency, rel=1e-10)
     assert s1.switch_node == s0.switch_node
     assert s1.energy_balance_error < 1e-9
+
+
+def test_monodromy_through_band_edges_against_finite_differences():
+    """The one-period map's Jacobian (transition matrices, resets, saltation at the
+    band edges) against central differences of the map itself."""
+    from bucksim.steady.open_loop import PeriodMap
+
+    sc = bucksim.load_scenario(IO_RAIL)
+    sc = dataclasses.replace(sc, high_side=dataclasses.replace(sc.high_side,
+                                                               coss=sqrt_law_table(0.3e-9)),
+                             low_side=dataclasses.replace(sc.low_side,
+                                                          coss=sqrt_law_table(0.8e-9)))
+    pmap = PeriodMap(sc)
+    x = bucksim.steady_state(sc).x
+    x1, J, res = pmap(x)
+    open_node = res.conduction == 5
+    assert len(set(res.system[open_node].tolist())) > 4      # the swing crosses bands
+    for k, h in ((0, 1e-5), (1, 1e-6)):
+        dx = np.zeros_like(x)
+        dx[k] = h
+        fd = (pmap.step(x + dx)[0] - pmap.step(x - dx)[0]) / (2 * h)
+        np.testing.assert_allclose(J[:2, k], fd[:2], rtol=1e-5, atol=1e-7)
