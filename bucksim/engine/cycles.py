@@ -1,35 +1,19 @@
 """The engine's one cycle loop: gate phases, events, and each period's control decision.
 
-Every period runs the same phase program; only the decision at its start
-differs between controllers:
-
-====  =========  ===========================================================
- p    gate       span
-====  =========  ===========================================================
- 0    high       ``[t_k, t_k + blank)``: comparator and current limit
-                 blanked
- 1    high       ``[t_k + blank, t_k + t_on_max)``: comparator and current
-                 limit live; the phase ends where either trips (a current
-                 already past the limit when the blanking ends trips at once)
- 2    off        falling dead time (synchronous) or the rest of the period
-                 (asynchronous: freewheel diode)
- 3    low        low-side gate until ``t_{k+1} - rising dead time``
- 4    off        rising dead time
-====  =========  ===========================================================
-
-The current limit is blanked with the PWM comparator in every controller (both
-watch the sensed current's turn-on spike; common practice), so the on-time in
-an overload is at least the blanking time; foldback and hiccup are not
-modelled (docs: architecture, Control). Digital voltage mode has no blanking.
-
-Controllers (``control``):
-
-* open loop: the on-time comes from a schedule; no comparator, no limit;
-* digital: at ``t_k`` the exact output voltage is sampled and a discrete
-  compensator stepped (voltage mode: a duty with delay and quantisation;
-  peak-current mode: a comparator level ``iL + (Se/Ri)(t - t_k) = u/Ri``);
-* analog: the compensator is part of the state; the comparator is the
-  event ``Cthr[level] . z + ramp (t - t_k) = 0`` (see :mod:`bucksim.model.stage`).
+Every period runs the same five phases (docs: architecture, Control): ``p = 0``
+high side with the comparator and current limit blanked, ``1`` high side with
+both live (the phase ends where either trips; a current already past the limit
+when the blanking ends trips at once), ``2`` off (the falling dead time, or the
+rest of an asynchronous period), ``3`` low side, ``4`` off (the rising dead
+time). The limit is blanked with the comparator in every controller (both watch
+the turn-on spike; common practice); foldback and hiccup are not modelled.
+Only the decision at a period's start differs between controllers
+(``control``): open loop takes the on-time from a schedule (no comparator, no
+limit); digital samples the exact output at ``t_k`` and steps a discrete
+compensator (voltage mode: a duty with delay and quantisation; peak-current
+mode: a comparator level ``iL + (Se/Ri)(t - t_k) = u/Ri``); analog carries the
+compensator in the state, its comparator the event ``Cthr[level] . z + ramp
+(t - t_k) = 0`` (:mod:`bucksim.model.stage`).
 
 The phase logic is written once, inline: a per-phase function with its dozen
 array arguments cost more than the propagation (benchmarks/bench_engine.py). A
@@ -39,6 +23,7 @@ interval :func:`~bucksim.engine.kernels.advance`; events are located by
 segments free of a crossing (:mod:`bucksim.engine.bounds`: the curvature bound,
 and for the open node's clamps the ring-energy bound). With node capacitance
 the node opens into ``OPEN`` (a state), its diodes conduct at the clamp events,
+a capacitance table's band edges are events too (:mod:`bucksim.engine.open_node`),
 and ``z[i_vn]`` holds the node voltage at every segment's end
 (:mod:`bucksim.analysis.edges`).
 """
@@ -48,7 +33,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import clear_between, growth
+from bucksim.engine.bounds import clear_between, growth, open_node_clear
 from bucksim.engine.kernels import (
     ASYNC,
     CONTROL_ANALOG,
@@ -71,8 +56,8 @@ from bucksim.engine.kernels import (
     crossing_value,
     find_zero,
 )
-from bucksim.engine.loop_parts import _compensate, _dot, _needs_search
-from bucksim.engine.open_node import BAND_DOWN, BAND_UP, band_of, open_node_event, step_band
+from bucksim.engine.loop_parts import _compensate, _dot, _needs_search, newton_crossing
+from bucksim.engine.open_node import BAND_DOWN, BAND_UP, band_edge_event, band_of, step_band
 from bucksim.engine.status import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
 
 __all__ = ["CONTROL_OPEN", "CONTROL_DIGITAL", "CONTROL_ANALOG", "N_PHASES", "run_cycles"]
@@ -111,8 +96,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     kls, k3ls, khs, k3hs, open_coef = tab.kls, tab.k3ls, tab.khs, tab.k3hs, tab.open_coef
     edges, e_vn, kvn, k3vn = tab.band_edges, tab.e_vn, tab.kvn, tab.k3vn
     n_bands = edges.shape[1] - 1
-    band = 0
-    band_known = False
+    band, band_known = 0, False
     node = i_vn >= 0
     T, strategy, td_fall, td_rise = prog.T, prog.strategy, prog.td_fall, prog.td_rise
     nominal, P, t_end = prog.nominal, prog.P, prog.t_end
@@ -130,23 +114,14 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     log_duty, log_u = buf.duty, buf.u
     n = seg_x0.shape[1]
     m = z.shape[0]
-    tmp = np.empty(2 * m)
-    trial = np.empty(m)
-    work = np.empty(m)
-    zs = np.empty(m)
-    zs2 = np.empty(m)
-    zs3 = np.empty(m)
-    zst = np.empty(m)
-    zh = np.empty(m)
-    held = 0
+    tmp, trial, work, zs, zs2 = np.empty(2 * m), np.empty(m), np.empty(m), np.empty(m), np.empty(m)
+    zs3, zst, zh = np.empty(m), np.empty(m), np.empty(m)
     poly = np.empty((TAYLOR_ORDER + 1, m + 1))
     wnew = np.empty(w.shape[0])
-    n_levels = level_times.shape[0]
-    n_delay = queue.shape[0]
-    cap = seg_t0.shape[0]
+    n_levels, n_delay, cap = level_times.shape[0], queue.shape[0], seg_t0.shape[0]
     sync = strategy != ASYNC
     e2 = e3 = 0.0
-    nseg = 0
+    held = nseg = 0
     t = c_start * T
     for c in range(c_start, c_stop):
         tc = c * T
@@ -266,7 +241,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     held = 1 if ((z[i_w] >= w_hi and e_now > -release)
                                  or (z[i_w] <= w_lo and e_now < release)) else 0
                 if cond == OPEN and not band_known:
-                    band = band_of(edges[level], z[i_vn], z[0])
+                    band = band_of(edges, level, z[i_vn], z[0])
                 band_known = False
                 s = ((level * n_modes + held) * n_bands + (band if cond == OPEN else 0)
                      ) * N_CONDUCTION + cond
@@ -330,15 +305,49 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                        trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly,
                                        bnd, k3il[0, s])
                 elif cond == OPEN:
-                    # the open node: a clamp or its band's edge ends the segment
-                    tz, node_event = open_node_event(
-                        Ms, E, h, s, zs, z, t, t_stop, d, gs, search_ls, search_hs,
-                        edges[level, band], edges[level, band + 1], i_vn,
-                        open_coef[level * n_bands + band], Cls[level], Chs[level],
-                        kls[level, s], k3ls[level, s], khs[level, s], k3hs[level, s], e_vn,
-                        kvn[0, s], k3vn[0, s], bnd, taylor_gap, tmp, trial, work, poly, zs2,
-                        zs3)
-                    clamp = node_event
+                    # the open node: a clamp (or a band's edge) ends the segment
+                    for i in range(m):
+                        zs2[i] = zs[i]
+                        zs3[i] = zs[i]
+                    if d > gs and (search_ls or search_hs):
+                        # a ring of many lobes: the energy bound clears it at once
+                        lo_ok, hi_ok = open_node_clear(open_coef[level * n_bands + band], zs,
+                                                       i_vn, d, Cls[level], Chs[level])
+                        search_ls = search_ls and not lo_ok
+                        search_hs = search_hs and not hi_ok
+                    if search_ls and _needs_search(Ms, s, Cls[level], kls[level, s], zs, z,
+                                                   t_stop, d, gs, 1.0, 0.0, 0.0, t, bnd):
+                        # a slew at high current: Newton, proven; else the general search
+                        u = newton_crossing(Ms, E, h, s, zs, t, d, Cls[level], kls[level, s],
+                                            bnd, tmp, work)
+                        if u > 0.0:
+                            tz = t + u
+                            for i in range(m):
+                                zs[i] = work[i]
+                        else:
+                            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, 1.0, gs, tmp,
+                                           trial, work, Cls[level], 0.0, 0.0, t, False,
+                                           taylor_gap, poly, bnd, k3ls[level, s])
+                    clamp = LOW_DIODE if tz >= 0.0 else OPEN
+                    if search_hs:
+                        zb = zs if tz >= 0.0 else z
+                        t_lim = tz if tz >= 0.0 else t_stop
+                        if _needs_search(Ms, s, Chs[level], khs[level, s], zs2, zb, t_lim,
+                                         t_lim - t, gs, 1.0, 0.0, 0.0, t, bnd):
+                            t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, 1.0, gs, tmp,
+                                           trial, work, Chs[level], 0.0, 0.0, t, False,
+                                           taylor_gap, poly, bnd, k3hs[level, s])
+                            if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
+                                tz = t2
+                                clamp = HIGH_DIODE
+                                for i in range(m):
+                                    zs[i] = zs2[i]
+                    if n_bands > 1:
+                        # a capacitance table: its band's edges (engine/open_node.py)
+                        tz, clamp = band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop,
+                                                    tz, clamp, gs, edges, level, band, e_vn,
+                                                    kvn[0, s], k3vn[0, s], taylor_gap, tmp,
+                                                    trial, work, poly, bnd)
                 elif ph_cmp or np.isfinite(ph_lim):
                     for i in range(m):
                         zs2[i] = zs[i]
@@ -451,7 +460,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                         if clamp == BAND_DOWN or clamp == BAND_UP:
                             # the next band's system from here, the node on the edge
                             z[i_vn] = edges[level, band if clamp == BAND_DOWN else band + 1]
-                            band = step_band(edges[level], band, clamp)
+                            band = step_band(edges, level, band, clamp)
                             band_known = True
                             continue
                         # a clamp: its diode conducts (unless the node only touched it)

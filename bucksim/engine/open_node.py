@@ -13,7 +13,10 @@ While nothing conducts, the node voltage ``vn`` is a state
 Each search is skipped when a bound proves the segment free of that crossing
 (:mod:`bucksim.engine.bounds`); a clamp reached on a slew is located by
 :func:`~bucksim.engine.loop_parts.newton_crossing`, anything else by
-:func:`~bucksim.engine.kernels.find_zero`.
+:func:`~bucksim.engine.kernels.find_zero`. The clamps' searches are written
+out in the cycle loop (every open segment has them; a call with this many
+arrays costs about 150 ns, a quarter of a segment); the band edges, present
+only with a capacitance table, are searched here.
 """
 
 from __future__ import annotations
@@ -21,85 +24,51 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import open_node_clear
-from bucksim.engine.kernels import HIGH_DIODE, LOW_DIODE, OPEN, find_zero
-from bucksim.engine.loop_parts import _needs_search, newton_crossing
+from bucksim.engine.kernels import find_zero
+from bucksim.engine.loop_parts import _needs_search
 
 #: Event kinds besides the clamps' conduction states: the band's edges.
 BAND_DOWN, BAND_UP = -1, -2
 
 
-@njit(cache=True)
-def band_of(edges, v, il):
-    """The band of ``edges`` (``-inf .. +inf``) holding ``v``, bands ``[e_b, e_{b+1})``;
-    a node exactly on an edge and falling (``iL > 0``) is in the band below it
-    (zero-width bands skipped)."""
-    nb = edges.shape[0] - 1
+@njit(cache=True, inline="always")
+def band_of(edges, level, v, il):
+    """The band of ``edges[level]`` (``-inf .. +inf``) holding ``v``, bands
+    ``[e_b, e_{b+1})``; a node exactly on an edge and falling (``iL > 0``) is in the
+    band below it (zero-width bands skipped). (The 2-D table and its row index, not
+    a row view: a view made in the cycle loop costs more than the search.)"""
+    nb = edges.shape[1] - 1
     b = 0
-    while b + 1 < nb and edges[b + 1] <= v:
+    while b + 1 < nb and edges[level, b + 1] <= v:
         b += 1
     if il > 0.0:
-        while b > 0 and edges[b] == v:
+        while b > 0 and edges[level, b] == v:
             b -= 1
     return b
 
 
-@njit(cache=True)
-def step_band(edges, band, kind):
+@njit(cache=True, inline="always")
+def step_band(edges, level, band, kind):
     """The band entered through an edge event (zero-width bands passed through)."""
-    nb = edges.shape[0] - 1
+    nb = edges.shape[1] - 1
     if kind == BAND_DOWN:
         band -= 1
-        while band > 0 and edges[band] == edges[band + 1]:
+        while band > 0 and edges[level, band] == edges[level, band + 1]:
             band -= 1
     else:
         band += 1
-        while band + 1 < nb and edges[band] == edges[band + 1]:
+        while band + 1 < nb and edges[level, band] == edges[level, band + 1]:
             band += 1
     return band
 
 
 @njit(cache=True)
-def open_node_event(Ms, E, h, s, zs, z, t, t_stop, d, gs, search_ls, search_hs, lo, hi,
-                    i_vn, coef, Cls, Chs, kls, k3ls, khs, k3hs, e_vn, kvn, k3vn, bnd,
-                    taylor_gap, tmp, trial, work, poly, zs2, zs3):
-    """The first event of an open-node segment from ``zs`` (at ``t``) to ``z`` (at
-    ``t_stop = t + d``).
-
-    ``search_ls``/``search_hs``: whether each clamp can be reached (its row is
-    positive at the start); ``lo``/``hi``: the band's edges [V] (infinite: none);
-    ``coef``: the band's row of the energy bound. Returns ``(tz, kind)``:
-    ``tz < 0`` and ``OPEN`` when nothing happens, else ``zs`` holds the state at
-    ``tz`` and ``kind`` is ``LOW_DIODE``, ``HIGH_DIODE``, ``BAND_DOWN`` or
-    ``BAND_UP``.
-    """
-    m = zs.shape[0]
-    for i in range(m):
-        zs2[i] = zs[i]
-        zs3[i] = zs[i]
-    if d > gs and (search_ls or search_hs):
-        # a ring of many lobes: the energy bound clears it at once
-        lo_ok, hi_ok = open_node_clear(coef, zs, i_vn, d, Cls, Chs)
-        search_ls = search_ls and not lo_ok
-        search_hs = search_hs and not hi_ok
-    tz = -1.0
-    kind = OPEN
-    if search_ls and _needs_search(Ms, s, Cls, kls, zs, z, t_stop, d, gs, 1.0, 0.0, 0.0, t,
-                                   bnd):
-        # a slew at high current: Newton, proven; else the general search
-        u = newton_crossing(Ms, E, h, s, zs, t, d, Cls, kls, bnd, tmp, work)
-        if u > 0.0:
-            tz = t + u
-            for i in range(m):
-                zs[i] = work[i]
-        else:
-            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, 1.0, gs, tmp, trial, work, Cls,
-                           0.0, 0.0, t, False, taylor_gap, poly, bnd, k3ls)
-        if tz >= 0.0:
-            kind = LOW_DIODE
-    if search_hs:
-        tz, kind = _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, Chs, 0.0,
-                            1.0, khs, k3hs, HIGH_DIODE, taylor_gap, tmp, trial, work, poly, bnd)
+def band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, edges, level, band,
+                    e_vn, kvn, k3vn, taylor_gap, tmp, trial, work, poly, bnd):
+    """The earlier of the event so far (``tz``, ``kind``; ``zs`` its state) and the
+    open node reaching its band's lower edge (falling) or upper edge (rising), from
+    the segment's start ``zs3`` (at ``t``). Returns ``(tz, kind)``."""
+    lo, hi = edges[level, band], edges[level, band + 1]
     if lo > -np.inf:
         tz, kind = _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, e_vn, lo,
                             1.0, kvn, k3vn, BAND_DOWN, taylor_gap, tmp, trial, work, poly, bnd)
