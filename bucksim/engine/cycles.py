@@ -115,7 +115,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     n = seg_x0.shape[1]
     m = z.shape[0]
     tmp, trial, work, zs, zs2 = np.empty(2 * m), np.empty(m), np.empty(m), np.empty(m), np.empty(m)
-    zs3, zst, zh = np.empty(m), np.empty(m), np.empty(m)
+    zs3, zst, zh, erow = np.empty(m), np.empty(m), np.empty(m), np.empty(m)
     poly = np.empty((TAYLOR_ORDER + 1, m + 1))
     wnew = np.empty(w.shape[0])
     n_levels, n_delay, cap = level_times.shape[0], queue.shape[0], seg_t0.shape[0]
@@ -347,7 +347,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                         tz, clamp = band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop,
                                                     tz, clamp, gs, edges, level, band, e_vn,
                                                     kvn[0, s], k3vn[0, s], taylor_gap, tmp,
-                                                    trial, work, poly, bnd)
+                                                    trial, work, poly, bnd, erow)
                 elif ph_cmp or np.isfinite(ph_lim):
                     for i in range(m):
                         zs2[i] = zs[i]

@@ -25,7 +25,7 @@ import numpy as np
 from numba import njit
 
 from bucksim.engine.kernels import find_zero
-from bucksim.engine.loop_parts import _needs_search
+from bucksim.engine.loop_parts import _needs_search, newton_crossing
 
 #: Event kinds besides the clamps' conduction states: the band's edges.
 BAND_DOWN, BAND_UP = -1, -2
@@ -64,35 +64,49 @@ def step_band(edges, level, band, kind):
 
 @njit(cache=True)
 def band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, edges, level, band,
-                    e_vn, kvn, k3vn, taylor_gap, tmp, trial, work, poly, bnd):
+                    e_vn, kvn, k3vn, taylor_gap, tmp, trial, work, poly, bnd, erow):
     """The earlier of the event so far (``tz``, ``kind``; ``zs`` its state) and the
     open node reaching its band's lower edge (falling) or upper edge (rising), from
-    the segment's start ``zs3`` (at ``t``). Returns ``(tz, kind)``."""
+    the segment's start ``zs3`` (at ``t``). Returns ``(tz, kind)``; ``erow``: work
+    space for the edge's row."""
     lo, hi = edges[level, band], edges[level, band + 1]
-    if lo > -np.inf:
-        tz, kind = _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, e_vn, lo,
-                            1.0, kvn, k3vn, BAND_DOWN, taylor_gap, tmp, trial, work, poly, bnd)
-    if hi < np.inf:
-        tz, kind = _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, e_vn, hi,
-                            -1.0, kvn, k3vn, BAND_UP, taylor_gap, tmp, trial, work, poly, bnd)
+    m = zs.shape[0]
+    for sign, v, this in ((1.0, lo, BAND_DOWN), (-1.0, hi, BAND_UP)):
+        if not abs(v) < np.inf:
+            continue
+        # sign (vn - v) as a row over z (its last entry is the constant 1): positive
+        # in the band, falling to zero at the edge
+        for i in range(m):
+            erow[i] = sign * e_vn[i]
+        erow[m - 1] -= sign * v
+        tz, kind = _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, erow, kvn,
+                            k3vn, this, taylor_gap, tmp, trial, work, poly, bnd)
     return tz, kind
 
 
 @njit(cache=True)
-def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, level, sign0, krow,
-             k3, this, taylor_gap, tmp, trial, work, poly, bnd):
-    """Search ``sign0 (row . z - level) = 0`` from the segment's start ``zs3`` up to
-    the earliest event found so far; keep it (state into ``zs``) when it comes first."""
+def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, krow, k3, this,
+             taylor_gap, tmp, trial, work, poly, bnd):
+    """Search ``row . z = 0`` (positive at the start) from the segment's start ``zs3``
+    up to the earliest event found so far, by proven Newton steps (a slew crosses
+    on a nearly straight line) or else the general search; keep it (state into
+    ``zs``) when it comes first."""
     m = zs.shape[0]
     zb = zs if tz >= 0.0 else z
     t_lim = tz if tz >= 0.0 else t_stop
-    if not _needs_search(Ms, s, row, krow, zs3, zb, t_lim, t_lim - t, gs, sign0, level, 0.0,
-                         t, bnd):
+    d = t_lim - t
+    if not _needs_search(Ms, s, row, krow, zs3, zb, t_lim, d, gs, 1.0, 0.0, 0.0, t, bnd):
         return tz, kind
-    for i in range(m):
-        zs2[i] = zs3[i]
-    t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, sign0, gs, tmp, trial, work, row, level,
-                   0.0, t, False, taylor_gap, poly, bnd, k3)
+    u = newton_crossing(Ms, E, h, s, zs3, t, d, row, krow, bnd, tmp, work)
+    if u > 0.0:
+        t2 = t + u
+        for i in range(m):
+            zs2[i] = work[i]
+    else:
+        for i in range(m):
+            zs2[i] = zs3[i]
+        t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, 1.0, gs, tmp, trial, work, row, 0.0,
+                       0.0, t, False, taylor_gap, poly, bnd, k3)
     if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
         for i in range(m):
             zs[i] = zs2[i]
