@@ -373,6 +373,7 @@ def test_round_trip_keeps_closed_loop_settings_and_open_load():
     ("core_rail_1v0.toml", "forced-pwm", 1.0, False),
     ("sensor_rail_3v3_battery.toml", "diode-emulation", 3.3, True),
     ("aux_rail_5v_async.toml", "asynchronous", 5.0, False),
+    ("meter_rail_5v_async_ring.toml", "asynchronous", 5.0, True),
     ("default.toml", "forced-pwm", 3.3, False),
 ])
 def test_bundled_scenarios_operate_as_described(name, strategy, vout, dcm):
