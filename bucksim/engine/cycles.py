@@ -115,7 +115,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     n = seg_x0.shape[1]
     m = z.shape[0]
     tmp, trial, work, zs, zs2 = np.empty(2 * m), np.empty(m), np.empty(m), np.empty(m), np.empty(m)
-    zs3, zst, zh, erow = np.empty(m), np.empty(m), np.empty(m), np.empty(m)
+    zs3, zst, zh, erow, zw = np.empty(m), np.empty(m), np.empty(m), np.empty(m), np.empty(m)
     poly = np.empty((TAYLOR_ORDER + 1, m + 1))
     wnew = np.empty(w.shape[0])
     n_levels, n_delay, cap = level_times.shape[0], queue.shape[0], seg_t0.shape[0]
@@ -130,9 +130,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
         while level + 1 < n_levels and level_times[level + 1] <= tc:
             level += 1
         # -- the period's decision: on-time bound, blanking, comparator, limit
-        cmp_on = False
-        cmp_level = 0.0
-        cmp_ramp = 0.0
+        cmp_on, cmp_level, cmp_ramp = False, 0.0, 0.0
         lim_live = i_limit
         u = np.nan
         if control == CONTROL_OPEN:
@@ -181,9 +179,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
             cmp_ramp = thr_ramp
         log_u[c - c_start] = u
         # -- the phase program
-        t_off = tc
-        tripped = False
-        p = 0
+        t_off, tripped, p = tc, False, 0
         while p < N_PHASES:
             # span, gate and rules of phase p
             ph_cmp = False
@@ -305,33 +301,41 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                        trial, work, e_il, 0.0, 0.0, 0.0, True, taylor_gap, poly,
                                        bnd, k3il[0, s])
                 elif cond == OPEN:
-                    # the open node: a clamp (or a band's edge) ends the segment
+                    # the open node: a band's edge (a capacitance table, engine/open_node)
+                    # first, then its clamps up to there
                     for i in range(m):
                         zs2[i] = zs[i]
                         zs3[i] = zs[i]
-                    if d > gs and (search_ls or search_hs):
+                    tb, kb = -1.0, OPEN
+                    if n_bands > 1:
+                        tb, kb = band_edge_event(Ms, E, h, s, zh, z, work, zs3, t, t_stop, tb,
+                                                 kb, gs, edges, level, band, e_vn, kvn[0, s],
+                                                 k3vn[0, s], taylor_gap, tmp, trial, zw,
+                                                 poly, bnd, erow)
+                    zl, tl, dl = (zh, tb, tb - t) if tb >= 0.0 else (z, t_stop, d)
+                    if dl > gs and (search_ls or search_hs):
                         # a ring of many lobes: the energy bound clears it at once
                         lo_ok, hi_ok = open_node_clear(open_coef[level * n_bands + band], zs,
-                                                       i_vn, d, Cls[level], Chs[level])
+                                                       i_vn, dl, Cls[level], Chs[level])
                         search_ls = search_ls and not lo_ok
                         search_hs = search_hs and not hi_ok
-                    if search_ls and _needs_search(Ms, s, Cls[level], kls[level, s], zs, z,
-                                                   t_stop, d, gs, 1.0, 0.0, 0.0, t, bnd):
+                    if search_ls and _needs_search(Ms, s, Cls[level], kls[level, s], zs, zl,
+                                                   tl, dl, gs, 1.0, 0.0, 0.0, t, bnd):
                         # a slew at high current: Newton, proven; else the general search
-                        u = newton_crossing(Ms, E, h, s, zs, t, d, Cls[level], kls[level, s],
+                        u = newton_crossing(Ms, E, h, s, zs, t, dl, Cls[level], kls[level, s],
                                             bnd, tmp, work)
                         if u > 0.0:
                             tz = t + u
                             for i in range(m):
                                 zs[i] = work[i]
                         else:
-                            tz = find_zero(Ms, E, h, s, zs, z, t, t_stop, 1.0, gs, tmp,
+                            tz = find_zero(Ms, E, h, s, zs, zl, t, tl, 1.0, gs, tmp,
                                            trial, work, Cls[level], 0.0, 0.0, t, False,
                                            taylor_gap, poly, bnd, k3ls[level, s])
                     clamp = LOW_DIODE if tz >= 0.0 else OPEN
                     if search_hs:
-                        zb = zs if tz >= 0.0 else z
-                        t_lim = tz if tz >= 0.0 else t_stop
+                        zb = zs if tz >= 0.0 else zl
+                        t_lim = tz if tz >= 0.0 else tl
                         if _needs_search(Ms, s, Chs[level], khs[level, s], zs2, zb, t_lim,
                                          t_lim - t, gs, 1.0, 0.0, 0.0, t, bnd):
                             t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, 1.0, gs, tmp,
@@ -342,12 +346,10 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                 clamp = HIGH_DIODE
                                 for i in range(m):
                                     zs[i] = zs2[i]
-                    if n_bands > 1:
-                        # a capacitance table: its band's edges (engine/open_node.py)
-                        tz, clamp = band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop,
-                                                    tz, clamp, gs, edges, level, band, e_vn,
-                                                    kvn[0, s], k3vn[0, s], taylor_gap, tmp,
-                                                    trial, work, poly, bnd, erow)
+                    if tz < 0.0 and tb >= 0.0:
+                        tz, clamp = tb, kb
+                        for i in range(m):
+                            zs[i] = zh[i]
                 elif ph_cmp or np.isfinite(ph_lim):
                     for i in range(m):
                         zs2[i] = zs[i]

@@ -24,8 +24,9 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from bucksim.engine.bounds import growth, reach
 from bucksim.engine.kernels import find_zero
-from bucksim.engine.loop_parts import _needs_search, newton_crossing
+from bucksim.engine.loop_parts import _dot, _needs_search, newton_crossing
 
 #: Event kinds besides the clamps' conduction states: the band's edges.
 BAND_DOWN, BAND_UP = -1, -2
@@ -95,7 +96,11 @@ def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, krow, k
     zb = zs if tz >= 0.0 else z
     t_lim = tz if tz >= 0.0 else t_stop
     d = t_lim - t
-    if not _needs_search(Ms, s, row, krow, zs3, zb, t_lim, d, gs, 1.0, 0.0, 0.0, t, bnd):
+    if _leaving(Ms, s, row, krow, zs3, d, bnd):
+        return tz, kind
+    # the curvature bound over the whole stretch, beyond the search guard too: it
+    # stays valid (only looser)
+    if not _needs_search(Ms, s, row, krow, zs3, zb, t_lim, d, np.inf, 1.0, 0.0, 0.0, t, bnd):
         return tz, kind
     u = newton_crossing(Ms, E, h, s, zs3, t, d, row, krow, bnd, tmp, work)
     if u > 0.0:
@@ -112,3 +117,26 @@ def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, krow, k
             zs[i] = zs2[i]
         return t2, this
     return tz, kind
+
+
+@njit(cache=True)
+def _leaving(Ms, s, row, krow, z0, d, bnd):
+    """True when ``f = row . z``, at or above zero at the start and rising, provably
+    stays above zero over ``(0, d]`` (the node just crossed this edge and moves away):
+    ``f >= f0 + s0 u - B u^2 / 2`` with the curvature bound ``B``."""
+    m = z0.shape[0]
+    f0 = _dot(row, z0)
+    if f0 < 0.0:
+        return False
+    s0 = 0.0
+    vel = 0.0
+    for i in range(m - 1):
+        acc = 0.0
+        for j in range(m):
+            acc += Ms[s, i, j] * z0[j]
+        s0 += row[i] * acc
+        vel = max(vel, abs(acc) * bnd[s, i])
+    if not s0 > 0.0:
+        return False
+    B = krow * vel * growth(bnd[s, m - 1] * d) * (1.0 + 1e-12)
+    return reach(f0, s0, B) > d
