@@ -44,19 +44,20 @@ def parse_sweep(text: str, scenario, log: bool = False) -> list:
 
 
 def parse_diode(text: str) -> Diode:
-    """``"vf=0.45,r=0.02,qrr=0"`` (units allowed: ``vf=0.45V,r=20mohm``) -> Diode."""
-    units = {"vf": "V", "r": "ohm", "qrr": "C"}
+    """``"vf=0.45,r=0.02,qrr=0"`` (units allowed: ``vf=0.45V,r=20mohm``; also ``cj``,
+    ``tau``, ``qrr_current`` as in a scenario's diode table) -> Diode."""
+    units = {"vf": "V", "r": "ohm", "qrr": "C", "cj": "F", "tau": "s", "qrr_current": "A"}
     values = {}
     for part in filter(None, (p.strip() for p in text.split(","))):
         name, sep, value = part.partition("=")
         name = name.strip()
         if not sep or name not in units:
-            raise ScenarioError(f"--diode {name or part}", "must be vf=..., r=..., qrr=... "
-                                "(V, ohm, C)", part)
+            raise ScenarioError(f"--diode {name or part}", "must be vf=..., r=..., qrr=..., "
+                                "cj=..., tau=..., qrr_current=... (V, ohm, C, F, s, A)", part)
         values[name] = parse_quantity(value.strip(), units[name], f"--diode {name}")
     if "vf" not in values:
         raise ScenarioError("--diode vf", "is required (forward drop in V)", text)
-    return Diode(values["vf"], values.get("r", 0.0), values.get("qrr", 0.0), section="--diode")
+    return Diode(values.pop("vf"), section="--diode", **values)
 
 
 def register(subparsers):
@@ -80,7 +81,7 @@ def register(subparsers):
     p.add_argument("--profile", metavar="FILE",
                    help="load profile TOML: [[level]] load = \"0.3 A\", share = 0.7 "
                         "(default: [load] profile in the scenario, if any)")
-    p.add_argument("--diode", metavar="vf=..,r=..,qrr=..",
+    p.add_argument("--diode", metavar="vf=..,r=..,qrr=..,cj=..,tau=..,qrr_current=..",
                    help="freewheel diode of the asynchronous stage (default: the low-side "
                         "body diode)")
     p.add_argument("--fixed-duty", action="store_true",

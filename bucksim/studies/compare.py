@@ -20,9 +20,8 @@ to the same load; ``regulate=False`` keeps the scenario's duty.
 A load profile (levels and the share of time the rail spends at each) gives
 each strategy's energy-weighted efficiency ``sum(share P_out) / sum(share
 P_in)`` and its energy lost per day, names the best strategy and the one
-number that decides it.
-
-Load levels are written as in :mod:`bucksim.studies.reverse` (``"0.3 A"``, ``"2 ohm"``).
+number that decides it. Load levels are written as in
+:mod:`bucksim.studies.reverse` (``"0.3 A"``, ``"2 ohm"``).
 
 References
 ----------
@@ -44,7 +43,9 @@ from dataclasses import dataclass
 from bucksim.analysis.loss_items import LOSS_ITEMS
 from bucksim.analysis.summary import Summary
 from bucksim.errors import ScenarioError, SimulationError
+from bucksim.model.capacitance import as_plain
 from bucksim.model.parts import STRATEGIES, STRATEGY_NAMES, Diode, Mosfet
+from bucksim.model.scenario import DIODE_KEYS
 from bucksim.model.units import format_si, parse_quantity
 from bucksim.studies.levels import (
     LoadLevel,
@@ -284,7 +285,7 @@ class Comparison:
         return {"title": self.title, "strategies": list(self.strategies),
                 "levels": [lv.to_dict() for lv in self.levels],
                 "target_voltage": self.target_voltage,
-                "diode": {"vf": self.diode.vf, "r": self.diode.r, "qrr": self.diode.qrr},
+                "diode": {k: as_plain(getattr(self.diode, k)) for k in DIODE_KEYS},
                 "rows": {s: [r.to_dict() for r in rows] for s, rows in self.rows.items()},
                 "profile": None if self.profile is None else self.profile.to_dict(),
                 "caution": CAUTION}

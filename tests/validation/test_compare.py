@@ -206,6 +206,10 @@ def test_argument_parsers_and_rejections():
         parse_sweep("0.1:1", sc)
     d = parse_diode("vf=0.45V,r=20mohm,qrr=0")
     assert (d.vf, d.r, d.qrr) == (0.45, 0.02, 0.0)
+    d = parse_diode("vf=0.7,qrr=40nC,qrr_current=10A,tau=30ns,cj=150pF")
+    assert (d.qrr, d.qrr_current, d.tau, d.cj) == (40e-9, 10.0, 30e-9, 150e-12)
+    with pytest.raises(ScenarioError, match="qrr_current"):
+        parse_diode("vf=0.7,qrr_current=10")       # the diode's own check: qrr missing
     with pytest.raises(ScenarioError, match="--diode vx"):
         parse_diode("vx=1")
     asynchronous = p.Scenario(**{**sc.__dict__, "low_side": p.Diode(0.45),
