@@ -38,6 +38,7 @@ SIGNAL_NAMES = {"iL": "inductor current iL", "vsw": "switch node vsw", "vo": "ou
                 "low_side": "low-side current",
                 "high_side_body_diode": "high-side body-diode current",
                 "low_side_body_diode": "low-side body-diode current",
+                "switch_node": "open switch-node current",
                 "u": "compensator output u", "vref": "reference vref"}
 _SHORT_NAMES = {"asynchronous": "async.\n", "forced-pwm": "forced\nPWM",
                 "diode-emulation": "diode\nemulation"}

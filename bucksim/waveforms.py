@@ -29,7 +29,8 @@ if TYPE_CHECKING:
 
 #: Signals every run can evaluate (see :meth:`bucksim.model.stage.Stage.signal`).
 SIGNALS = ("iL", "vC", "vo", "io", "ic", "iin", "vsw", "vin",
-           "high_side", "low_side", "high_side_body_diode", "low_side_body_diode")
+           "high_side", "low_side", "high_side_body_diode", "low_side_body_diode",
+           "switch_node")
 
 #: Further signals of an analog closed loop: compensator output and reference [V].
 LOOP_SIGNALS = ("u", "vref")

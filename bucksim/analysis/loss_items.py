@@ -11,7 +11,8 @@ from __future__ import annotations
 LOSS_ITEMS = ("high_side.conduction", "high_side.switching", "high_side_body_diode.conduction",
               "freewheel_diode.conduction", "freewheel_diode.switching", "low_side.conduction",
               "low_side.switching",
-              "low_side_body_diode.conduction", "inductor.dcr", "inductor.core",
+              "low_side_body_diode.conduction", "switch_node.resistance", "inductor.dcr",
+              "inductor.core",
               "output_capacitor.esr", "supply.resistance")
 
 _ITEM_LABELS = {
@@ -21,6 +22,7 @@ _ITEM_LABELS = {
     "freewheel_diode.switching": "freewheel diode switching",
     "low_side.conduction": "low side conduction", "low_side.switching": "low side switching",
     "low_side_body_diode.conduction": "low-side body diode",
+    "switch_node.resistance": "switch-node resistance",
     "inductor.dcr": "inductor DCR", "inductor.core": "inductor core",
     "output_capacitor.esr": "output capacitor ESR", "supply.resistance": "supply resistance"}
 

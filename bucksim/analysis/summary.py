@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from bucksim.analysis.loss_items import LOSS_ITEMS, item_label  # noqa: F401 (re-exported)
 
 DEVICE_ORDER = ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode",
-                "inductor", "output_capacitor", "supply")
+                "switch_node", "inductor", "output_capacitor", "supply")
 
 #: A mean current below this share of the same current's RMS (its natural
 #: scale: RMS >= |mean|) prints as 0. The exact integrals carry rounding of
@@ -296,6 +296,8 @@ class Summary:
             out[f"{dev}.conduction"] = d[dev].conduction_loss
             if not dev.endswith("body_diode"):
                 out[f"{dev}.switching"] = d[dev].switching_loss
+        if "switch_node" in d:      # the open node's current in its series resistance
+            out["switch_node.resistance"] = d["switch_node"].conduction_loss
         out["inductor.dcr"] = d["inductor"].conduction_loss
         if d["inductor"].core_loss is not None:
             out["inductor.core"] = d["inductor"].core_loss

@@ -92,11 +92,15 @@ class Switching:
     ``dead_time = (falling, rising)``: ``falling`` follows high-side turn-off,
     ``rising`` precedes high-side turn-on. Dead times apply to synchronous
     stages only; an asynchronous stage has no low-side gate.
+    ``node_resistance`` [ohm] is the series resistance of the switch node's
+    capacitance (the parts' ``coss`` ESR and the loop's resistance): it damps
+    the dead-time swings and the DCM ring while the node is open.
     """
 
     frequency: float
     strategy: str
     dead_time: tuple[float, float] = (0.0, 0.0)
+    node_resistance: float = 0.0
 
     def __post_init__(self):
         _positive("switching.frequency", self.frequency, "Hz")
@@ -106,6 +110,7 @@ class Switching:
                                 self.dead_time)
         for i, td in enumerate(self.dead_time):
             _non_negative(f"switching.dead_time[{i}]", td, "s")
+        _non_negative("switching.node_resistance", self.node_resistance, "ohm")
 
     @property
     def period(self):

@@ -7,7 +7,7 @@ prefix and the unit (``"2.2 uH"``, ``"500 kHz"``; see :mod:`bucksim.model.units`
     schema = 1
     title = "..."
     [supply]            voltage, resistance = 0, steps = [{time, voltage}, ...]
-    [switching]         frequency, strategy, dead_time = [falling, rising]
+    [switching]         frequency, strategy, dead_time = [falling, rising], node_resistance
     [inductor]          inductance, dcr = 0, core = {k, alpha, beta, volume, turns, area}
     [output_capacitor]  capacitance, esr = 0
     [high_side]         rds_on, body_diode = {vf, r, qrr, tau, qrr_current}, rise_time,
@@ -58,7 +58,7 @@ TOP_KEYS = ("schema", "title", "supply", "switching", "inductor", "output_capaci
             "high_side", "low_side", "load", "control", "run")
 SUPPLY_KEYS = ("voltage", "resistance", "steps")
 SUPPLY_STEP_KEYS = ("time", "voltage")
-SWITCHING_KEYS = ("frequency", "strategy", "dead_time")
+SWITCHING_KEYS = ("frequency", "strategy", "dead_time", "node_resistance")
 INDUCTOR_KEYS = ("inductance", "dcr", "core")
 CORE_KEYS = ("k", "alpha", "beta", "volume", "turns", "area")
 CAPACITOR_KEYS = ("capacitance", "esr")
@@ -231,7 +231,8 @@ def _switching(t):
     dead_time = tuple(parse_quantity(v, "s", f"switching.dead_time[{i}]")
                       for i, v in enumerate(dead_time))
     return parts.Switching(frequency=t.quantity("frequency", "Hz"),
-                           strategy=t.string("strategy"), dead_time=dead_time)
+                           strategy=t.string("strategy"), dead_time=dead_time,
+                           node_resistance=t.quantity("node_resistance", "ohm", 0.0))
 
 
 def _inductor(t):
@@ -245,8 +246,7 @@ def _inductor(t):
 
 
 def _capacitor(t):
-    return parts.Capacitor(capacitance=t.quantity("capacitance", "F"),
-                           esr=t.quantity("esr", "ohm", 0.0))
+    return parts.Capacitor(t.quantity("capacitance", "F"), t.quantity("esr", "ohm", 0.0))
 
 
 def _diode(t):
@@ -387,7 +387,8 @@ def scenario_to_dict(scenario):
     return {
         "schema": SCHEMA, "title": s.title, "supply": supply,
         "switching": {"frequency": s.switching.frequency, "strategy": s.switching.strategy,
-                      "dead_time": list(s.switching.dead_time)},
+                      "dead_time": list(s.switching.dead_time),
+                      "node_resistance": s.switching.node_resistance},
         "inductor": inductor,
         "output_capacitor": {"capacitance": s.output_capacitor.capacitance,
                              "esr": s.output_capacitor.esr},

@@ -29,24 +29,23 @@ LOW          -Rds_ls iL                              low-side channel: iL
 LOW_DIODE    -Vf_ls - r_ls iL (iL > 0)               low-side diode: iL
 HIGH_DIODE   Vin + Vf_hs - (Rs + r_hs) iL (iL < 0)   high-side body diode: -iL
 IDLE         vo (iL = 0, held)                       none
-OPEN         vn (the node capacitance's voltage)     none
+OPEN         vn - Rn iL (vn: Cn's voltage)            Cn and its resistance: iL
 ===========  ======================================  ==========================
 
 The switch node's capacitance ``Cn`` (high-side ``coss`` plus the low-side
-MOSFET's ``coss`` or the freewheel diode's ``cj``) makes the node a state
-``vn`` whenever nothing conducts (``OPEN``: dead times, the DCM idle
-interval, the asynchronous off-time once the diode stops):
-``Cn vn' = -iL``, ``L iL' = vn - vo - DCR iL``. A body diode (or the
-freewheel diode) starts conducting when ``vn`` reaches its clamp, ``-Vf_ls
-- r_ls iL`` or ``Vin + Vf_hs - (Rs + r_hs) iL``, where the clamped node
-voltage of the table above equals ``vn``: an event on the analytic solution,
-and the state stays continuous. While a channel or diode conducts the node
-is algebraic (the table) and ``vn`` is not integrated (its row is zero; the
-cycle loop sets it to the node voltage whenever the node opens). A channel
-that closes on the node at another voltage moves the node's charge through
-itself at once (:mod:`bucksim.analysis.edges` books that energy). Without
-node capacitance (``Cn = 0``) the node jumps: the stage idles in ``IDLE``
-and the states are ``[iL, vC]`` alone, as before.
+MOSFET's ``coss`` or the freewheel diode's ``cj``, in series with
+``switching.node_resistance`` ``Rn``) makes its voltage a state ``vn`` whenever
+nothing conducts (``OPEN``: dead times, the DCM idle interval, the asynchronous
+off-time once the diode stops): ``Cn vn' = -iL``, ``L iL' = vn - (Rn + DCR) iL
+- vo``. A body diode (or the freewheel diode) starts conducting when the node
+reaches its clamp, ``-Vf_ls - r_ls iL`` or ``Vin + Vf_hs - (Rs + r_hs) iL``: an
+event on the analytic solution, the state continuous. While a channel or diode
+conducts the node is algebraic (the table), ``vn`` is not integrated (its row is
+zero; the cycle loop sets it to the node voltage whenever the node opens), and
+a channel that closes on the node at another voltage moves the node's charge
+through itself at once (:mod:`bucksim.analysis.edges` books that energy).
+Without node capacitance the node jumps: the stage idles in ``IDLE`` and the
+states are ``[iL, vC]`` alone.
 
 Analog closed loop (``control.implementation = "analog"``): the compensator
 ``w' = Ac w + Bc e``, ``u = Cc w + Dc e`` (:func:`bucksim.model.compensator.analog_realization`)
@@ -115,17 +114,9 @@ def current_reverses(il_min: float, il_max: float) -> bool:
 
 
 def zero_current_states(strategy: str) -> frozenset[int]:
-    """Conduction states that end when the inductor current reaches zero.
-
-    Parameters
-    ----------
-    strategy : str
-        ``switching.strategy``, one of :data:`bucksim.model.parts.STRATEGIES`.
-
-    Returns
-    -------
-    frozenset of int
-        ``{LOW_DIODE, HIGH_DIODE}``, and ``LOW`` too in diode emulation.
+    """Conduction states that end when the inductor current reaches zero: for
+    ``strategy`` (``switching.strategy``), ``{LOW_DIODE, HIGH_DIODE}``, and ``LOW``
+    too in diode emulation.
 
     Notes
     -----
@@ -239,6 +230,8 @@ class Stage:
         self.L, self.dcr = ind.inductance, ind.dcr
         self.C, self.esr = cap.capacitance, cap.esr
         self.rs = scenario.supply.resistance
+        #: series resistance of the node's capacitance (acts while the node is open)
+        self.r_node = scenario.switching.node_resistance if self.node else 0.0
         self.rds_hs = hs.rds_on
         self.vf_hs, self.r_hs = hs.body_diode.vf, hs.body_diode.r
         if isinstance(ls, Mosfet):
@@ -330,8 +323,9 @@ class Stage:
         if not self.node:
             raise ValueError("the node has no capacitance: it has no clamp events")
         vin = self.levels[level].vin
-        low = self._embed(np.array([self.r_ls, 0.0, self.vf_ls]), vn=1.0)
-        high = self._embed(np.array([-(self.rs + self.r_hs), 0.0, vin + self.vf_hs]), vn=-1.0)
+        rn = self.r_node     # the open node's voltage is vn - rn iL (vn: its capacitance's)
+        low = self._embed(np.array([self.r_ls - rn, 0.0, self.vf_ls]), vn=1.0)
+        high = self._embed(np.array([rn - self.rs - self.r_hs, 0.0, vin + self.vf_hs]), vn=-1.0)
         return low, high
 
     def initial_state(self, x0) -> np.ndarray:
@@ -379,8 +373,8 @@ class Stage:
         if k == IDLE or (k == OPEN and not self.node):
             di = np.zeros(3)  # iL is held at exactly zero (OPEN is unused without Cn)
         elif k == OPEN:
-            # L iL' = vn - vo - DCR iL, Cn vn' = -iL (the open node)
-            di = (-vo - np.array([self.dcr, 0.0, 0.0])) / self.L
+            # L iL' = vn - rn iL - vo - DCR iL, Cn vn' = -iL (the open node)
+            di = (-vo - np.array([self.dcr + self.r_node, 0.0, 0.0])) / self.L
             di_vn = 1.0 / self.L
             if self.node:
                 dvn_row = np.array([-1.0 / cn, 0.0, 0.0])
@@ -421,7 +415,7 @@ class Stage:
         if name in ("u", "vref"):
             return self._controller_signal(name, system)
         if name == "vsw" and self.node and self.split_id(system)[1] == OPEN:
-            return self._embed(np.zeros(3), vn=1.0)
+            return self._embed(np.array([-self.r_node, 0.0, 0.0]), vn=1.0)
         return self._embed(self._signal3(name, system))
 
     def _controller_signal(self, name: str, system: int) -> np.ndarray:
@@ -467,6 +461,8 @@ class Stage:
             return il if k == LOW else zero
         if name == "low_side_body_diode":
             return il if (k == LOW_DIODE and not asynchronous) else zero
+        if name == "switch_node":    # the open node's current (its resistance's loss)
+            return il if k == OPEN and self.node else zero
         raise KeyError(f"unknown signal {name!r}")
 
     def device_models(self):
@@ -483,7 +479,7 @@ class Stage:
         else:
             out += [("low_side", self.rds_ls, 0.0),
                     ("low_side_body_diode", self.r_ls, self.vf_ls)]
-        return out
+        return out + ([("switch_node", self.r_node, 0.0)] if self.r_node > 0 else [])
 
     def stored_energy(self, x: np.ndarray, vsw: float = 0.0, level: int = 0) -> float:
         """Energy in L, C and the node capacitance [J] for state ``x = [iL, vC, ...]``
@@ -497,4 +493,4 @@ class Stage:
 #: Unit of each signal and state a run can evaluate.
 UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw": "V",
          "vin": "V", "high_side": "A", "low_side": "A", "high_side_body_diode": "A",
-         "low_side_body_diode": "A", "t": "s", "u": "V", "vref": "V", "vn": "V"}
+         "low_side_body_diode": "A", "switch_node": "A", "t": "s", "u": "V", "vref": "V", "vn": "V"}

@@ -63,8 +63,6 @@ from bucksim.studies.profile import (
 )
 from bucksim.studies.reverse import CAUTION, cycle_mean
 
-STRATEGY_ORDER = STRATEGIES
-
 # ----------------------------------------------------------------------------- strategies
 
 def strategy_scenario(scenario, strategy: str, diode: Diode | None = None):
@@ -400,7 +398,7 @@ class Comparison:
 
 
 def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
-            regulate=True, strategies=STRATEGY_ORDER, log=False) -> Comparison:
+            regulate=True, strategies=STRATEGIES, log=False) -> Comparison:
     """Efficiency and losses of the three strategies across load, on the same parts.
 
     Parameters
@@ -434,8 +432,8 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
     """
     require_open_loop(scenario)
     for s in strategies:
-        if s not in STRATEGY_ORDER:
-            raise ScenarioError("strategies", "must name only " + ", ".join(STRATEGY_ORDER), s)
+        if s not in STRATEGIES:
+            raise ScenarioError("strategies", "must name only " + ", ".join(STRATEGIES), s)
     levels = parse_levels(loads, scenario, "loads")
     variants = {s: strategy_scenario(scenario, s, diode) for s in strategies}
     if "asynchronous" in variants:
