@@ -30,7 +30,8 @@ STRATEGY_STYLE = {"asynchronous": ("#8c5e34", "s", "-"),
                   "forced-pwm": ("#3b6ea5", "o", "-"),
                   "diode-emulation": ("#4f9d69", "^", "--")}
 ITEM_COLOURS = ("#3b6ea5", "#9cc3e6", "#7b5ea7", "#8c5e34", "#c8553d", "#f0a58f",
-                "#e4c35b", "#4f9d69", "#a8d5a2", "#8c8c8c", "#5b5b5b")
+                "#e4c35b", "#4f9d69", "#a8d5a2", "#d9a0c0", "#8c8c8c", "#5b5b5b",
+                "#2f2f2f")
 SIGNAL_NAMES = {"iL": "inductor current iL", "vsw": "switch node vsw", "vo": "output vo",
                 "vC": "capacitor voltage vC", "io": "load current io",
                 "ic": "capacitor current iC", "iin": "supply current iin",
