@@ -33,7 +33,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import clear_between, growth, open_node_clear
+from bucksim.engine.bounds import clear_between, growth
 from bucksim.engine.kernels import (
     ASYNC,
     CONTROL_ANALOG,
@@ -57,7 +57,9 @@ from bucksim.engine.kernels import (
     find_zero,
 )
 from bucksim.engine.loop_parts import _compensate, _dot, _needs_search, newton_crossing
-from bucksim.engine.open_node import BAND_DOWN, BAND_UP, band_edge_event, band_of, step_band
+from bucksim.engine.open_node import BAND_DOWN, BAND_UP, band_edge_event, band_of
+from bucksim.engine.open_node import open_stretch as _stretch
+from bucksim.engine.open_node import step_band as _step_band
 from bucksim.engine.status import STATUS_DIVERGED, STATUS_FULL, STATUS_OK
 
 __all__ = ["CONTROL_OPEN", "CONTROL_DIGITAL", "CONTROL_ANALOG", "N_PHASES", "run_cycles"]
@@ -76,18 +78,14 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
     """Simulate periods ``c_start .. c_stop-1`` from state ``z`` (updated in place).
 
     ``tab``, ``prog``, ``ctl``, ``cst``, ``buf``: the records of
-    :mod:`bucksim.engine.records` (``cst``: updated in place, so that a
-    caller continues in the next chunk; ``buf``: segments from row 0, and
-    each period's on-time / T and control value, ``nan`` in open loop).
-    ``z``: the augmented state at ``c_start * T``; ``level``: the operating
-    level there. Returns ``(n_segments, level, status, t)``, ``status`` from
-    :mod:`bucksim.engine.status` (``STATUS_FULL``: the buffer filled up).
-
-    Analog anti-windup (``n_modes = 2``): the integrator state ``z[i_w]``
-    holds while it sits at ``w_lo`` or ``w_hi`` and the error ``Ce[level] . z``
-    pushes it further out (the stage's second copy of each system, with the
-    integrator's row zeroed). Reaching a limit and the error changing sign
-    are events located like the others.
+    :mod:`bucksim.engine.records` (``cst`` updated in place so that a caller
+    continues in the next chunk; ``buf``: segments from row 0, each period's
+    on-time / T and control value). ``z``: the augmented state at ``c_start
+    * T``; ``level``: the operating level there. Returns ``(n_segments,
+    level, status, t)`` (:mod:`bucksim.engine.status`). Analog anti-windup
+    (``n_modes = 2``): ``z[i_w]`` holds at ``w_lo``/``w_hi`` while the error
+    ``Ce[level] . z`` pushes it further (the stage's held copy of each
+    system); reaching a limit and the error's sign change are events.
     """
     # the records opened once: the loop then works on plain arrays (module notes)
     Ms, E, h, guards, taylor_gap = tab.Ms, tab.E, tab.h, tab.guards, tab.taylor_gap
@@ -182,15 +180,13 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
         t_off, tripped, p = tc, False, 0
         while p < N_PHASES:
             # span, gate and rules of phase p
-            ph_cmp = False
-            ph_lim = np.inf
+            ph_cmp, ph_lim = False, np.inf
             if p == 0:
                 # blanking: neither the comparator nor the limit acts (module notes)
                 gate, t_ph, t_ph_end = GATE_HIGH, tc, tc + min(blank, t_on_max)
             elif p == 1:
                 gate, t_ph, t_ph_end = GATE_HIGH, tc + blank, tc + t_on_max
-                ph_cmp = cmp_on
-                ph_lim = lim_live
+                ph_cmp, ph_lim = cmp_on, lim_live
             elif p == 2:
                 if not tripped:
                     t_off = tc + t_on_max
@@ -267,6 +263,15 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                     for i in range(m):
                         zst[i] = z[i]
                 d = t_stop - t
+                if cond == OPEN and d > gs and (search_ls or search_hs):
+                    # a ring of many lobes: the energy bound clears it at once; a long
+                    # stretch it cannot clear is cut at half a ring (engine/open_node)
+                    dn, lo_ok, hi_ok = _stretch(open_coef[level * n_bands + band], zs, i_vn,
+                                                d, Cls[level], Chs[level], search_ls, search_hs)
+                    search_ls = search_ls and not lo_ok
+                    search_hs = search_hs and not hi_ok
+                    if dn < d:
+                        t_stop, d = t + dn, dn
                 if whole_ok and t == t_ph and t_stop == t_ph_end:
                     apply(P, s, p, z, tmp)
                 else:
@@ -313,12 +318,6 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                                                  k3vn[0, s], taylor_gap, tmp, trial, zw,
                                                  poly, bnd, erow)
                     zl, tl, dl = (zh, tb, tb - t) if tb >= 0.0 else (z, t_stop, d)
-                    if dl > gs and (search_ls or search_hs):
-                        # a ring of many lobes: the energy bound clears it at once
-                        lo_ok, hi_ok = open_node_clear(open_coef[level * n_bands + band], zs,
-                                                       i_vn, dl, Cls[level], Chs[level])
-                        search_ls = search_ls and not lo_ok
-                        search_hs = search_hs and not hi_ok
                     if search_ls and _needs_search(Ms, s, Cls[level], kls[level, s], zs, zl,
                                                    tl, dl, gs, 1.0, 0.0, 0.0, t, bnd):
                         # a slew at high current: Newton, proven; else the general search
@@ -462,7 +461,7 @@ def run_cycles(tab, prog, ctl, cst, z, level, c_start, c_stop, buf):
                         if clamp == BAND_DOWN or clamp == BAND_UP:
                             # the next band's system from here, the node on the edge
                             z[i_vn] = edges[level, band if clamp == BAND_DOWN else band + 1]
-                            band = step_band(edges, level, band, clamp)
+                            band = _step_band(edges, level, band, clamp)
                             band_known = True
                             continue
                         # a clamp: its diode conducts (unless the node only touched it)

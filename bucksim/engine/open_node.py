@@ -24,7 +24,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import growth, reach
+from bucksim.engine.bounds import growth, open_node_clear, reach
 from bucksim.engine.kernels import find_zero
 from bucksim.engine.loop_parts import _dot, _needs_search, newton_crossing
 
@@ -140,3 +140,21 @@ def _leaving(Ms, s, row, krow, z0, d, bnd):
         return False
     B = krow * vel * growth(bnd[s, m - 1] * d) * (1.0 + 1e-12)
     return reach(f0, s0, B) > d
+
+
+@njit(cache=True)
+def open_stretch(coef, z, i_vn, d, low, high, search_ls, search_hs):
+    """``(length, low_clear, high_clear)`` for an open segment of ``d`` [s] from
+    state ``z``: the ring-energy bound (:func:`~bucksim.engine.bounds.open_node_clear`)
+    over ``d``; where it does not clear a clamp that is searched (``search_ls``,
+    ``search_hs``) and ``d`` is longer than a ring period, over half a ring
+    period instead, the length to propagate. The bound does not decay with the
+    ring (it drops the damping); taken again from half a period on, a damped
+    ring's smaller energy clears the rest of a long idle interval at once, where
+    a search would march through it in steps of a fraction of the ring period."""
+    lo_ok, hi_ok = open_node_clear(coef, z, i_vn, d, low, high)
+    half = np.pi * np.sqrt(coef[0] * coef[1])
+    if ((lo_ok or not search_ls) and (hi_ok or not search_hs)) or d <= 2.0 * half:
+        return d, lo_ok, hi_ok
+    lo_h, hi_h = open_node_clear(coef, z, i_vn, half, low, high)
+    return half, lo_h, hi_h
