@@ -1,9 +1,9 @@
 """The closed-form (textbook) loss budget of a buck power stage.
 
 :func:`estimate` solves the averaged DC operating point in continuous
-conduction, then evaluates each loss item with the formula a designer would
-write by hand: conduction and switching as in [1]_, core loss by the iGSE for
-a triangular flux [2]_, the edge items as common practice [3]_.
+conduction (in DCM: :mod:`bucksim.analysis.budget_dcm`), then evaluates each
+item with the formula a designer would write by hand: conduction and switching
+as in [1]_, core loss by the iGSE [2]_, the edge items as common practice [3]_.
 :func:`bucksim.crosscheck` compares these items with the waveform integrals.
 
 References
@@ -23,6 +23,17 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from bucksim.analysis.budget_dcm import (
+    dcm_conduction,
+    dcm_core,
+    dcm_point,
+    dcm_switching,
+    lc_dead_time_integral,
+    lc_swing,
+    lc_time_to,
+    stored_charge,
+    transfer,
+)
 from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.model.parts import Mosfet
 from bucksim.model.stage import node_capacitance
@@ -30,7 +41,8 @@ from bucksim.model.stage import node_capacitance
 
 @dataclass(frozen=True)
 class BudgetItem:
-    """One line of the loss budget: ``value`` [W] from ``formula``."""
+    """One line of the loss budget: ``value`` [W] from ``formula``, its ``source``,
+    and what the formula ``neglects`` (the known reason it differs from the waveforms)."""
 
     key: str
     device: str
@@ -38,6 +50,7 @@ class BudgetItem:
     value: float
     formula: str
     source: str
+    neglects: str = ""
 
 
 @dataclass(frozen=True)
@@ -78,7 +91,8 @@ class LossBudget:
     def to_dict(self) -> dict:
         return {"operating_point": dict(self.operating_point),
                 "items": {it.key: {"device": it.device, "kind": it.kind, "value": it.value,
-                                   "formula": it.formula, "source": it.source}
+                                   "formula": it.formula, "source": it.source,
+                                   "neglects": it.neglects}
                           for it in self.items},
                 "total_loss": self.total_loss, "efficiency": self.efficiency}
 
@@ -100,23 +114,32 @@ def operating_point(scenario) -> dict:
     with ``D_ls = 1 - D - D_dead`` and each dead-time edge ``d_e = t_e fs``
     carried by the low-side body diode when its edge current ``I_e`` is
     positive (peak current at the falling edge, valley at the rising edge)
-    or by the high-side body diode (``+Vin + Vf``) when negative. The ripple
+    or by the high-side body diode (``+Vin + Vf``) when negative; with node
+    capacitance a negative valley's rising dead time averages the node of the
+    lossless L-Cn swing up to that clamp
+    (:func:`~bucksim.analysis.budget_dcm.lc_dead_time_integral`). The ripple
     uses the on-time slope ``dI = (Vin - (Rs + Rhs + DCR) Io - Vo) D / (L fs)``.
     Solved by fixed-point iteration (the edge currents depend on ``Vo``).
     In closed loop the duty is the one that puts ``Vo`` on ``control.reference``
     (bisection: ``Vo`` rises monotonically with ``D``).
     """
+    return _at_duty(scenario, _operating_point)
+
+
+def _at_duty(scenario, point) -> dict:
+    """``point(scenario, D)`` at the open-loop duty, or in closed loop at the duty that
+    puts ``Vo`` on ``control.reference`` (bisection: ``Vo`` rises with ``D``)."""
     if scenario.control.duty is not None:
-        return _operating_point(scenario, scenario.control.duty)
+        return point(scenario, scenario.control.duty)
     target = scenario.control.reference
     lo, hi = 0.0, scenario.control.max_duty
     for _ in range(80):
         mid = 0.5 * (lo + hi)
-        if _operating_point(scenario, mid)["vo"] < target:
+        if point(scenario, mid)["vo"] < target:
             lo = mid
         else:
             hi = mid
-    return _operating_point(scenario, 0.5 * (lo + hi))
+    return point(scenario, 0.5 * (lo + hi))
 
 
 def _operating_point(scenario, D: float) -> dict:
@@ -143,11 +166,15 @@ def _operating_point(scenario, D: float) -> dict:
         a0 = D * vin  # constant part
         a1 = D * (rs + hs.rds_on) + d_ls * (ls.rds_on if sync else 0.0) + d_diode * r_l + dcr
         a0 -= d_diode * vf_l
-        for td, i_edge in ((tf, peak), (tr, valley)):
+        for td, i_edge, rising in ((tf, peak, False), (tr, valley, True)):
             de = td * fs
             if i_edge >= 0:
                 a0 -= de * vf_l
                 a1 += de * r_l
+            elif cn > 0 and rising and sync and td > 0:
+                # the node swings up resonantly and may reach the high-side clamp (derived)
+                a0 += fs * lc_dead_time_integral(L, cn, vo, -ls.rds_on * i_edge, i_edge,
+                                                 vin + vf_h, td)
             else:
                 a0 += de * (vin + vf_h)
                 a1 += de * (rs + r_h)
@@ -165,53 +192,63 @@ def _operating_point(scenario, D: float) -> dict:
         vo = vo_new
     return {"duty": D, "vin": vin, "vo": vo, "io": io, "ripple": ripple,
             "peak": io + ripple / 2, "valley": io - ripple / 2,
-            "dead_time_share": (tf + tr) * fs, "frequency": fs}
+            "dead_time_share": (tf + tr) * fs, "frequency": fs, "mode": "ccm"}
 
 
-def estimate(scenario) -> LossBudget:
-    """Closed-form loss budget at the scenario's CCM operating point.
+def estimate(scenario, mode: str | None = None) -> LossBudget:
+    """Closed-form loss budget at the scenario's operating point, CCM or DCM.
 
     Parameters
     ----------
     scenario : Scenario
-        Open-loop scenario (``control.duty``).
+    mode : {None, "ccm"}
+        None: DCM closed forms where the stage blocks reversal and the CCM
+        ripple formula's valley is below zero (:func:`budget_point`), else CCM.
+        ``"ccm"``: the CCM closed forms whatever the mode (to see what they say).
 
     Returns
     -------
     LossBudget
-        Items (``key``: formula), all in [W]:
+        Items (``key``: formula; each item names its formula, source and what
+        it neglects), all in [W]. In CCM (``Io``, ripple ``dI``, ``Dd`` the
+        dead-time share; ``I_e`` the edge current, ``t_e`` the dead time less
+        the node's swing):
 
-        - ``high_side.conduction``: ``Rhs D (Io^2 + dI^2/12)``
+        - ``high_side.conduction``: ``Rhs D (Io^2 + dI^2/12)``; ``supply``: ``Rs`` the same
         - ``low_side.conduction``: ``Rls (1 - D - Dd)(Io^2 + dI^2/12)``
           (synchronous) or ``Vf Io (1-D) + r (1-D)(Io^2 + dI^2/12)`` (diode)
-        - ``low_side_body_diode.conduction``: ``sum_e (Vf I_e + r I_e^2) t_e fs``
-          over dead-time edges with positive current (``2 Vf Io td fs`` for
-          equal edges at ``I_e = Io``: common practice)
-        - ``high_side_body_diode.conduction``: the same for negative edges
-        - ``inductor.conduction``: ``DCR (Io^2 + dI^2/12)``
-        - ``output_capacitor.conduction``: ``ESR dI^2/12``
-        - ``supply.conduction``: ``Rs D (Io^2 + dI^2/12)``
-        - ``switching.overlap``: ``0.5 Vin I_valley tr fs`` plus the turn-off
-          energy at ``I_peak`` (``0.5 Vin I tf``, snubbed by the node capacitance
-          at low current: :func:`bucksim.analysis.edges.snubbed_turn_off`)
-        - ``switching.coss``: the node's charge moved by closing switches,
-          ``0.5 Cn ((Vin + Vf)^2 + Vf^2) fs`` in CCM with dead times (see
-          :func:`_node_charge`; ``Cn`` from :func:`bucksim.model.stage.node_capacitance`)
-        - ``switching.recovery``: ``Qrr Vin fs`` when a diode carries current
-          at high-side turn-on
+        - ``low_side_body_diode`` / ``high_side_body_diode.conduction``:
+          ``sum_e (Vf |I_e| + r I_e^2) t_e fs`` over positive / negative edges
+          (:func:`_dead_times`)
+        - ``inductor.conduction``: ``DCR (Io^2 + dI^2/12)``; ``output_capacitor``: ``ESR dI^2/12``
+        - ``switching.overlap``: ``0.5 Vin I_valley t_rise fs`` plus the turn-off
+          energy at ``I_peak`` (:func:`bucksim.analysis.edges.snubbed_turn_off`)
+        - ``switching.coss``: the node's charge moved by closing switches
+          (:func:`_node_charge`; ``Cn`` from :func:`bucksim.model.stage.node_capacitance`)
+        - ``switching.recovery``: ``Qrr Vin fs``, or charge control (:func:`_recovered_ccm`)
         - ``switching.gate``: ``(Qg_hs Vg_hs + Qg_ls Vg_ls) fs``
         - ``inductor.core``: iGSE for triangular flux,
           ``V k_i dB^beta f^alpha (D^(1-alpha) + (1-D)^(1-alpha))``
 
+        In DCM the same keys from the triangular pulses of
+        :mod:`bucksim.analysis.budget_dcm` (``dcm_conduction``, ``dcm_switching``,
+        ``dcm_core``).
+
     Notes
     -----
-    Every item assumes continuous conduction with a triangular inductor
-    current; :func:`bucksim.crosscheck` says where a simulation departs
-    from that (DCM, reverse current, large ripple).
+    The edge items use the edge currents of the closed-form operating point
+    (ripple formulas), never the simulated ones; :func:`bucksim.crosscheck`
+    compares them with the waveforms.
     """
     from bucksim.model.scenario import require_scenario
     require_scenario(scenario, "estimate")
-    op = operating_point(scenario)
+    if mode not in (None, "ccm"):
+        raise ValueError(f"estimate: mode must be None or 'ccm', got {mode!r}")
+    op = budget_point(scenario) if mode is None else operating_point(scenario)
+    if op["mode"] == "dcm":
+        rows = dcm_conduction(scenario, op) + dcm_switching(scenario, op)
+        core = dcm_core(scenario, op)
+        return LossBudget(op, [BudgetItem(*row) for row in rows + ([core] if core else [])])
     items = _conduction_items(scenario, op) + _switching_items(scenario, op)
     core = _core_item(scenario, op)
     if core is not None:
@@ -219,58 +256,139 @@ def estimate(scenario) -> LossBudget:
     return LossBudget(op, items)
 
 
+def budget_point(scenario) -> dict:
+    """The operating point the budget is evaluated at: CCM (:func:`operating_point`),
+    or DCM (:func:`bucksim.analysis.budget_dcm.dcm_point`) where the stage blocks
+    reversal and the CCM ripple formula's valley is below zero; ``mode`` says which.
+    In closed loop, the duty that puts ``Vo`` on the reference (bisection)."""
+    return _at_duty(scenario, _point)
+
+
+def _point(scenario, D: float) -> dict:
+    op = _operating_point(scenario, D)
+    if scenario.switching.strategy != "forced-pwm" and op["valley"] < 0:
+        dcm = dcm_point(scenario, D)
+        if dcm is not None:
+            return dcm
+    return op
+
+
 _EM = "Erickson & Maksimovic 3rd ed. ch. 3 (conduction with ripple)"
 _CP = "common practice"
+_RAMP = "straight ramps with first-order drops, centred on Io"
 
 
 def _conduction_items(scenario, op) -> list[BudgetItem]:
     """Conduction losses [W] of the switches, diodes, inductor, capacitor and supply."""
     D, fs, io, dI = op["duty"], op["frequency"], op["io"], op["ripple"]
-    pk, vl = op["peak"], op["valley"]
     hs, ls = scenario.high_side, scenario.low_side
     sync = isinstance(ls, Mosfet)
     tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
     ms = io * io + dI * dI / 12.0  # mean square of the triangle around Io
     EM, CP = _EM, _CP
     items = [BudgetItem("high_side.conduction", "high_side", "conduction",
-                        hs.rds_on * D * ms, "Rds_hs D (Io^2 + dI^2/12)", EM)]
+                        hs.rds_on * D * ms, "Rds_hs D (Io^2 + dI^2/12)", EM, _RAMP)]
     if sync:
         d_ls = 1.0 - D - (tf + tr) * fs
         items.append(BudgetItem("low_side.conduction", "low_side", "conduction",
-                                ls.rds_on * d_ls * ms, "Rds_ls (1 - D - Dd)(Io^2 + dI^2/12)", EM))
+                                ls.rds_on * d_ls * ms, "Rds_ls (1 - D - Dd)(Io^2 + dI^2/12)", EM,
+                                _RAMP))
         bd_l, bd_h = ls.body_diode, hs.body_diode
-        cn = node_capacitance(scenario)
-        p_l = p_h = 0.0
-        # a body diode conducts once the node capacitance has swung to its clamp:
-        # at constant current I that takes Cn dV / I (derived)
-        swings = (op["vin"] - hs.rds_on * pk + bd_l.vf + bd_l.r * pk,
-                  bd_l.vf + (bd_l.r - ls.rds_on) * vl)
-        for td, i_e, dv in ((tf, pk, swings[0]), (tr, vl, swings[1])):
-            if i_e >= 0:
-                td = max(td - cn * dv / i_e, 0.0) if i_e > 0 else td
-                p_l += (bd_l.vf * i_e + bd_l.r * i_e * i_e) * td * fs
-            else:
-                p_h += (bd_h.vf * -i_e + bd_h.r * i_e * i_e) * td * fs
+        e = _dead_times(scenario, op)
+        p_l = sum((bd_l.vf * i + bd_l.r * i * i) * t * fs
+                  for t, i in (e["falling"] or (0.0, 0.0), e["rising"] or (0.0, 0.0)))
+        t_h, i_h = e["high_side"] or (0.0, 0.0)
+        p_h = (bd_h.vf * -i_h + bd_h.r * i_h * i_h) * t_h * fs
         items.append(BudgetItem("low_side_body_diode.conduction", "low_side_body_diode",
                                 "conduction", p_l,
                                 "sum over edges with I_e > 0 of (Vf I_e + r I_e^2) t_e fs, "
-                                "t_e = t_dead - Cn dV / I_e (the node's swing first)", CP))
+                                "t_e = t_dead - Cn dV / I_e (the node's swing first)", CP,
+                                "the swing as a linear slew at the edge current"))
         items.append(BudgetItem("high_side_body_diode.conduction", "high_side_body_diode",
                                 "conduction", p_h,
-                                "sum over edges with I_e < 0 of (Vf |I_e| + r I_e^2) t_e fs", CP))
+                                "sum over edges with I_e < 0 of (Vf |I_e| + r I_e^2) t_e fs, "
+                                "t_e = t_dead - the lossless L-Cn swing's time to Vin + Vf",
+                                CP, "the swing's resistive damping"))
     else:
         items.append(BudgetItem("low_side.conduction", "low_side", "conduction",
                                 ls.vf * io * (1 - D) + ls.r * (1 - D) * ms,
-                                "Vf Io (1-D) + r (1-D)(Io^2 + dI^2/12)", CP))
+                                "Vf Io (1-D) + r (1-D)(Io^2 + dI^2/12)", CP, _RAMP))
     items.append(BudgetItem("inductor.conduction", "inductor", "conduction",
-                            scenario.inductor.dcr * ms, "DCR (Io^2 + dI^2/12)", EM))
+                            scenario.inductor.dcr * ms, "DCR (Io^2 + dI^2/12)", EM, _RAMP))
     items.append(BudgetItem("output_capacitor.conduction", "output_capacitor", "conduction",
                             scenario.output_capacitor.esr * dI * dI / 12.0, "ESR dI^2/12",
-                            "Erickson & Maksimovic 3rd ed. ch. 2 (triangular ripple)"))
+                            "Erickson & Maksimovic 3rd ed. ch. 2 (triangular ripple)",
+                            "the ripple current's share in the load (all of it taken into C)"))
     if scenario.supply.resistance > 0:
         items.append(BudgetItem("supply.conduction", "supply", "conduction",
-                                scenario.supply.resistance * D * ms, "Rs D (Io^2 + dI^2/12)", EM))
+                                scenario.supply.resistance * D * ms, "Rs D (Io^2 + dI^2/12)", EM,
+                                _RAMP))
     return items
+
+
+def _dead_times(scenario, op) -> dict:
+    """Body-diode conduction ``(t_e [s], I_e [A])`` in each dead time (None where none),
+    and the node at high-side turn-on ``v_on`` [V] (None: a diode holds it).
+
+    A body diode conducts once the node capacitance has swung to its clamp: at
+    constant current ``I`` that takes ``Cn dV / I`` (derived). A negative valley
+    swings the node up resonantly (:func:`~bucksim.analysis.budget_dcm.lc_swing`):
+    the high-side body diode conducts only when the crest reaches ``Vin + Vf``.
+    """
+    hs, ls = scenario.high_side, scenario.low_side
+    bd_l, bd_h = ls.body_diode, hs.body_diode
+    tf, tr = scenario.switching.dead_time
+    cn, L = node_capacitance(scenario), scenario.inductor.inductance
+    vin, vo, pk, vl = op["vin"], op["vo"], op["peak"], op["valley"]
+    out = {"falling": None, "rising": None, "high_side": None, "v_on": None}
+    if pk > 0:
+        dv = vin - hs.rds_on * pk + bd_l.vf + bd_l.r * pk
+        out["falling"] = (max(tf - cn * dv / pk, 0.0), pk)
+    if vl > 0:
+        dv = bd_l.vf + (bd_l.r - ls.rds_on) * vl
+        out["rising"] = (max(tr - cn * dv / vl, 0.0), vl)
+    elif vl < 0 and tr > 0:
+        v0, clamp = -ls.rds_on * vl, vin + bd_h.vf
+        t_c = lc_time_to(L, cn, vo, v0, vl, clamp) if cn > 0 else 0.0
+        if t_c < tr:
+            out["high_side"] = (tr - t_c, lc_swing(L, cn, vo, v0, vl, t_c)[1] if cn > 0 else vl)
+        else:
+            out["v_on"] = lc_swing(L, cn, vo, v0, vl, tr)[0]
+    return out
+
+
+def _recovered_ccm(scenario, op) -> float:
+    """Charge [C] swept out per period when the opposite channels close.
+
+    Fixed ``qrr``: once per period when the low-side diode conducts at
+    high-side turn-on. Charge control (:func:`bucksim.analysis.recovery.recovery_parameters`):
+    ``k q``, ``q`` from ``dq/dt = i - q / tau`` at the dead-time currents
+    (:func:`~bucksim.analysis.budget_dcm.stored_charge`), decaying in between; the
+    high-side body diode's charge (reverse current) decays over ``D T + t_fall``.
+    """
+    from bucksim.analysis.recovery import recovery_parameters
+    ls, hs = scenario.low_side, scenario.high_side
+    sync = isinstance(ls, Mosfet)
+    diode = ls.body_diode if sync else ls
+    tau, k = recovery_parameters(diode)
+    T, D, pk, vl = 1.0 / op["frequency"], op["duty"], op["peak"], op["valley"]
+    tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
+    if tau <= 0.0:
+        return diode.qrr if vl > 0 and (not sync or tr > 0) else 0.0
+    if not sync:
+        return k * stored_charge(0.0, pk, max(vl, 0.0), (1.0 - D) * T, tau)
+    e = _dead_times(scenario, op)
+    t_f, i_f = e["falling"] or (0.0, 0.0)
+    t_r, i_r = e["rising"] or (0.0, 0.0)
+    q = stored_charge(0.0, i_f, i_f, t_f, tau)
+    q = stored_charge(q, 0.0, 0.0, (1.0 - D) * T - tf - t_r, tau)
+    q = k * stored_charge(q, i_r, i_r, t_r, tau)
+    tau_h, k_h = recovery_parameters(hs.body_diode)
+    if e["high_side"] and tau_h > 0:
+        q_h = stored_charge(0.0, -e["high_side"][1], -e["high_side"][1], e["high_side"][0],
+                            tau_h)
+        q += k_h * stored_charge(q_h, 0.0, 0.0, D * T + tf, tau_h)
+    return q
 
 
 def _switching_items(scenario, op) -> list[BudgetItem]:
@@ -287,19 +405,25 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
     overlap = (0.5 * vin * max(vl, 0.0) * hs.rise_time + e_off) * fs
     items = [BudgetItem("switching.overlap", "high_side", "switching", overlap,
                         "(0.5 Vin I_valley t_rise + E_off(I_peak)) fs, E_off = 0.5 Vin I t_fall "
-                        "snubbed by Cn at low current", CP)]
+                        "snubbed by Cn at low current (edges.snubbed_turn_off, derived)", CP,
+                        "the ripple formula's edge currents")]
     coss, formula = _node_charge(scenario, op, hard_on)
     items.append(BudgetItem("switching.coss", "high_side", "switching", coss * fs, formula,
                             "derived (charge moved through a closing switch, Erickson & "
-                            "Maksimovic 3rd ed. ch. 4)"))
-    qrr = ls.body_diode.qrr if sync else ls.qrr
-    diode_at_turn_on = vl > 0 and (not sync or tr > 0)
+                            "Maksimovic 3rd ed. ch. 4)",
+                            "the clamp voltages at the ripple formula's edge currents"))
     items.append(BudgetItem("switching.recovery", "high_side", "switching",
-                            qrr * vin * fs if diode_at_turn_on else 0.0,
-                            "Qrr Vin fs (diode conducting at high-side turn-on)", CP))
+                            _recovered_ccm(scenario, op) * vin * fs,
+                            "Qrr Vin fs (fixed qrr, diode conducting at high-side turn-on), or "
+                            "k q Vin fs, q from dq/dt = i - q/tau at the dead-time currents",
+                            "Erickson & Maksimovic 3rd ed. ch. 4 (charge control; from "
+                            "memory); common practice (fixed Qrr)",
+                            "the diode's current taken constant in each dead time"))
     gate = hs.qg * hs.gate_voltage + (ls.qg * ls.gate_voltage if sync else 0.0)
     items.append(BudgetItem("switching.gate", "gate drive", "switching", gate * fs,
-                            "(Qg_hs Vg_hs + Qg_ls Vg_ls) fs", CP))
+                            "(Qg_hs Vg_hs + Qg_ls Vg_ls) fs", CP,
+                            "nothing: the same charge per turn-on on both sides (checks the "
+                            "count)"))
     return items
 
 
@@ -313,45 +437,46 @@ def _node_charge(scenario, op, hard_on: bool) -> tuple[float, str]:
     ``0.5 Cn (Vin + Vf)^2``; the low side closes on ``-Vf`` too: ``0.5 Cn
     Vf^2``. With no rising (falling) dead time that switch closes on the
     other channel's node voltage, ``0 (Vin)``: ``0.5 Cn Vin^2``. A negative
-    valley current swings the node up during the rising dead time, at most to
+    valley current swings the node up during the rising dead time, its crest
     ``vo + sqrt(vo^2 + (Z I_valley)^2)``, ``Z = sqrt(L / Cn)`` (lossless L-Cn
-    swing, derived): the high side then closes on that voltage, or on a node
-    already clamped at ``Vin`` (full ZVS, no loss).
+    swing, derived; :func:`_dead_times`): the high side then closes on the
+    node the swing has reached at the end of the dead time, or on the node
+    clamped at ``Vin + Vf`` by its body diode (full ZVS, ~``0.5 Cn Vf^2``).
     """
     cn = node_capacitance(scenario)
-    vin, vo, vl = op["vin"], op["vo"], op["valley"]
+    vin, vl = op["vin"], op["valley"]
     ls = scenario.low_side
     sync = isinstance(ls, Mosfet)
     vf = ls.body_diode.vf if sync else ls.vf
     tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
-    if not hard_on and sync and vl < 0:
-        z = math.sqrt(scenario.inductor.inductance / cn) if cn > 0 else 0.0
-        peak = min(vo + math.sqrt(vo * vo + (z * vl) ** 2), vin)
-        return 0.5 * cn * (vin - peak) ** 2, ("0.5 Cn (Vin - v_pk)^2 fs, v_pk = vo + "
-                                              "sqrt(vo^2 + (Z I_valley)^2) (partial ZVS)")
-    if not hard_on:
-        return 0.0, "none: the node swings to Vin before the high side closes"
     r_d = ls.body_diode.r if sync else ls.r
     r_hs = scenario.supply.resistance + scenario.high_side.rds_on
     v_on = vin - r_hs * vl                      # the node once the high side conducts
-    # before it: the low-side channel's node (no rising dead time) or the diode's clamp
-    v_before = -ls.rds_on * vl if (sync and tr == 0) else -(vf + r_d * vl)
-    e_on = _transfer(cn, vin, v_before, v_on)
+    if not hard_on and sync and vl < 0:
+        # the resonant swing's node at turn-on, or the high-side body diode's clamp
+        e = _dead_times(scenario, op)
+        hb = scenario.high_side.body_diode
+        v_before = e["v_on"] if e["high_side"] is None else \
+            vin + hb.vf - (scenario.supply.resistance + hb.r) * e["high_side"][1]
+        formula = ("Cn (v_b - v_a)(V_p - (v_a + v_b)/2) fs per closing switch: the high side "
+                   "from the lossless L-Cn swing's node after the rising dead time (partial "
+                   "ZVS) or the body diode's clamp, the low side ~0.5 Cn Vf^2")
+    elif not hard_on:
+        v_before, formula = v_on, "none: the node swings to Vin before the high side closes"
+    else:
+        # before it: the low-side channel's node (no rising dead time) or the diode's clamp
+        v_before = -ls.rds_on * vl if (sync and tr == 0) else -(vf + r_d * vl)
+        formula = ("Cn (v_b - v_a)(V_p - (v_a + v_b)/2) fs per closing switch: "
+                   "~0.5 Cn (Vin + Vf)^2 at high-side turn-on from the diode "
+                   "(~Vin^2 without rising dead time), ~0.5 Cn Vf^2 at the low "
+                   "side's (~Vin^2 without falling dead time)")
+    e_on = transfer(cn, vin, v_before, v_on)
     e_ls = 0.0
     if sync:
         pk = op["peak"]
         v_ls = -ls.rds_on * pk
-        e_ls = _transfer(cn, 0.0, vin - r_hs * pk if tf == 0 else -(vf + r_d * pk), v_ls)
-    return e_on + e_ls, ("Cn (v_b - v_a)(V_p - (v_a + v_b)/2) fs per closing switch: "
-                         "~0.5 Cn (Vin + Vf)^2 at high-side turn-on from the diode "
-                         "(~Vin^2 without rising dead time), ~0.5 Cn Vf^2 at the low "
-                         "side's (~Vin^2 without falling dead time)")
-
-
-def _transfer(cn: float, v_path: float, v_a: float, v_b: float) -> float:
-    """Energy [J] a switch from a source at ``v_path`` dissipates taking the node from
-    ``v_a`` to ``v_b``: ``Cn (v_b - v_a)(v_path - (v_a + v_b) / 2)``."""
-    return cn * (v_b - v_a) * (v_path - 0.5 * (v_a + v_b))
+        e_ls = transfer(cn, 0.0, vin - r_hs * pk if tf == 0 else -(vf + r_d * pk), v_ls)
+    return e_on + e_ls, formula
 
 
 def _core_item(scenario, op) -> BudgetItem | None:
@@ -367,4 +492,5 @@ def _core_item(scenario, op) -> BudgetItem | None:
                                                      + (1 - D) ** (1 - core.alpha))
     return BudgetItem("inductor.core", "inductor", "core", pv * core.volume,
                       "V k_i dB^beta f^alpha (D^(1-alpha) + (1-D)^(1-alpha))",
-                      "Venkatachalam et al., IEEE COMPEL 2002 (iGSE)")
+                      "Venkatachalam et al., IEEE COMPEL 2002 (iGSE)",
+                      "the flux ramps taken straight (the drops bend them)")
