@@ -171,7 +171,9 @@ def test_summary_keys_follow_the_reference_order(run):
     for k in leaves:
         if k.startswith("devices."):
             assert k in documented or re.sub(r"^devices\.[^.]+", "devices.NAME", k) in documented
-    assert list(data["transients"][0]) == [k for cell in tables[-1] for k in _expand(cell)]
+    # the transients table is the one whose first key is `event` (later sections add tables)
+    transient_keys = next(t for t in tables if t and t[0] == "`event`")
+    assert list(data["transients"][0]) == [k for cell in transient_keys for k in _expand(cell)]
 
 
 def test_run_and_steady_state_to_dict_are_json(loop_run):
@@ -287,6 +289,9 @@ def test_crosscheck_plot():
     rows = [r for r in check.rows if r["simulated"] is not None]
     assert [b.get_width() for b in closed] == [r["closed_form"] for r in rows]
     assert [b.get_width() for b in sim] == [r["simulated"] for r in rows]
+    # every row carries the keys docs/summary-reference.md lists for crosscheck rows, in order
+    keys = next(t for t in _doc_tables() if t and t[0] == "`item`")
+    assert all(list(r) == [k for cell in keys for k in _expand(cell)] for r in check.rows)
 
 
 # ----------------------------------------------------------------------------- pandas
