@@ -23,17 +23,9 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-from bucksim.analysis.budget_dcm import (
-    dcm_conduction,
-    dcm_core,
-    dcm_point,
-    dcm_switching,
-    lc_dead_time_integral,
-    lc_swing,
-    lc_time_to,
-    stored_charge,
-    transfer,
-)
+from bucksim.analysis.budget_dcm import dcm_conduction, dcm_core, dcm_point, dcm_switching
+from bucksim.analysis.budget_edges import async_edges, dead_times, node_charge, recovered_ccm
+from bucksim.analysis.budget_ring import lc_dead_time_integral, node_parts, slew_excess
 from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.model.parts import Mosfet
 from bucksim.model.stage import node_capacitance
@@ -116,8 +108,8 @@ def operating_point(scenario) -> dict:
     positive (peak current at the falling edge, valley at the rising edge)
     or by the high-side body diode (``+Vin + Vf``) when negative; with node
     capacitance a negative valley's rising dead time averages the node of the
-    lossless L-Cn swing up to that clamp
-    (:func:`~bucksim.analysis.budget_dcm.lc_dead_time_integral`). The ripple
+    series RLC swing up to that clamp
+    (:func:`~bucksim.analysis.budget_ring.lc_dead_time_integral`). The ripple
     uses the on-time slope ``dI = (Vin - (Rs + Rhs + DCR) Io - Vo) D / (L fs)``.
     Solved by fixed-point iteration (the edge currents depend on ``Vo``).
     In closed loop the duty is the one that puts ``Vo`` on ``control.reference``
@@ -157,7 +149,8 @@ def _operating_point(scenario, D: float) -> dict:
     vf_h, r_h = hs.body_diode.vf, hs.body_diode.r
     d_ls = 1.0 - D - (tf + tr) * fs if sync else 0.0
     d_diode = 0.0 if sync else 1.0 - D
-    cn = node_capacitance(scenario)
+    node = node_parts(scenario)
+    cn = node.cn
 
     vo, io, ripple = D * vin, D * vin * g + icc, 0.0
     for _ in range(50):
@@ -173,16 +166,18 @@ def _operating_point(scenario, D: float) -> dict:
                 a1 += de * r_l
             elif cn > 0 and rising and sync and td > 0:
                 # the node swings up resonantly and may reach the high-side clamp (derived)
-                a0 += fs * lc_dead_time_integral(L, cn, vo, -ls.rds_on * i_edge, i_edge,
-                                                 vin + vf_h, td)
+                a0 += fs * lc_dead_time_integral(node, vo, -ls.rds_on * i_edge, i_edge,
+                                                 vin + vf_h, node.rn - rs - r_h, td)
             else:
                 a0 += de * (vin + vf_h)
                 a1 += de * (rs + r_h)
-        if peak > 0 and cn > 0:
-            # the node's linear swing from Vin to -Vf at the peak current after the
-            # high side opens: it takes Cn (Vin + Vf) / I and averages (Vin - Vf) / 2
-            # where the diode would hold -Vf (derived)
-            a0 += fs * cn * (vin + vf_l) ** 2 / (2.0 * peak)
+        v_a, v_c = vin - (rs + hs.rds_on) * peak, -vf_l + (node.rn - r_l) * peak
+        if peak > 0 and cn > 0 and v_a > v_c:
+            # the node's swing at the peak current after the high side opens, from
+            # v_a to the diode's clamp v_c (in vn: the terminal is vn - Rn I): it
+            # takes Q / I and holds the node above v_c by int (v - v_c) Cn dv / I
+            # (derived; Cn (Vin + Vf)^2 / 2I linear without drops)
+            a0 += fs * slew_excess(node, v_a, v_c, peak)
         vo_new = (a0 - a1 * icc) / (1.0 + a1 * g)
         io = g * vo_new + icc
         ripple = (vin - (rs + hs.rds_on + dcr) * io - vo_new) * D / (L * fs)
@@ -219,13 +214,15 @@ def estimate(scenario, mode: str | None = None) -> LossBudget:
           (synchronous) or ``Vf Io (1-D) + r (1-D)(Io^2 + dI^2/12)`` (diode)
         - ``low_side_body_diode`` / ``high_side_body_diode.conduction``:
           ``sum_e (Vf |I_e| + r I_e^2) t_e fs`` over positive / negative edges
-          (:func:`_dead_times`)
+          (:func:`bucksim.analysis.budget_edges.dead_times`)
         - ``inductor.conduction``: ``DCR (Io^2 + dI^2/12)``; ``output_capacitor``: ``ESR dI^2/12``
         - ``switching.overlap``: ``0.5 Vin I_valley t_rise fs`` plus the turn-off
           energy at ``I_peak`` (:func:`bucksim.analysis.edges.snubbed_turn_off`)
         - ``switching.coss``: the node's charge moved by closing switches
-          (:func:`_node_charge`; ``Cn`` from :func:`bucksim.model.stage.node_capacitance`)
-        - ``switching.recovery``: ``Qrr Vin fs``, or charge control (:func:`_recovered_ccm`)
+          (:func:`bucksim.analysis.budget_edges.node_charge`; ``Cn`` from
+          :func:`bucksim.model.stage.node_capacitance`, a table's own charge and energy)
+        - ``switching.recovery``: ``Qrr Vin fs``, or charge control
+          (:func:`bucksim.analysis.budget_edges.recovered_ccm`)
         - ``switching.gate``: ``(Qg_hs Vg_hs + Qg_ls Vg_ls) fs``
         - ``inductor.core``: iGSE for triangular flux,
           ``V k_i dB^beta f^alpha (D^(1-alpha) + (1-D)^(1-alpha))``
@@ -294,7 +291,7 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
                                 ls.rds_on * d_ls * ms, "Rds_ls (1 - D - Dd)(Io^2 + dI^2/12)", EM,
                                 _RAMP))
         bd_l, bd_h = ls.body_diode, hs.body_diode
-        e = _dead_times(scenario, op)
+        e = dead_times(scenario, op)
         p_l = sum((bd_l.vf * i + bd_l.r * i * i) * t * fs
                   for t, i in (e["falling"] or (0.0, 0.0), e["rising"] or (0.0, 0.0)))
         t_h, i_h = e["high_side"] or (0.0, 0.0)
@@ -302,17 +299,27 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
         items.append(BudgetItem("low_side_body_diode.conduction", "low_side_body_diode",
                                 "conduction", p_l,
                                 "sum over edges with I_e > 0 of (Vf I_e + r I_e^2) t_e fs, "
-                                "t_e = t_dead - Cn dV / I_e (the node's swing first)", CP,
-                                "the swing as a linear slew at the edge current"))
+                                "t_e = t_dead - Q_e / I_e (the node's charge to its clamp "
+                                "first)", CP,
+                                "the swing as a slew at the constant edge current"))
         items.append(BudgetItem("high_side_body_diode.conduction", "high_side_body_diode",
                                 "conduction", p_h,
                                 "sum over edges with I_e < 0 of (Vf |I_e| + r I_e^2) t_e fs, "
-                                "t_e = t_dead - the lossless L-Cn swing's time to Vin + Vf",
-                                CP, "the swing's resistive damping"))
+                                "t_e = t_dead - the series RLC swing's time to Vin + Vf",
+                                CP, "the swing about a constant Vo"))
     else:
+        e = async_edges(scenario, op)
         items.append(BudgetItem("low_side.conduction", "low_side", "conduction",
                                 ls.vf * io * (1 - D) + ls.r * (1 - D) * ms,
                                 "Vf Io (1-D) + r (1-D)(Io^2 + dI^2/12)", CP, _RAMP))
+    rn = node_parts(scenario).rn
+    if rn > 0:
+        items.append(BudgetItem("switch_node.resistance", "switch_node", "conduction",
+                                rn * e["open_square"] * fs,
+                                "Rn int i^2 fs over the open node: I_e^2 Q_e / I_e per edge "
+                                "swing (the RLC swing's energy balance for a negative valley)",
+                                "derived (budget_edges.dead_times)",
+                                "each swing at the constant edge current of the ripple formula"))
     items.append(BudgetItem("inductor.conduction", "inductor", "conduction",
                             scenario.inductor.dcr * ms, "DCR (Io^2 + dI^2/12)", EM, _RAMP))
     items.append(BudgetItem("output_capacitor.conduction", "output_capacitor", "conduction",
@@ -324,71 +331,6 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
                                 scenario.supply.resistance * D * ms, "Rs D (Io^2 + dI^2/12)", EM,
                                 _RAMP))
     return items
-
-
-def _dead_times(scenario, op) -> dict:
-    """Body-diode conduction ``(t_e [s], I_e [A])`` in each dead time (None where none),
-    and the node at high-side turn-on ``v_on`` [V] (None: a diode holds it).
-
-    A body diode conducts once the node capacitance has swung to its clamp: at
-    constant current ``I`` that takes ``Cn dV / I`` (derived). A negative valley
-    swings the node up resonantly (:func:`~bucksim.analysis.budget_dcm.lc_swing`):
-    the high-side body diode conducts only when the crest reaches ``Vin + Vf``.
-    """
-    hs, ls = scenario.high_side, scenario.low_side
-    bd_l, bd_h = ls.body_diode, hs.body_diode
-    tf, tr = scenario.switching.dead_time
-    cn, L = node_capacitance(scenario), scenario.inductor.inductance
-    vin, vo, pk, vl = op["vin"], op["vo"], op["peak"], op["valley"]
-    out = {"falling": None, "rising": None, "high_side": None, "v_on": None}
-    if pk > 0:
-        dv = vin - hs.rds_on * pk + bd_l.vf + bd_l.r * pk
-        out["falling"] = (max(tf - cn * dv / pk, 0.0), pk)
-    if vl > 0:
-        dv = bd_l.vf + (bd_l.r - ls.rds_on) * vl
-        out["rising"] = (max(tr - cn * dv / vl, 0.0), vl)
-    elif vl < 0 and tr > 0:
-        v0, clamp = -ls.rds_on * vl, vin + bd_h.vf
-        t_c = lc_time_to(L, cn, vo, v0, vl, clamp) if cn > 0 else 0.0
-        if t_c < tr:
-            out["high_side"] = (tr - t_c, lc_swing(L, cn, vo, v0, vl, t_c)[1] if cn > 0 else vl)
-        else:
-            out["v_on"] = lc_swing(L, cn, vo, v0, vl, tr)[0]
-    return out
-
-
-def _recovered_ccm(scenario, op) -> float:
-    """Charge [C] swept out per period when the opposite channels close.
-
-    Fixed ``qrr``: once per period when the low-side diode conducts at
-    high-side turn-on. Charge control (:func:`bucksim.analysis.recovery.recovery_parameters`):
-    ``k q``, ``q`` from ``dq/dt = i - q / tau`` at the dead-time currents
-    (:func:`~bucksim.analysis.budget_dcm.stored_charge`), decaying in between; the
-    high-side body diode's charge (reverse current) decays over ``D T + t_fall``.
-    """
-    from bucksim.analysis.recovery import recovery_parameters
-    ls, hs = scenario.low_side, scenario.high_side
-    sync = isinstance(ls, Mosfet)
-    diode = ls.body_diode if sync else ls
-    tau, k = recovery_parameters(diode)
-    T, D, pk, vl = 1.0 / op["frequency"], op["duty"], op["peak"], op["valley"]
-    tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
-    if tau <= 0.0:
-        return diode.qrr if vl > 0 and (not sync or tr > 0) else 0.0
-    if not sync:
-        return k * stored_charge(0.0, pk, max(vl, 0.0), (1.0 - D) * T, tau)
-    e = _dead_times(scenario, op)
-    t_f, i_f = e["falling"] or (0.0, 0.0)
-    t_r, i_r = e["rising"] or (0.0, 0.0)
-    q = stored_charge(0.0, i_f, i_f, t_f, tau)
-    q = stored_charge(q, 0.0, 0.0, (1.0 - D) * T - tf - t_r, tau)
-    q = k * stored_charge(q, i_r, i_r, t_r, tau)
-    tau_h, k_h = recovery_parameters(hs.body_diode)
-    if e["high_side"] and tau_h > 0:
-        q_h = stored_charge(0.0, -e["high_side"][1], -e["high_side"][1], e["high_side"][0],
-                            tau_h)
-        q += k_h * stored_charge(q_h, 0.0, 0.0, D * T + tf, tau_h)
-    return q
 
 
 def _switching_items(scenario, op) -> list[BudgetItem]:
@@ -407,13 +349,13 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
                         "(0.5 Vin I_valley t_rise + E_off(I_peak)) fs, E_off = 0.5 Vin I t_fall "
                         "snubbed by Cn at low current (edges.snubbed_turn_off, derived)", CP,
                         "the ripple formula's edge currents")]
-    coss, formula = _node_charge(scenario, op, hard_on)
+    coss, formula = node_charge(scenario, op, hard_on)
     items.append(BudgetItem("switching.coss", "high_side", "switching", coss * fs, formula,
                             "derived (charge moved through a closing switch, Erickson & "
                             "Maksimovic 3rd ed. ch. 4)",
                             "the clamp voltages at the ripple formula's edge currents"))
     items.append(BudgetItem("switching.recovery", "high_side", "switching",
-                            _recovered_ccm(scenario, op) * vin * fs,
+                            recovered_ccm(scenario, op) * vin * fs,
                             "Qrr Vin fs (fixed qrr, diode conducting at high-side turn-on), or "
                             "k q Vin fs, q from dq/dt = i - q/tau at the dead-time currents",
                             "Erickson & Maksimovic 3rd ed. ch. 4 (charge control; from "
@@ -425,58 +367,6 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
                             "nothing: the same charge per turn-on on both sides (checks the "
                             "count)"))
     return items
-
-
-def _node_charge(scenario, op, hard_on: bool) -> tuple[float, str]:
-    """Energy [J] per period that closing switches dissipate moving the node's charge.
-
-    A switch closing on the node at ``v_a`` that then holds it at ``v_b`` from a
-    source ``V_p`` dissipates ``Cn (v_b - v_a)(V_p - (v_a + v_b) / 2)``
-    (:mod:`bucksim.analysis.edges`). In CCM with dead times the high side
-    closes on the node clamped at ``-Vf`` by the low-side diode:
-    ``0.5 Cn (Vin + Vf)^2``; the low side closes on ``-Vf`` too: ``0.5 Cn
-    Vf^2``. With no rising (falling) dead time that switch closes on the
-    other channel's node voltage, ``0 (Vin)``: ``0.5 Cn Vin^2``. A negative
-    valley current swings the node up during the rising dead time, its crest
-    ``vo + sqrt(vo^2 + (Z I_valley)^2)``, ``Z = sqrt(L / Cn)`` (lossless L-Cn
-    swing, derived; :func:`_dead_times`): the high side then closes on the
-    node the swing has reached at the end of the dead time, or on the node
-    clamped at ``Vin + Vf`` by its body diode (full ZVS, ~``0.5 Cn Vf^2``).
-    """
-    cn = node_capacitance(scenario)
-    vin, vl = op["vin"], op["valley"]
-    ls = scenario.low_side
-    sync = isinstance(ls, Mosfet)
-    vf = ls.body_diode.vf if sync else ls.vf
-    tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
-    r_d = ls.body_diode.r if sync else ls.r
-    r_hs = scenario.supply.resistance + scenario.high_side.rds_on
-    v_on = vin - r_hs * vl                      # the node once the high side conducts
-    if not hard_on and sync and vl < 0:
-        # the resonant swing's node at turn-on, or the high-side body diode's clamp
-        e = _dead_times(scenario, op)
-        hb = scenario.high_side.body_diode
-        v_before = e["v_on"] if e["high_side"] is None else \
-            vin + hb.vf - (scenario.supply.resistance + hb.r) * e["high_side"][1]
-        formula = ("Cn (v_b - v_a)(V_p - (v_a + v_b)/2) fs per closing switch: the high side "
-                   "from the lossless L-Cn swing's node after the rising dead time (partial "
-                   "ZVS) or the body diode's clamp, the low side ~0.5 Cn Vf^2")
-    elif not hard_on:
-        v_before, formula = v_on, "none: the node swings to Vin before the high side closes"
-    else:
-        # before it: the low-side channel's node (no rising dead time) or the diode's clamp
-        v_before = -ls.rds_on * vl if (sync and tr == 0) else -(vf + r_d * vl)
-        formula = ("Cn (v_b - v_a)(V_p - (v_a + v_b)/2) fs per closing switch: "
-                   "~0.5 Cn (Vin + Vf)^2 at high-side turn-on from the diode "
-                   "(~Vin^2 without rising dead time), ~0.5 Cn Vf^2 at the low "
-                   "side's (~Vin^2 without falling dead time)")
-    e_on = transfer(cn, vin, v_before, v_on)
-    e_ls = 0.0
-    if sync:
-        pk = op["peak"]
-        v_ls = -ls.rds_on * pk
-        e_ls = transfer(cn, 0.0, vin - r_hs * pk if tf == 0 else -(vf + r_d * pk), v_ls)
-    return e_on + e_ls, formula
 
 
 def _core_item(scenario, op) -> BudgetItem | None:

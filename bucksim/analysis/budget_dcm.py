@@ -9,7 +9,8 @@ D2) T``, and ``Vo`` is the voltage at which the mean of that triangle equals
 the load current (charge balance on the capacitor). Without losses this is
 the textbook conversion ratio ``M = 2 / (1 + sqrt(1 + 4 K / D^2))``,
 ``K = 2 L / (R T)`` [1]_; the series resistances enter to first order
-(each drop at the mean current of its ramp), the diode drops in full.
+(each drop at the mean current of its ramp), the diode drops in full. The
+core loss is the iGSE of the piecewise-linear flux [2]_.
 
 The item builders here return plain tuples ``(key, device, kind, value,
 formula, source, neglects)``: :mod:`bucksim.analysis.budget` wraps them
@@ -31,21 +32,20 @@ from __future__ import annotations
 
 import math
 
+from bucksim.analysis.budget_ring import (
+    idle_ring,
+    node_parts,
+    rlc_square,
+    rlc_swing,
+    rlc_time_to,
+    transfer,
+)
 from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.model.parts import Mosfet
-from bucksim.model.stage import node_capacitance
 
 _EM5 = ("Erickson & Maksimovic 3rd ed. ch. 5 (DCM from the duty) and app. A "
         "(RMS of triangular pulses)")
 _CP = "common practice"
-
-
-def transfer(cn: float, v_path: float, v_a: float, v_b: float) -> float:
-    """Energy [J] a switch from a source at ``v_path`` [V] dissipates taking a linear
-    node capacitance ``cn`` [F] from ``v_a`` to ``v_b`` [V]:
-    ``Cn (v_b - v_a)(v_path - (v_a + v_b) / 2)`` (derived: the source's work less the
-    change of stored energy, Erickson & Maksimovic ch. 4)."""
-    return cn * (v_b - v_a) * (v_path - 0.5 * (v_a + v_b))
 
 
 def stored_charge(q0: float, i_a: float, i_b: float, t: float, tau: float) -> float:
@@ -75,97 +75,67 @@ def stored_charge(q0: float, i_a: float, i_b: float, t: float, tau: float) -> fl
     return tau * i_b - m * tau * tau + (q0 - tau * i_a + m * tau * tau) * math.exp(-t / tau)
 
 
-def lc_swing(L: float, cn: float, vo: float, v0: float, i0: float, t: float):
-    """Node voltage [V] and inductor current [A] after ``t`` [s] of the lossless L-Cn
-    swing about ``vo`` from ``(v0, i0)``; ``L`` [H], ``cn`` [F] > 0.
-
-    Notes
-    -----
-    ``L diL/dt = vn - vo``, ``Cn dvn/dt = -iL`` (drops neglected; derived):
-    with ``u = vn - vo``, ``w = 1/sqrt(L Cn)``, ``Z = sqrt(L/Cn)``,
-    ``u = u0 cos wt - Z i0 sin wt`` and ``iL = i0 cos wt + (u0 / Z) sin wt``.
-    """
-    w, z = 1.0 / math.sqrt(L * cn), math.sqrt(L / cn)
-    c, s = math.cos(w * t), math.sin(w * t)
-    u0 = v0 - vo
-    return vo + u0 * c - z * i0 * s, i0 * c + u0 / z * s
-
-
-def lc_time_to(L: float, cn: float, vo: float, v0: float, i0: float, v: float) -> float:
-    """First time [s] the swing of :func:`lc_swing` from ``(v0, i0)`` reaches ``v`` [V],
-    or ``inf`` when it stays short of it (its crest or trough ``vo -+ sqrt((v0 -
-    vo)^2 + (Z i0)^2)`` does not get there)."""
-    w, z = 1.0 / math.sqrt(L * cn), math.sqrt(L / cn)
-    u0, uc = v0 - vo, v - vo
-    r = math.hypot(u0, z * i0)
-    if abs(uc) > r:
-        return math.inf
-    # u = r cos(wt + th): the first wt >= 0 with wt + th = -+ acos(uc / r) (mod 2 pi)
-    th, ph = math.atan2(z * i0, u0), math.acos(uc / r)
-    return min((sg * ph - th) % (2.0 * math.pi) for sg in (1.0, -1.0)) / w
-
-
-def lc_dead_time_integral(L: float, cn: float, vo: float, v0: float, i0: float,
-                          clamp: float, td: float) -> float:
-    """``int vn dt`` [V s] over a dead time ``td`` [s] whose node swings up from ``(v0,
-    i0)`` (:func:`lc_swing`, ``i0 < 0``) until a diode clamps it at ``clamp`` [V].
-
-    Notes
-    -----
-    ``int_0^t u = (u0 sin wt + Z i0 (cos wt - 1)) / w`` for the lossless swing
-    (derived), then ``clamp`` for the rest of the dead time.
-    """
-    t1 = min(lc_time_to(L, cn, vo, v0, i0, clamp), td)
-    w, z = 1.0 / math.sqrt(L * cn), math.sqrt(L / cn)
-    u0 = v0 - vo
-    swing = vo * t1 + (u0 * math.sin(w * t1) + z * i0 * (math.cos(w * t1) - 1.0)) / w
-    return swing + clamp * (td - t1)
-
-
 def _parts(scenario) -> dict:
     """The constants of the DCM period [SI]."""
     sw, hs, ls = scenario.switching, scenario.high_side, scenario.low_side
     sync = isinstance(ls, Mosfet)
     d = ls.body_diode if sync else ls
-    ind = scenario.inductor
     load = scenario.load
+    rs = scenario.supply.resistance
     return {"sync": sync, "T": sw.period, "vin": scenario.supply.voltage,
-            "L": ind.inductance, "dcr": ind.dcr,
-            "r_on": scenario.supply.resistance + hs.rds_on + ind.dcr,
+            "L": scenario.inductor.inductance, "dcr": scenario.inductor.dcr,
+            "r_on": rs + hs.rds_on + scenario.inductor.dcr, "r_hs": rs + hs.rds_on,
             "vf": d.vf, "rd": d.r, "rls": ls.rds_on if sync else 0.0,
-            "tf": sw.dead_time[0] if sync else 0.0, "cn": node_capacitance(scenario),
+            "tf": sw.dead_time[0] if sync else 0.0, "node": node_parts(scenario),
             "g": 0.0 if load.resistance in (None, math.inf) else 1.0 / load.resistance,
             "icc": load.current, "ring": True,
-            "vc": scenario.supply.voltage + hs.body_diode.vf}
+            "vc": scenario.supply.voltage + hs.body_diode.vf, "r_h": rs + hs.body_diode.r}
+
+
+def _swing(p: dict, vo: float, ipk: float) -> dict:
+    """The node's swing after the high side opens at ``ipk`` [A]: from ``Vin - (Rs +
+    Rds_hs) Ipk`` on the series RLC (:func:`~bucksim.analysis.budget_ring.rlc_swing`)
+    until the diode clamps the terminal, ``vn - (Rn - r) i = -Vf`` (within the falling
+    dead time in a synchronous stage); then the capacitance steps to ``-Vf - r i``."""
+    node, vf = p["node"], p["vf"]
+    L, R, cn = node.L, node.R, node.cn
+    v0 = p["vin"] - p["r_hs"] * ipk
+    out = {"t_swing": 0.0, "v_swing": -vf, "i_swing": ipk, "swing_square": 0.0,
+           "swing_charge": 0.0, "swing_step": 0.0, "clamped": True}
+    if cn <= 0:
+        return out
+    t_max = p["tf"] if p["sync"] else math.inf
+    t_s = rlc_time_to(L, R, cn, vo, v0, ipk, -vf, node.rn - p["rd"], t_max)
+    if not math.isfinite(t_s):
+        if not p["sync"]:   # a current too small to reach the clamp: left as a jump (rare)
+            return out
+        t_s, out["clamped"] = t_max, False
+    v_s, i_s = rlc_swing(L, R, cn, vo, v0, ipk, t_s)
+    out.update(t_swing=t_s, v_swing=v_s, i_swing=i_s, swing_charge=cn * (v0 - v_s),
+               swing_square=rlc_square(L, R, cn, vo, v0, ipk, t_s))
+    if out["clamped"]:
+        out["swing_step"] = transfer(node, 0.0, v_s, -vf - p["rd"] * i_s)
+    return out
 
 
 def _period(p: dict, D: float, vo: float, i0: float = 0.0) -> dict | None:
     """The DCM period at output ``vo`` [V] from the current ``i0`` [A] at turn-on.
 
     First order in the series resistances (each drop at its ramp's mean
-    current). After the high side opens at ``Ipk`` the node swings on the
-    lossless L-Cn arc (:func:`lc_swing`) from ``Vin`` to the diode's clamp
-    ``-Vf`` (within the falling dead time in a synchronous stage), the diode
-    carries the current (to zero in the asynchronous stage, to the end of the
-    dead time otherwise), then the
-    low-side channel to zero. The idle ring is :func:`_ring`'s.
+    current). After the high side opens at ``Ipk`` the node swings
+    (:func:`_swing`), the diode carries the current (to zero in the
+    asynchronous stage, to the end of the dead time otherwise), then the
+    low-side channel to zero. The idle ring is
+    :func:`~bucksim.analysis.budget_ring.idle_ring`'s.
     """
-    T, L, vin, vf, cn = p["T"], p["L"], p["vin"], p["vf"], p["cn"]
+    T, L, vin, vf = p["T"], p["L"], p["vin"], p["vf"]
     t_on = D * T
     h = 0.5 * p["r_on"] * t_on
     ipk = (i0 * (L - h) + (vin - vo) * t_on) / (L + h)
     if ipk <= 0.0 or vo <= 0.0:
         return None
-    i_s, t_s, v_s = ipk, 0.0, -vf
-    if cn > 0:
-        # the node swings from Vin on the lossless L-Cn arc to the diode's clamp
-        t_s = lc_time_to(L, cn, vo, vin, ipk, -vf)
-        if p["sync"]:
-            t_s = min(t_s, p["tf"])
-        if math.isfinite(t_s):
-            v_s, i_s = lc_swing(L, cn, vo, vin, ipk, t_s)
-        else:   # a current too small to reach the clamp: left as a jump (rare)
-            t_s = 0.0
+    out = _swing(p, vo, ipk)
+    t_s, i_s = out["t_swing"], out["i_swing"]
     rd = p["rd"] + p["dcr"]
     if p["sync"]:
         t_d = p["tf"] - t_s
@@ -177,62 +147,16 @@ def _period(p: dict, D: float, vo: float, i0: float = 0.0) -> dict | None:
         t_d, i_c = L * i_s / (vo + vf + 0.5 * rd * i_s), 0.0
     t_c = L * i_c / (vo + 0.5 * (p["rls"] + p["dcr"]) * i_c) if i_c > 0 else 0.0
     t_idle = T - t_on - t_s - t_d - t_c
-    charge = 0.5 * ((i0 + ipk) * t_on + (ipk + i_s) * t_s + (i_s + i_c) * t_d + i_c * t_c)
-    out = {"t_on": t_on, "i_on": i0, "peak": ipk, "t_swing": t_s, "v_swing": v_s,
-           "i_swing": i_s, "t_diode": t_d, "i_channel": i_c, "t_channel": t_c,
-           "t_idle": t_idle}
-    out.update(_ring(p, vo, 0.0 if i_c > 0 else -vf, t_idle))
+    charge = (0.5 * (i0 + ipk) * t_on + out["swing_charge"] + 0.5 * (i_s + i_c) * t_d
+              + 0.5 * i_c * t_c)
+    out.update(t_on=t_on, i_on=i0, peak=ipk, t_diode=t_d, i_channel=i_c, t_channel=t_c,
+               t_idle=t_idle)
+    if p["ring"]:
+        out.update(idle_ring(p["node"], vo, 0.0 if i_c > 0 else -vf, t_idle, vin, p["vc"],
+                             p["r_h"]))
+    else:
+        out.update(idle_ring(p["node"], vo, 0.0, 0.0, vin, p["vc"], p["r_h"]))
     out["io"] = (charge + out["ring_charge"]) / T
-    return out
-
-
-def _arc(z: float, w: float, u0: float, i0: float, t: float) -> tuple:
-    """One lossless L-Cn arc (:func:`lc_swing`) over ``t`` [s]: the end ``u`` [V] and
-    ``i`` [A], and ``int i dt`` [C] and ``int i^2 dt`` [A^2 s] over it (derived)."""
-    c, s, q = math.cos(w * t), math.sin(w * t), u0 / z
-    charge = (i0 * s + q * (1.0 - c)) / w
-    s2 = math.sin(2.0 * w * t) / (4.0 * w)
-    square = i0 * i0 * (0.5 * t + s2) + q * q * (0.5 * t - s2) + i0 * q * s * s / w
-    return u0 * c - z * i0 * s, i0 * c + q * s, charge, square
-
-
-def _ring(p: dict, vo: float, v_open: float, t_idle: float) -> dict:
-    """The lossless idle ring about ``vo`` from ``(iL, vn) = (0, v_open)`` over ``t_idle``.
-
-    Notes
-    -----
-    Once the current stops the node is open: ``L diL/dt = vn - vo``,
-    ``Cn dvn/dt = -iL`` (the drops neglected), so with ``A = vo - v_open``,
-    ``w = 1 / sqrt(L Cn)``, ``Z = sqrt(L / Cn)`` (derived, undamped L-C):
-
-    .. math:: i_L = -\\frac{A}{Z} \\sin w t, \\qquad v_n = v_o - A \\cos w t .
-
-    A crest ``vo + A`` above the high-side body diode's clamp ``Vc = Vin + Vf``
-    is cut there: the diode returns the current ``i1`` it meets to the supply,
-    ramping it to zero over ``L |i1| / (Vc - vo)``, and the ring goes on from
-    ``(0, Vc)`` with the amplitude ``Vc - vo``. ``clamp_charge`` and
-    ``clamp_square`` are that diode's ``int |i| dt`` and ``int i^2 dt``.
-    """
-    out = {"ring_amplitude": 0.0, "ring_current": 0.0, "ring_charge": 0.0,
-           "ring_square": 0.0, "v_on": vo, "i_turn_on": 0.0, "ring_phase": 0.0,
-           "clamp_charge": 0.0, "clamp_square": 0.0}
-    if p["cn"] <= 0.0 or t_idle <= 0.0 or not p["ring"]:
-        return out
-    L, a, vc = p["L"], vo - v_open, p["vc"]
-    w, z = 1.0 / math.sqrt(L * p["cn"]), math.sqrt(L / p["cn"])
-    t1 = math.acos(-(vc - vo) / a) / w if vo + a > vc else math.inf
-    u, i, q, sq = _arc(z, w, -a, 0.0, min(t_idle, t1))
-    out.update(ring_amplitude=a, ring_current=a / z, ring_phase=w * t_idle)
-    rest = t_idle - t1
-    if rest > 0.0:
-        t2 = min(L * -i / (vc - vo), rest)
-        i2 = i + (vc - vo) * t2 / L
-        out.update(clamp_charge=-0.5 * (i + i2) * t2, clamp_square=_ms(i, i2) * t2)
-        q, sq, u, i = q + 0.5 * (i + i2) * t2, sq + _ms(i, i2) * t2, vc - vo, i2
-        if rest > t2:
-            u, i, q2, sq2 = _arc(z, w, vc - vo, 0.0, rest - t2)
-            q, sq = q + q2, sq + sq2
-    out.update(ring_charge=q, ring_square=sq, v_on=vo + u, i_turn_on=i)
     return out
 
 
@@ -249,7 +173,7 @@ def _periodic(p: dict, D: float, vo: float) -> dict | None:
     if per is None or per["ring_current"] == 0.0:
         return per
     lo, hi = -per["ring_current"], per["ring_current"]
-    for _ in range(60):
+    for _ in range(44):     # 2^-44 of the bracket: 1e-13 of A / Z
         mid = 0.5 * (lo + hi)
         m = _period(p, D, vo, mid)
         if m is None or mid - m["i_turn_on"] > 0.0:
@@ -293,9 +217,13 @@ def dcm_point(scenario, D: float) -> dict | None:
         [V] (the node there), ``i_on`` [A] and ``v_on`` [V] (current and node at
         turn-on), the ring's ``ring_amplitude`` [V], ``ring_current`` [A]
         (``A / Z``), ``ring_phase`` [rad], ``ring_charge`` [C], ``ring_square``
-        [A^2 s], ``clamp_charge`` [C] and ``clamp_square`` [A^2 s] (the high-side
-        body diode's, where the crest meets ``Vin + Vf``: :func:`_ring`), and
-        ``vo_no_ring`` [V] (the same point with the ring left out).
+        [A^2 s], ``ring_decay`` [1/s], ``open_square`` [A^2 s], ``clamp_charge``
+        [C], ``clamp_square`` [A^2 s] and ``clamp_step`` [J] (the high-side body
+        diode's, where the crest meets ``Vin + Vf``:
+        :func:`~bucksim.analysis.budget_ring.idle_ring`), the swing's
+        ``swing_square`` [A^2 s] and ``swing_step`` [J] (the capacitance's step
+        to the diode's clamp: :func:`_swing`), and ``vo_no_ring`` [V] (the same
+        point with the ring left out).
 
     Notes
     -----
@@ -310,8 +238,8 @@ def dcm_point(scenario, D: float) -> dict | None:
     ``R_on = Rs + Rds_hs + DCR``; a synchronous stage splits the falling ramp
     into the node's swing, the body diode in the dead time and the channel
     (:func:`_period`); ``i0`` and ``q_ring`` come from the idle ring
-    (:func:`_ring`, :func:`_periodic`). Lossless (``R = 0``, ``Vf = 0``,
-    ``Cn = 0``: no ring, ``i0 = 0``) this gives ``D_2 = D (1 - M) / M`` and
+    (:func:`~bucksim.analysis.budget_ring.idle_ring`, :func:`_periodic`). Lossless
+    (``R = 0``, ``Vf = 0``, ``Cn = 0``: no ring, ``i0 = 0``) this gives ``D_2 = D (1 - M) / M`` and
     ``M = 2 / (1 + sqrt(1 + 4 K / D^2))`` [1]_. With the ring, ``Io(Vo)``
     oscillates with the ring's phase and can cross the load line more than
     once: the point is the crossing at which ``Io - Vo / R`` falls (stable
@@ -329,7 +257,7 @@ def dcm_point(scenario, D: float) -> dict | None:
     free = _roots(lambda v: excess(v, free_p), lo, hi, 1)
     if not free:
         return None
-    roots = _roots(excess, lo, hi, 200) if p["cn"] > 0 else free
+    roots = _roots(excess, lo, hi, 200) if p["node"].cn > 0 else free
     if not roots:
         return None
     vo = min(roots, key=lambda v: abs(v - free[0]))
@@ -340,7 +268,8 @@ def dcm_point(scenario, D: float) -> dict | None:
     tf, tr = scenario.switching.dead_time if p["sync"] else (0.0, 0.0)
     keys = ("t_swing", "t_diode", "t_channel", "i_swing", "i_channel", "v_swing", "i_on",
             "v_on", "ring_amplitude", "ring_current", "ring_phase", "ring_charge",
-            "ring_square", "clamp_charge", "clamp_square")
+            "ring_square", "clamp_charge", "clamp_square", "ring_decay", "swing_square",
+            "swing_step", "open_square", "clamp_step")
     return {"duty": D, "vin": vin, "vo": vo, "io": p["g"] * vo + p["icc"],
             "ripple": per["peak"] - min(per["i_on"], -per["ring_current"]),
             "peak": per["peak"], "valley": per["i_on"],
@@ -356,9 +285,9 @@ def _ms(i_a: float, i_b: float) -> float:
 
 def inductor_mean_square(op: dict) -> float:
     """Mean square of iL [A^2] over the DCM period: the ramps (app. A of [1]_) and
-    the idle ring (:func:`_ring`)."""
+    the node's swing and the idle ring (:mod:`bucksim.analysis.budget_ring`)."""
     T, pk, i_s, i_c = 1.0 / op["frequency"], op["peak"], op["i_swing"], op["i_channel"]
-    return (op["duty"] * T * _ms(op["i_on"], pk) + op["t_swing"] * _ms(pk, i_s)
+    return (op["duty"] * T * _ms(op["i_on"], pk) + op["swing_square"]
             + op["t_diode"] * _ms(i_s, i_c) + op["t_channel"] * i_c * i_c / 3.0
             + op["ring_square"]) / T
 
@@ -379,8 +308,8 @@ def dcm_conduction(scenario, op: dict) -> list[tuple]:
     hs_diode = ("high_side_body_diode.conduction", "high_side_body_diode", "conduction",
                 (bd.vf * op["clamp_charge"] + bd.r * op["clamp_square"]) * fs,
                 "(Vf int|i| + r int i^2) fs where the idle ring's crest meets Vin + Vf, "
-                "0 below", "derived (the lossless ring cut at the clamp)",
-                "the ring's damping before the clamp")
+                "0 below", "derived (the damped ring cut at the clamp, budget_ring.idle_ring)",
+                "the diode's ramp with its drops neglected; the ring about a constant Vo")
     items = [("high_side.conduction", "high_side", "conduction", hs.rds_on * ms_on,
               "Rds_hs D (i0^2 + i0 Ipk + Ipk^2) / 3", _EM5, ramp)]
     if sync:
@@ -388,14 +317,24 @@ def dcm_conduction(scenario, op: dict) -> list[tuple]:
                    ls.rds_on * op["t_channel"] * fs * i_c * i_c / 3.0,
                    "Rds_ls (t_channel fs) I_c^2 / 3", _EM5, ramp),
                   ("low_side_body_diode.conduction", "low_side_body_diode", "conduction",
-                   *diode, _EM5, ramp + "; the node's swing undamped"),
+                   *diode, _EM5, ramp + "; the swing from the ripple formula's peak"),
                   hs_diode]
     else:
         items += [("low_side.conduction", "low_side", "conduction", *diode, _EM5,
-                   ramp + "; the node's swing undamped"), hs_diode]
+                   ramp + "; the swing from the ripple formula's peak"), hs_diode]
+    rn = scenario.switching.node_resistance
+    if rn > 0 and op["ring_decay"] > 0:
+        items.append(("switch_node.resistance", "switch_node", "conduction",
+                      rn * (op["swing_square"] + op["open_square"]) * fs,
+                      "Rn (int i^2 over the swing + over the idle ring) fs, R int i^2 = the "
+                      "series RLC's energy loss, Rn's share Rn / (Rn + DCR)",
+                      "derived (series RLC natural response, Nilsson & Riedel; budget_ring)",
+                      "the swing's start at the closed form's peak; Vo held constant "
+                      "(the output's ESR damps too)"))
     items += [("inductor.conduction", "inductor", "conduction", scenario.inductor.dcr * ms_l,
-               "DCR <iL^2>, the ramps and the idle ring (A/Z)^2 (1/2 - sin(2wt)/(4wt)) D3",
-               _EM5, ramp + "; the ring's damping"),
+               "DCR <iL^2>, the ramps, the node's swing and the damped idle ring "
+               "(int i^2 = energy loss / (Rn + DCR))",
+               _EM5, ramp + "; the ring about a constant Vo"),
               ("output_capacitor.conduction", "output_capacitor", "conduction",
                scenario.output_capacitor.esr * max(ms_l - op["io"] ** 2, 0.0),
                "ESR (<iL^2> - Io^2)", _EM5,
@@ -412,28 +351,31 @@ def dcm_switching(scenario, op: dict) -> list[tuple]:
     fs, vin, pk, i0 = op["frequency"], op["vin"], op["peak"], op["i_on"]
     hs, ls = scenario.high_side, scenario.low_side
     sync = isinstance(ls, Mosfet)
-    cn = node_capacitance(scenario)
-    e_off = float(snubbed_turn_off(vin, pk, hs.fall_time, cn))
+    node = node_parts(scenario)
+    e_off = float(snubbed_turn_off(vin, pk, hs.fall_time, node.cn))
     items = [("switching.overlap", "high_side", "switching",
               (0.5 * vin * max(i0, 0.0) * hs.rise_time + e_off) * fs,
               "(0.5 Vin max(i0, 0) t_rise + E_off(Ipk)) fs, E_off = 0.5 Vin I t_fall "
               "snubbed by Cn at low current (edges.snubbed_turn_off, derived); i0 = 0 "
               "without node capacitance (turn-on at zero current)", _CP,
-              "the edge currents of straight ramps and a lossless ring")]
+              "the edge currents of straight ramps and the damped ring")]
     r_hs = scenario.supply.resistance + hs.rds_on
-    e_on = transfer(cn, vin, op["v_on"], vin - r_hs * i0)
+    e_on = transfer(node, vin, op["v_on"], vin - r_hs * i0) + op["clamp_step"]
     e_ls = 0.0
     if sync and op["i_channel"] > 0:
         i_c = op["i_channel"]
         v_before = -(ls.body_diode.vf + ls.body_diode.r * i_c) if op["t_diode"] > 0 \
             else op["v_swing"]
-        e_ls = transfer(cn, 0.0, v_before, -ls.rds_on * i_c)
+        e_ls = transfer(node, 0.0, v_before, -ls.rds_on * i_c)
+    e_ls += op["swing_step"]
     items.append(("switching.coss", "high_side", "switching", (e_on + e_ls) * fs,
-                  "Cn (v_b - v_a)(V_p - (v_a + v_b)/2) fs per closing switch: the high side "
-                  "from the ring's node v_on = Vo - A cos(wt), the low side from the diode's "
-                  "clamp (~0.5 Cn Vf^2)", "derived (charge moved through a closing switch, "
-                  "Erickson & Maksimovic 3rd ed. ch. 4; the L-Cn ring)",
-                  "the ring's damping and the phase error of straight ramps"))
+                  "integral (V_p - v) Cn(v) dv fs per closing switch (Cn (v_b - v_a)(V_p - "
+                  "(v_a + v_b)/2) linear): the high side from the damped ring's node v_on = "
+                  "Vo - A e^(-sigma t)(cos wd t + sigma/wd sin wd t), the low side from the "
+                  "diode's clamp (~0.5 Cn Vf^2); with Rn the capacitance's step of ~Rn I at "
+                  "each diode's clamp", "derived (charge moved through a closing switch, "
+                  "Erickson & Maksimovic 3rd ed. ch. 4; the series RLC ring, Nilsson & Riedel)",
+                  "the phase error of straight ramps (the ring's phase at turn-on)"))
     items.append(("switching.recovery", "high_side", "switching",
                   _recovered(ls.body_diode if sync else ls, op) * vin * fs,
                   "k q Vin fs, q the charge left of the diode's ramp after the channel and "
@@ -471,14 +413,22 @@ def dcm_core(scenario, op: dict) -> tuple | None:
     L = scenario.inductor.inductance
     pk, i0 = op["peak"], op["i_on"]
     # the major loop runs from the ring's trough (reached after a quarter lobe) to the peak
-    low = min(i0, -op["ring_current"]) if op["ring_phase"] > 0.5 * math.pi else min(i0, 0.0)
+    decay = op["ring_decay"]
+    w = op["ring_phase"] / (op["d3"] * T) if op["d3"] > 0 else 0.0
+    trough = op["ring_current"] * (math.exp(-decay * 0.5 * math.pi / w) if w > 0 else 1.0)
+    low = min(i0, -trough) if op["ring_phase"] > 0.5 * math.pi else min(i0, 0.0)
     d_b = L * (pk - low) / na
     ramps = ((L * (pk - i0) / na) ** a * (op["duty"] * T) ** (1 - a)
              + (L * pk / na) ** a * (op["d2"] * T) ** (1 - a)) / T
-    ring = (op["ring_amplitude"] / na) ** a * cos_power_integral(a) / (2 * math.pi) * op["d3"]
+    # the ring's flux swing decays as e^(-sigma t): int e^(-alpha sigma t) dt over D3 T
+    x = a * decay * op["d3"] * T
+    share = op["d3"] * (-math.expm1(-x) / x if x > 1e-12 else 1.0)
+    ring = (op["ring_amplitude"] / na) ** a * cos_power_integral(a) / (2 * math.pi) * share
     pv = ki * d_b ** (b - a) * (ramps + ring)
     return ("inductor.core", "inductor", "core", pv * core.volume,
             "V k_i dB^(beta-alpha) (dB_on^alpha (DT)^(1-alpha) + dB_off^alpha (D2 T)^(1-alpha) "
-            "+ (A/NA)^alpha <|cos|^alpha> T D3) / T", "Venkatachalam et al., IEEE COMPEL "
+            "+ (A/NA)^alpha <|cos|^alpha> (1 - e^(-alpha sigma D3 T)) / (alpha sigma)) / T",
+            "Venkatachalam et al., IEEE COMPEL "
             "2002 (iGSE, piecewise-linear flux); the ring's term derived",
-            "straight ramps; the ring's flux averaged over whole lobes")
+            "straight ramps; the ring's flux averaged over whole lobes, its decay "
+            "e^(-sigma t) taken on the envelope")

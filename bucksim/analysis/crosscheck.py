@@ -28,11 +28,14 @@ from bucksim.analysis.budget import estimate
 #: coss 80 % (60 %), total 2 % (0.3 %), output 2 % (0.7 %).
 TOLERANCES = {
     "ccm": {"conduction": 0.02, "output_capacitor": 0.05, "overlap": 0.02, "coss": 0.01,
-            "recovery": 0.02, "gate": 1e-9, "core": 0.02, "total": 0.01, "output": 0.01},
+            "recovery": 0.02, "gate": 1e-9, "core": 0.02, "total": 0.01, "output": 0.01,
+            "switch_node": 0.05},
     "dcm": {"conduction": 0.02, "output_capacitor": 0.02, "overlap": 0.02, "coss": 0.05,
-            "recovery": 0.05, "gate": 1e-9, "core": 0.08, "total": 0.02, "output": 0.01},
+            "recovery": 0.05, "gate": 1e-9, "core": 0.08, "total": 0.02, "output": 0.01,
+            "switch_node": 0.05},
     "reverse": {"conduction": 0.2, "output_capacitor": 0.3, "overlap": 0.1, "coss": 0.8,
-                "recovery": 0.2, "gate": 1e-9, "core": 0.2, "total": 0.02, "output": 0.02},
+                "recovery": 0.2, "gate": 1e-9, "core": 0.2, "total": 0.02, "output": 0.02,
+            "switch_node": 0.3},
 }
 
 #: A disagreement below this share of the simulated total loss is agreement whatever the
@@ -60,6 +63,8 @@ def _sim_value(summary: dict, key: str) -> float | None:
         kind = key.split(".", 1)[1]
         return sum(dev[d].get("switching", {}).get(kind, 0.0)
                    for d in ("high_side", "low_side") if d in dev)
+    if key == "switch_node.resistance":
+        return dev["switch_node"]["conduction_loss"] if "switch_node" in dev else None
     if key == "inductor.core":
         return dev["inductor"].get("core_loss")
     raise KeyError(key)
@@ -150,6 +155,8 @@ def _kind(key: str) -> str:
         return "output_capacitor"
     if key.endswith(".conduction"):
         return "conduction"
+    if key == "switch_node.resistance":
+        return "switch_node"
     if key.startswith("switching."):
         return key.split(".", 1)[1]
     return {"inductor.core": "core", "total": "total", "output": "output"}[key]
