@@ -91,7 +91,7 @@ def crossing_slope(Ms, s, c, z, ramp):
 
 @njit(cache=True, inline="always")
 def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_ref, snap,
-                taylor_gap=0.0, poly=None):
+                taylor_gap, poly):
     """First zero of the event function in (t, t + width]; it has sign ``sign0`` at t.
 
     Binary descent over the transition table keeps the state on the
@@ -122,22 +122,20 @@ def refine_zero(Ms, E, h, s, z, t, width, sign0, tmp, trial, c, level, ramp, t_r
 
 
 @njit(cache=True, inline="always")
-def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly=None, sign0=0.0):
+def taylor_zero(Ms, s, z, t, gap, c, level, ramp, t_ref, snap, tmp, poly, sign0=0.0):
     """Zero of the event function in (t, t + gap] from its Taylor series.
 
     Used once the bracket is below the table's last step, where the series
     ``z(t + u) = sum_j M^j z u^j / j!`` truncated after :data:`TAYLOR_ORDER`
     is exact to rounding: the event function is then a polynomial in ``u``,
     solved by Newton steps kept inside the bracket (bisection when a step
-    leaves it). ``poly`` is an optional work array of shape
-    ``(TAYLOR_ORDER + 1, m + 1)`` (allocated when omitted). ``sign0`` is the
+    leaves it). ``poly`` is a work array of shape ``(TAYLOR_ORDER + 1, m + 1)``
+    (this runs inside the cycle loop, which must not allocate). ``sign0`` is the
     side the function starts on (0: take the sign of its value at ``t``); a
     function already at or past zero at ``t`` has its zero at ``t``.
     """
     m = z.shape[0]
     n = TAYLOR_ORDER
-    if poly is None:
-        poly = np.empty((n + 1, m + 1))
     v = poly    # columns 0..m-1: the state's coefficients; column m: g's
     for i in range(m):
         v[0, i] = z[i]
@@ -283,12 +281,23 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
     ``Ms``; ``k3``: the row's :func:`third_norm` (both computed when omitted).
     """
     m = za.shape[0]
-    n = m - 1
-    if bnd is None:
-        bounds = system_bounds(Ms)
-    else:
-        bounds = bnd
+    bounds = system_bounds(Ms) if bnd is None else bnd
+    coef = np.empty((TAYLOR_ORDER + 1, m + 1)) if poly is None else poly
     # the third derivative is (c_x A^2) . x', bounded through k3 = ||c_x A^2 W||_1
+    if k3 < 0.0:
+        k3 = third_norm(Ms, s, c, bounds)
+    return locate_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c, level,
+                       ramp, t_ref, snap, taylor_gap, coef, bounds, k3)
+
+
+@njit(cache=True)
+def locate_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c, level, ramp,
+                t_ref, snap, taylor_gap, poly, bounds, k3):
+    """:func:`find_zero` with every argument given: the work array ``poly``, the
+    bounds ``bounds`` and the row's constant ``k3`` (>= 0). It allocates nothing,
+    so the cycle loop (compiled without reference counting) can call it."""
+    m = za.shape[0]
+    n = m - 1
     if k3 < 0.0:
         k3 = third_norm(Ms, s, c, bounds)
     f0 = sign0 * crossing_value(c, za, a, level, ramp, t_ref)

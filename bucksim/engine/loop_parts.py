@@ -1,8 +1,8 @@
 """Small kernels the cycle loop calls: a dot product, the digital compensator's
 step, and the cheap test that proves a segment free of a crossing.
 
-Each takes scalars and a few arrays; :mod:`bucksim.engine.cycles` explains why
-the rest of the loop is written inline.
+Each takes scalars and a few arrays and is a real call (the loop's own rules
+are inlined helpers: :mod:`bucksim.engine.period`).
 """
 
 from __future__ import annotations
@@ -79,7 +79,7 @@ def newton_crossing(Ms, E, h, s, zs, t0, d, row, krow, bnd, tmp, work):
     the curvature bound ``|f''| <= B`` (:mod:`bucksim.engine.bounds`) proves
     ``f > 0`` on ``[0, u)``: the reach forward from 0 and backward from ``u``
     must cover it. Returns ``u`` (``work`` then holds ``z(t0 + u)``) or -1.0,
-    and the caller falls back to :func:`~bucksim.engine.kernels.find_zero`. A
+    and the caller falls back to :func:`~bucksim.engine.kernels.locate_zero`. A
     switch node that slews at a nearly constant current crosses its clamp on
     a nearly straight line: two or three steps, no table descent.
     """

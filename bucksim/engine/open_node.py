@@ -13,10 +13,10 @@ While nothing conducts, the node voltage ``vn`` is a state
 Each search is skipped when a bound proves the segment free of that crossing
 (:mod:`bucksim.engine.bounds`); a clamp reached on a slew is located by
 :func:`~bucksim.engine.loop_parts.newton_crossing`, anything else by
-:func:`~bucksim.engine.kernels.find_zero`. The clamps' searches are written
-out in the cycle loop (every open segment has them; a call with this many
-arrays costs about 150 ns, a quarter of a segment); the band edges, present
-only with a capacitance table, are searched here.
+:func:`~bucksim.engine.kernels.locate_zero`. The clamps' searches are
+:func:`bucksim.engine.segment_events.open_node_event`, inlined into the cycle
+loop; the band edges, present only with a capacitance table, are searched
+here.
 """
 
 from __future__ import annotations
@@ -25,7 +25,7 @@ import numpy as np
 from numba import njit
 
 from bucksim.engine.bounds import growth, open_node_clear, reach
-from bucksim.engine.kernels import find_zero
+from bucksim.engine.kernels import locate_zero
 from bucksim.engine.loop_parts import _dot, _needs_search, newton_crossing
 
 #: Event kinds besides the clamps' conduction states: the band's edges.
@@ -110,8 +110,8 @@ def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, krow, k
     else:
         for i in range(m):
             zs2[i] = zs3[i]
-        t2 = find_zero(Ms, E, h, s, zs2, zb, t, t_lim, 1.0, gs, tmp, trial, work, row, 0.0,
-                       0.0, t, False, taylor_gap, poly, bnd, k3)
+        t2 = locate_zero(Ms, E, h, s, zs2, zb, t, t_lim, 1.0, gs, tmp, trial, work, row, 0.0,
+                         0.0, t, False, taylor_gap, poly, bnd, k3)
     if t2 >= 0.0 and (tz < 0.0 or t2 < tz):
         for i in range(m):
             zs[i] = zs2[i]

@@ -13,7 +13,6 @@ eigenstructure. :mod:`bucksim.engine.kernels` names these too.
 
 from __future__ import annotations
 
-import numpy as np
 from numba import njit
 
 #: Order of the Taylor series for remainders below the table's last step
@@ -91,7 +90,8 @@ def taylor_step3(Ms, s, z, u):
 def advance(Ms, E, h, s, z, d, tmp):
     """z <- expm(M_s d) @ z for any d >= 0: binary digits of d over the table,
     then the Taylor series for the remainder below its last step. ``tmp``:
-    work space, ``2 m`` entries (fewer makes stages beyond two states allocate)."""
+    work space of at least ``2 m`` entries (the cycle loop, compiled without
+    reference counting, calls this: it must not allocate)."""
     K = h.shape[0]
     r = d
     while r >= h[0]:
@@ -104,7 +104,5 @@ def advance(Ms, E, h, s, z, d, tmp):
     if r > 0.0:
         if z.shape[0] == 3:
             taylor_step3(Ms, s, z, r)
-        elif tmp.shape[0] >= 2 * z.shape[0]:
-            taylor_step(Ms, s, z, r, tmp)
         else:
-            taylor_step(Ms, s, z, r, np.empty(2 * z.shape[0]))
+            taylor_step(Ms, s, z, r, tmp)

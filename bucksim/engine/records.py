@@ -2,10 +2,9 @@
 
 :func:`bucksim.engine.cycles.run_cycles` takes five records instead of
 dozens of positional values. They are named tuples, which numba types field
-by field; the loop opens them once, at its top, and works on plain arrays
-from there (numba counts references to every array of a record handed to a
-function, and those counts cost more than a segment's propagation when paid
-in the loop). :mod:`bucksim.engine.driver` and
+by field; the loop and its inlined helpers read their fields directly (the
+loop runs without reference counting, :mod:`bucksim.engine.cycles`, so that
+costs nothing). :mod:`bucksim.engine.driver` and
 :mod:`bucksim.engine.controlled` build them once per run:
 
 * :class:`StageTables`: what the stage is (systems, transition tables,
@@ -18,7 +17,9 @@ in the loop). :mod:`bucksim.engine.driver` and
 * :class:`CompensatorState`: the digital compensator's state and delay line,
   updated in place so that a chunk continues where the last one stopped;
 * :class:`SegmentBuffers`: the segment columns and the per-period logs the
-  loop fills.
+  loop fills;
+* :class:`Scratch`: the loop's work arrays, allocated once per call (the loop
+  itself runs without reference counting and allocates nothing).
 
 Array shapes use ``n_sys`` systems, ``m = n + 1`` augmented states, ``K``
 table levels, ``n_levels`` operating levels and ``k`` compensator states.
@@ -171,3 +172,20 @@ def segment_buffers(cap: int, n: int, periods: int) -> SegmentBuffers:
     return SegmentBuffers(np.empty(cap), np.empty(cap), np.empty(cap, np.int8),
                           np.empty(cap, np.int32), np.empty((cap, n)),
                           np.full(periods, np.nan), np.full(periods, np.nan))
+
+
+class Scratch(NamedTuple):
+    """Work arrays of the cycle loop and its event searches (``m`` states each)."""
+
+    tmp: np.ndarray         #: (2 m,) propagation scratch
+    trial: np.ndarray       #: event search: trial state
+    work: np.ndarray        #: event search: state at the located event
+    zs: np.ndarray          #: a segment's start state, then the state at its event
+    zs2: np.ndarray         #: a second search's start state
+    zs3: np.ndarray         #: the band-edge search's start state
+    zst: np.ndarray         #: the segment's start state, kept for the hold events
+    zh: np.ndarray          #: the state at a band-edge or hold event
+    erow: np.ndarray        #: a band edge's event row
+    zw: np.ndarray          #: band-edge search scratch
+    poly: np.ndarray        #: (TAYLOR_ORDER + 1, m + 1) Taylor coefficients
+    wnew: np.ndarray        #: (k,) the digital compensator's next state

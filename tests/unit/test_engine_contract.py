@@ -167,6 +167,6 @@ def test_simulate_builds_each_stage_once(path, monkeypatch):
 
 def test_the_cycle_loops_divergence_range_is_the_simulations():
     from bucksim import simulation
-    from bucksim.engine import cycles
+    from bucksim.engine import period
 
-    assert cycles._STATE_RANGE == simulation.STATE_RANGE
+    assert period.STATE_RANGE == simulation.STATE_RANGE

@@ -228,7 +228,8 @@ def run_taylor_zero(args):
     M, z, c, level, ramp, t_ref, t, gap, sign0 = args
     out = z.copy()
     tz = kernels.taylor_zero(M[None], 0, out, t, gap, c, level, ramp, t_ref, False,
-                             np.empty(6), None, sign0)
+                             np.empty(6), np.empty((kernels.TAYLOR_ORDER + 1, out.size + 1)),
+                             sign0)
     return [tz, *out]
 
 
