@@ -331,8 +331,8 @@ class HybridTrace:
 class _Run:
     """Interval bookkeeping and the event logic of one reference run."""
 
-    def __init__(self, c, rtol, atol):
-        self.c, self.rtol, self.atol = c, rtol, atol * c.scales()
+    def __init__(self, c, rtol, atol, method):
+        self.c, self.rtol, self.atol, self.method = c, rtol, atol * c.scales(), method
         self.nfev = 0
         self.t0, self.t1, self.modes, self.bands, self.sols = [], [], [], [], []
         self.jumps = []
@@ -377,11 +377,12 @@ class _Run:
             raise RuntimeError(f"hybrid reference: more than {_MAX_NFEV} right-hand-side "
                                f"calls by t = {t:.9g} s")
         max_step = self.ring / 16 if mode == "open" else np.inf
-        sol = solve_ivp(rhs, (t, t_end), y, method="DOP853", rtol=self.rtol, atol=self.atol,
+        jac = {"jac": A} if self.method in ("Radau", "BDF") else {}   # implicit methods only
+        sol = solve_ivp(rhs, (t, t_end), y, method=self.method, rtol=self.rtol, atol=self.atol,
                         events=[e[0] for e in events] or None, dense_output=True,
-                        max_step=max_step)
+                        max_step=max_step, **jac)
         if not sol.success:
-            raise RuntimeError(f"hybrid reference: DOP853 failed at t = {t:.9g} s: "
+            raise RuntimeError(f"hybrid reference: {self.method} failed at t = {t:.9g} s: "
                                f"{sol.message}")
         return sol
 
@@ -459,7 +460,7 @@ class _Run:
         return y, mode, False
 
 
-def simulate_hybrid(scenario, cycles=None, *, x0=None, rtol=1e-12, atol=1e-16):
+def simulate_hybrid(scenario, cycles=None, *, x0=None, rtol=1e-12, atol=1e-16, method="DOP853"):
     """Reference run of an open-loop stage with switch-node capacitance.
 
     Parameters
@@ -472,9 +473,9 @@ def simulate_hybrid(scenario, cycles=None, *, x0=None, rtol=1e-12, atol=1e-16):
         ``[iL [A], vC [V], vn [V]]`` at ``t = 0``, ``vn`` the node just before
         the first turn-on; default ``run.initial_current``,
         ``run.initial_voltage`` and a discharged node (0 V).
-    rtol, atol : float
-        DOP853 tolerances; ``atol`` is relative to the state scales
-        (:meth:`HybridCircuit.scales`).
+    rtol, atol, method : float, float, str
+        ``solve_ivp`` tolerances (``atol`` relative to :meth:`HybridCircuit.scales`)
+        and method: DOP853, or Radau / BDF (implicit, with the exact Jacobian).
 
     Returns
     -------
@@ -484,7 +485,7 @@ def simulate_hybrid(scenario, cycles=None, *, x0=None, rtol=1e-12, atol=1e-16):
     n = scenario.n_cycles if cycles is None else int(cycles)
     if x0 is None:
         x0 = (scenario.run.initial_current, scenario.run.initial_voltage, 0.0)
-    run = _Run(c, rtol, atol)
+    run = _Run(c, rtol, atol, method)
     y, mode = np.array([*map(float, x0), 0.0]), "open"
     ends = []
     for kc in range(n):
