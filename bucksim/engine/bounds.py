@@ -98,7 +98,7 @@ def system_bounds(Ms):
     return out
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _row_scale(Ms, s, w, skip):
     """Largest off-diagonal row sum of ``W^-1 A W`` over the rows other than ``skip``."""
     n = Ms.shape[1] - 1
@@ -237,7 +237,7 @@ def _cubic(f, s1, s2, B3, u):
     return f + u * (s1 + u * (0.5 * s2 - u * B3 / 6.0))
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def reach3(f, s1, s2, B3):
     """Proven distance over which a function with value ``f > 0``, first and second
     derivatives ``s1``, ``s2`` and a third derivative bounded by ``B3`` stays
@@ -317,7 +317,7 @@ def event_derivatives(Ms, s, c, z, ramp):
     return d1, d2
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def third_norm(Ms, s, c, bnd):
     """``||c_x A_s^2 W_s||_1``: the third derivative of the event function is
     ``(c_x A^2) . x'`` (module notes)."""
@@ -365,7 +365,7 @@ def third_norms(Ms, bnd, rows):
 # independent of the ring frequency, where a Taylor bound needs steps of a
 # quarter of the ring's period.
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def open_node_clear(coef, z, i_vn, d, low, high):
     """``(low_clear, high_clear)``: the open node provably stays off each clamp over
     ``[t, t + d]`` from state ``z`` (energy bound above). ``coef`` is

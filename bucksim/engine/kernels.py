@@ -62,7 +62,7 @@ CONTROL_OPEN, CONTROL_DIGITAL, CONTROL_ANALOG = 0, 1, 2
 _INV_FACTORIAL = (1.0, 1.0, 1 / 2, 1 / 6, 1 / 24, 1 / 120, 1 / 720, 1 / 5040, 1 / 40320)
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def crossing_value(c, z, t, level, ramp, t_ref):
     """Event function ``g = c . z + ramp (t - t_ref) - level``.
 
@@ -79,7 +79,7 @@ def crossing_value(c, z, t, level, ramp, t_ref):
     return acc
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def crossing_slope(Ms, s, c, z, ramp):
     """Time derivative of the event function: ``c . (M_s z) + ramp``."""
     acc = ramp
@@ -229,7 +229,7 @@ def polynomial_zero(g, gap, sign_lo):
 MARCH_STEPS = 200
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _march(Ms, E, h, s, za, t0, f0, s0, q0, t_clear, t_lim, B3, sign0, c, level, ramp,
            t_ref, tmp, trial):
     """March from ``t0`` to the end of each proven reach (module notes on the bound).
@@ -290,7 +290,7 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
                        ramp, t_ref, snap, taylor_gap, coef, bounds, k3)
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def locate_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c, level, ramp,
                 t_ref, snap, taylor_gap, poly, bounds, k3):
     """:func:`find_zero` with every argument given: the work array ``poly``, the
@@ -378,7 +378,7 @@ def _substep_count(guard, mu, a, b):
     return 1
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def conduction_for(gate, strategy, il, node=False):
     """Conduction state entered under ``gate`` with inductor current ``il``.
 

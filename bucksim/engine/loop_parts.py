@@ -13,7 +13,7 @@ from bucksim.engine.bounds import clear_between, growth, reach
 from bucksim.engine.kernels import advance, crossing_slope, crossing_value
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _dot(c, z):
     acc = 0.0
     for j in range(z.shape[0]):
@@ -21,7 +21,7 @@ def _dot(c, z):
     return acc
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _compensate(Ad, Bd, Cd, Dd, w, e, lo, hi, wnew):
     """One digital compensator step with conditional integration; returns the output."""
     k = w.shape[0]
@@ -40,7 +40,7 @@ def _compensate(Ad, Bd, Cd, Dd, w, e, lo, hi, wnew):
     return u
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _needs_search(Ms, s, row, krow, zs, z, t_end_seg, d, guard, sign0, level, ramp, t_ref,
                   bnd):
     """False when the event function provably keeps ``sign0`` over the segment
@@ -70,7 +70,7 @@ def _needs_search(Ms, s, row, krow, zs, z, t_end_seg, d, guard, sign0, level, ra
     return not clear_between(f0, s0, f1, sign0 * crossing_slope(Ms, s, row, z, ramp), d, B)
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def newton_crossing(Ms, E, h, s, zs, t0, d, row, krow, bnd, tmp, work):
     """A proven first downward crossing of ``row . z = 0`` in ``(0, d]``, by Newton.
 

@@ -63,7 +63,7 @@ def step_band(edges, level, band, kind):
     return band
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, edges, level, band,
                     e_vn, kvn, k3vn, taylor_gap, tmp, trial, work, poly, bnd, erow):
     """The earlier of the event so far (``tz``, ``kind``; ``zs`` its state) and the
@@ -85,7 +85,7 @@ def band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, edges
     return tz, kind
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, krow, k3, this,
              taylor_gap, tmp, trial, work, poly, bnd):
     """Search ``row . z = 0`` (positive at the start) from the segment's start ``zs3``
@@ -119,7 +119,7 @@ def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, krow, k
     return tz, kind
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def _leaving(Ms, s, row, krow, z0, d, bnd):
     """True when ``f = row . z``, at or above zero at the start and rising, provably
     stays above zero over ``(0, d]`` (the node just crossed this edge and moves away):
@@ -142,7 +142,7 @@ def _leaving(Ms, s, row, krow, z0, d, bnd):
     return reach(f0, s0, B) > d
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def open_stretch(coef, z, i_vn, d, low, high, search_ls, search_hs):
     """``(length, low_clear, high_clear)`` for an open segment of ``d`` [s] from
     state ``z``: the ring-energy bound (:func:`~bucksim.engine.bounds.open_node_clear`)

@@ -39,7 +39,7 @@ def apply(E, s, k, z, tmp):
         z[i] = tmp[i]
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def derivative(Ms, s, z, row):
     """Component ``row`` of M_s @ z."""
     acc = 0.0
@@ -48,7 +48,7 @@ def derivative(Ms, s, z, row):
     return acc
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def taylor_step(Ms, s, z, u, tmp):
     """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER, for short ``u``.
 
@@ -86,7 +86,7 @@ def taylor_step3(Ms, s, z, u):
     z[0], z[1], z[2] = a0, a1, a2
 
 
-@njit(cache=True)
+@njit(cache=True, _nrt=False)
 def advance(Ms, E, h, s, z, d, tmp):
     """z <- expm(M_s d) @ z for any d >= 0: binary digits of d over the table,
     then the Taylor series for the remainder below its last step. ``tmp``:
