@@ -38,7 +38,7 @@ from bucksim.analysis.switching import switching_energy
 from bucksim.analysis.transients import transients as event_metrics
 from bucksim.analysis.windows import window_pieces
 from bucksim.model.capacitance import charge, energy
-from bucksim.model.stage import IDLE, OPEN, current_reverses, zero_current_states
+from bucksim.model.stage import HIGH, IDLE, LOW, OPEN, current_reverses, zero_current_states
 
 
 def summarize(run, cycles: int | None = None) -> Summary:
@@ -83,13 +83,16 @@ def summarize(run, cycles: int | None = None) -> Summary:
         efficiency=p_out / p_in if p_in > 0 else 0.0,
         energy_balance_error=float(balance),
         transients=tuple(Transient(**e) for e in event_metrics(run)),
-        switch_node=_switch_node(run.stage, t_stop),
+        switch_node=_switch_node(run, t_stop, node),
         strategy=run.scenario.switching.strategy,
     )
 
 
-def _switch_node(stage, t: float) -> SwitchNode | None:
-    """Qoss and Eoss of each device at the input voltage in force at ``t``."""
+def _switch_node(run, t: float, node: dict) -> SwitchNode | None:
+    """Qoss and Eoss of each device at the input voltage in force at ``t``, and the
+    node voltage each channel closed on at its turn-ons (``node``: the window's
+    :func:`~bucksim.analysis.edges.node_transfers`)."""
+    stage = run.stage
     if not stage.node:
         return None
     curve = stage.curves[stage.level_at(t)]
@@ -98,7 +101,22 @@ def _switch_node(stage, t: float) -> SwitchNode | None:
                       high_side_qoss=float(charge(curve.high, v)),
                       high_side_eoss=float(energy(curve.high, v)),
                       low_side_qoss=float(charge(curve.low, v)),
-                      low_side_eoss=float(energy(curve.low, v)))
+                      low_side_eoss=float(energy(curve.low, v)),
+                      high_side_turn_on=_turn_on_node(run, node, HIGH),
+                      low_side_turn_on=_turn_on_node(run, node, LOW))
+
+
+def _turn_on_node(run, node: dict, channel: int) -> tuple[float, float, float] | None:
+    """``(min, mean, max)`` [V] of the node just before each turn-on of ``channel``
+    (a piece of it that starts a segment after one in another state), or None."""
+    seg = run.segments
+    idx = node["index"]
+    starts = (node["conduction"] == channel) & (idx > 0) & (node["t"] == seg.t0[idx])
+    starts &= seg.conduction[np.maximum(idx - 1, 0)] != channel
+    v = node["v_from"][starts]
+    if v.size == 0:
+        return None
+    return float(v.min()), float(v.mean()), float(v.max())
 
 
 def _mode(run, idx, lengths):

@@ -156,6 +156,10 @@ class SwitchNode:
     device's ``qoss`` [C] and ``eoss`` [J] are its output charge and stored energy
     at ``Vds = input_voltage`` (the freewheel diode's from its ``cj``), from its
     ``coss`` (a number or a table, :mod:`bucksim.model.capacitance`).
+    ``high_side_turn_on`` and ``low_side_turn_on`` [V]: the node voltage the
+    switch's channel closed on at its turn-ons in the window, ``(min, mean, max)``
+    (None when it did not turn on): ``Vin`` minus it is the high side's
+    drain-source voltage at turn-on (0 at full ZVS, ``Vin + Vf`` when hard).
     """
 
     input_voltage: float
@@ -164,6 +168,19 @@ class SwitchNode:
     high_side_eoss: float
     low_side_qoss: float
     low_side_eoss: float
+    high_side_turn_on: tuple[float, float, float] | None = None
+    low_side_turn_on: tuple[float, float, float] | None = None
+
+
+def _switch_node_from(data) -> SwitchNode | None:
+    """A :class:`SwitchNode` from its dict (JSON gives the turn-on triples as lists)."""
+    if not data:
+        return None
+    d = dict(data)
+    for key in ("high_side_turn_on", "low_side_turn_on"):
+        if d.get(key) is not None:
+            d[key] = tuple(float(v) for v in d[key])
+    return SwitchNode(**d)
 
 
 @dataclass(frozen=True)
@@ -253,8 +270,7 @@ class Summary:
                    energy_balance_error=data["energy_balance_error"],
                    transients=tuple(Transient(**e) for e in data.get("transients", ())),
                    zero_current_in_dead_time=data.get("zero_current_in_dead_time", False),
-                   switch_node=(SwitchNode(**data["switch_node"]) if data.get("switch_node")
-                                else None),
+                   switch_node=_switch_node_from(data.get("switch_node")),
                    strategy=strategy)
 
     def with_transients(self, events) -> Summary:
@@ -347,6 +363,11 @@ class Summary:
                       f"{format_si(sn.high_side_eoss, 'J')}   low side Qoss "
                       f"{format_si(sn.low_side_qoss, 'C')}, Eoss "
                       f"{format_si(sn.low_side_eoss, 'J')}"]
+            for side, v in (("high", sn.high_side_turn_on), ("low", sn.low_side_turn_on)):
+                if v is not None:
+                    lines.append(f"              {side} side turns on at node "
+                                 f"{format_si(v[1], 'V')} (min {format_si(v[0], 'V')}, "
+                                 f"max {format_si(v[2], 'V')})")
         inductor = self.devices.get("inductor")
         if inductor is not None and inductor.core_loss is not None:
             lines.append(f"{'inductor core (iGSE)':<22}{'':>24}"

@@ -296,3 +296,21 @@ def test_states_agree_with_an_implicit_solver(name):
     for a, b in zip(*_energy_windows(tr.circuit), strict=True):
         ref = float(np.diff(tr.at(np.array([a, b]), "energy"))[0])
         assert abs(supply_energy(run, a, b) - ref) < REL * abs(ref), (a, ref)
+
+
+@pytest.mark.parametrize("name", ["forced_pwm_light_partial_zvs", "forced_pwm_light_full_zvs",
+                                  "dcm_diode_emulation"])
+def test_turn_on_node_voltage_in_the_summary(name):
+    """``Summary.switch_node.high_side_turn_on``: the node the high side closes on, at
+    every turn-on in the summary window, equals the reference's node just before the
+    period starts (partial ZVS, full ZVS at the body diode's clamp, the DCM ring's
+    phase) to ``REL`` of Vin."""
+    _, tr, run = _case(name)
+    w = run.summary().window
+    k = np.arange(round(w.start / T), round(w.stop / T))
+    k = k[k > 0]
+    ref = _left_limit(tr, k * T)[:, 2]
+    lo, mean, hi = run.summary().switch_node.high_side_turn_on
+    vin = tr.circuit.vin
+    assert abs(lo - ref.min()) < REL * vin and abs(hi - ref.max()) < REL * vin
+    assert abs(mean - ref.mean()) < REL * vin
