@@ -35,12 +35,14 @@ import math
 from bucksim.analysis.budget_ring import (
     idle_ring,
     node_parts,
+    ramp_mean_square,
     rlc_square,
     rlc_swing,
     rlc_time_to,
     transfer,
 )
 from bucksim.analysis.edges import snubbed_turn_off
+from bucksim.analysis.recovery import recovery_parameters
 from bucksim.model.parts import Mosfet
 
 _EM5 = ("Erickson & Maksimovic 3rd ed. ch. 5 (DCM from the duty) and app. A "
@@ -278,17 +280,12 @@ def dcm_point(scenario, D: float) -> dict | None:
             "d3": per["t_idle"] / T, "vo_no_ring": free[0], **{k: per[k] for k in keys}}
 
 
-def _ms(i_a: float, i_b: float) -> float:
-    """Mean square [A^2] of a linear ramp from ``i_a`` to ``i_b`` (app. A of [1]_)."""
-    return (i_a * i_a + i_a * i_b + i_b * i_b) / 3.0
-
-
 def inductor_mean_square(op: dict) -> float:
     """Mean square of iL [A^2] over the DCM period: the ramps (app. A of [1]_) and
     the node's swing and the idle ring (:mod:`bucksim.analysis.budget_ring`)."""
     T, pk, i_s, i_c = 1.0 / op["frequency"], op["peak"], op["i_swing"], op["i_channel"]
-    return (op["duty"] * T * _ms(op["i_on"], pk) + op["swing_square"]
-            + op["t_diode"] * _ms(i_s, i_c) + op["t_channel"] * i_c * i_c / 3.0
+    return (op["duty"] * T * ramp_mean_square(op["i_on"], pk) + op["swing_square"]
+            + op["t_diode"] * ramp_mean_square(i_s, i_c) + op["t_channel"] * i_c * i_c / 3.0
             + op["ring_square"]) / T
 
 
@@ -299,10 +296,10 @@ def dcm_conduction(scenario, op: dict) -> list[tuple]:
     hs, ls = scenario.high_side, scenario.low_side
     sync = isinstance(ls, Mosfet)
     d = ls.body_diode if sync else ls
-    ms_on = D * _ms(op["i_on"], pk)
+    ms_on = D * ramp_mean_square(op["i_on"], pk)
     ms_l = inductor_mean_square(op)
     ramp = "straight ramps with first-order drops"
-    diode = ((d.vf * 0.5 * (i_s + i_c) + d.r * _ms(i_s, i_c)) * op["t_diode"] * fs,
+    diode = ((d.vf * 0.5 * (i_s + i_c) + d.r * ramp_mean_square(i_s, i_c)) * op["t_diode"] * fs,
              "(Vf (I_s + I_c)/2 + r (I_s^2 + I_s I_c + I_c^2)/3) t_diode fs")
     bd = hs.body_diode
     hs_diode = ("high_side_body_diode.conduction", "high_side_body_diode", "conduction",
@@ -391,7 +388,6 @@ def dcm_switching(scenario, op: dict) -> list[tuple]:
 
 def _recovered(diode, op: dict) -> float:
     """Charge [C] the low-side diode gives up at high-side turn-on in DCM."""
-    from bucksim.analysis.recovery import recovery_parameters
     tau, k = recovery_parameters(diode)
     if tau <= 0.0:
         return 0.0

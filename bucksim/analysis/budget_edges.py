@@ -33,6 +33,7 @@ from bucksim.analysis.budget_ring import (
     slew_to,
     transfer,
 )
+from bucksim.analysis.recovery import recovery_parameters
 from bucksim.model.parts import Mosfet
 
 
@@ -194,7 +195,6 @@ def recovered_ccm(scenario, op) -> float:
     (:func:`~bucksim.analysis.budget_dcm.stored_charge`), decaying in between; the
     high-side body diode's charge (reverse current) decays over ``D T + t_fall``.
     """
-    from bucksim.analysis.recovery import recovery_parameters
     ls, hs = scenario.low_side, scenario.high_side
     sync = isinstance(ls, Mosfet)
     diode = ls.body_diode if sync else ls

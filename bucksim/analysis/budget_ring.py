@@ -69,15 +69,6 @@ class Node:
     def R(self) -> float:
         return self.rn + self.dcr
 
-    def over(self, v_a: float, v_b: float) -> Node:
-        """The node with the charge-equivalent capacitance of the span ``v_a .. v_b``
-        [V], ``Q(v_a -> v_b) / (v_b - v_a)`` (itself when linear): the linear ``Cn``
-        a swing or ring over that span takes."""
-        if self.curve is None or v_a == v_b:
-            return self
-        cn = slew_charge(self, v_a, v_b) / abs(v_b - v_a)
-        return Node(cn, self.curve, self.rn, self.dcr, self.L)
-
 
 def node_parts(scenario) -> Node:
     """The :class:`Node` of ``scenario``."""
@@ -309,8 +300,9 @@ def lc_dead_time_integral(node: Node, vo: float, v0: float, i0: float, clamp: fl
     return swing + clamp * (td - t1)
 
 
-def _ms(i_a: float, i_b: float) -> float:
-    """Mean square [A^2] of a linear ramp from ``i_a`` to ``i_b``."""
+def ramp_mean_square(i_a: float, i_b: float) -> float:
+    """Mean square [A^2] of a linear ramp from ``i_a`` to ``i_b``: ``(i_a^2 + i_a i_b +
+    i_b^2) / 3`` (Erickson & Maksimovic, app. A; from memory)."""
     return (i_a * i_a + i_a * i_b + i_b * i_b) / 3.0
 
 
@@ -381,8 +373,8 @@ def idle_ring(node: Node, vo: float, v_open: float, t_idle: float, vin: float,
         out["clamp_step"] = transfer(node, vin, v, vc - r_h * i)
         t2 = min(L * -i / (vc - vo), rest) if i < 0 else 0.0
         i2 = i + (vc - vo) * t2 / L
-        out.update(clamp_charge=-0.5 * (i + i2) * t2, clamp_square=_ms(i, i2) * t2)
-        q, sq, v, i = q + 0.5 * (i + i2) * t2, sq + _ms(i, i2) * t2, vc - r_h * i2, i2
+        out.update(clamp_charge=-0.5 * (i + i2) * t2, clamp_square=ramp_mean_square(i, i2) * t2)
+        q, sq, v, i = q + 0.5 * (i + i2) * t2, sq + ramp_mean_square(i, i2) * t2, vc - r_h * i2, i2
         if rest > t2:
             v0, i0 = v, i
             v, i = rlc_swing(L, R, cn, vo, v0, i0, rest - t2)

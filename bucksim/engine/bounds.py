@@ -158,11 +158,20 @@ def growth(x):
 @njit(cache=True, inline="always")
 def current_clear(Ms, s, zs, z, d, sign0, kil, bnd):
     """True when ``sign0 iL`` provably stays positive from ``zs`` to ``z`` (a
-    segment of length ``d``): :func:`clear_between` with the bound of
-    :func:`curvature_bound` for the row ``e_iL``, its ``||A[0] W||_1`` given
-    per system in ``kil`` (the zero-current test of every diode segment)."""
-    f0 = sign0 * zs[0]
-    f1 = sign0 * z[0]
+    segment of length ``d``): :func:`state_clear` for the state ``iL``, its
+    ``||A[0] W||_1`` given per system in ``kil`` (the zero-current test of every
+    diode segment)."""
+    return state_clear(Ms, s, 0, 0.0, zs, z, d, sign0, kil[s], bnd)
+
+
+@njit(cache=True, inline="always")
+def state_clear(Ms, s, k, level, zs, z, d, sign0, norm, bnd):
+    """True when ``sign0 (z[k] - level)`` provably stays positive from ``zs`` to ``z``
+    (a segment of length ``d``): :func:`clear_between` with the bound of
+    :func:`curvature_bound` for the row of state ``k``, ``norm = ||A[k] W||_1``
+    for system ``s``."""
+    f0 = sign0 * (zs[k] - level)
+    f1 = sign0 * (z[k] - level)
     if f0 <= 0.0 or f1 <= 0.0:
         return False
     n = zs.shape[0] - 1
@@ -172,16 +181,16 @@ def current_clear(Ms, s, zs, z, d, sign0, kil, bnd):
         acc = 0.0
         for j in range(n + 1):
             acc += Ms[s, i, j] * zs[j]
-        if i == 0:
+        if i == k:
             s0 = sign0 * acc
         vel = max(vel, abs(acc) * bnd[s, i])
-    B = kil[s] * vel * growth(bnd[s, n] * d) * (1.0 + 1e-12)
+    B = norm * vel * growth(bnd[s, n] * d) * (1.0 + 1e-12)
     # Taylor from the start over the whole segment first (no division, no root)
     if f0 + min(s0, 0.0) * d - 0.5 * B * d * d > 0.0:
         return True
     s1 = 0.0
     for j in range(n + 1):
-        s1 += Ms[s, 0, j] * z[j]
+        s1 += Ms[s, k, j] * z[j]
     return clear_between(f0, s0, f1, sign0 * s1, d, B)
 
 

@@ -283,9 +283,6 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
     m = za.shape[0]
     bounds = system_bounds(Ms) if bnd is None else bnd
     coef = np.empty((TAYLOR_ORDER + 1, m + 1)) if poly is None else poly
-    # the third derivative is (c_x A^2) . x', bounded through k3 = ||c_x A^2 W||_1
-    if k3 < 0.0:
-        k3 = third_norm(Ms, s, c, bounds)
     return locate_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c, level,
                        ramp, t_ref, snap, taylor_gap, coef, bounds, k3)
 
@@ -298,6 +295,7 @@ def locate_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c, le
     so the cycle loop (compiled without reference counting) can call it."""
     m = za.shape[0]
     n = m - 1
+    # the third derivative is (c_x A^2) . x', bounded through k3 = ||c_x A^2 W||_1
     if k3 < 0.0:
         k3 = third_norm(Ms, s, c, bounds)
     f0 = sign0 * crossing_value(c, za, a, level, ramp, t_ref)

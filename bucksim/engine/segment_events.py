@@ -16,7 +16,7 @@ Each first runs the cheap test of :mod:`bucksim.engine.bounds` that proves most
 segments free of a crossing, then :func:`~bucksim.engine.kernels.locate_zero` on
 the exact solution; ``zs`` is overwritten with the state at the event. They
 take the stage's records (:mod:`bucksim.engine.records`) and the loop's
-scratch arrays ``sc`` (:func:`bucksim.engine.cycles.scratch`) and are inlined
+scratch arrays ``sc`` (:class:`~bucksim.engine.records.Scratch`) and are inlined
 into the loop (:mod:`bucksim.engine.period` says why that is free).
 """
 
@@ -25,7 +25,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from bucksim.engine.bounds import clear_between, current_clear, growth
+from bucksim.engine.bounds import current_clear, state_clear
 from bucksim.engine.kernels import CONTROL_ANALOG, HIGH_DIODE, LOW_DIODE, OPEN, locate_zero
 from bucksim.engine.loop_parts import _needs_search, newton_crossing
 from bucksim.engine.open_node import band_edge_event
@@ -154,7 +154,9 @@ def hold_event(tab, ctl, s, level, held, tz, zs, z, t, t_stop, gs, sc):
             continue
         dh = t_h - t
         if kind < 3:
-            if _integrator_stays(Ms, bnd, ctl.kw[0, s], s, i_w, zst, zb, dh, hsign, hlev, gs):
+            # the integrator's own row: the cheap test of the state itself
+            if dh <= gs and state_clear(Ms, s, i_w, hlev, zst, zb, dh, hsign, ctl.kw[0, s],
+                                        bnd):
                 continue
         elif not _needs_search(Ms, s, hrow, ctl.kce[level, s], zst, zb, t_h, dh, gs, hsign,
                                hlev, 0.0, t, bnd):
@@ -173,31 +175,3 @@ def hold_event(tab, ctl, s, level, held, tz, zs, z, t, t_stop, gs, sc):
             zs[i] = zh[i]
         return th, found
     return tz, 0
-
-
-@njit(inline="always")
-def _integrator_stays(Ms, bnd, kw, s, i_w, zst, zb, dh, hsign, hlev, gs):
-    """True when the integrator's row ``hsign (w - hlev)`` provably stays positive over
-    the segment: the curvature bound from its start, else both ends' reaches
-    (:func:`~bucksim.engine.bounds.current_clear` for the row ``e_w``)."""
-    f0h = hsign * (zst[i_w] - hlev)
-    f1h = hsign * (zb[i_w] - hlev)
-    if not (dh <= gs and f0h > 0.0 and f1h > 0.0):
-        return False
-    m = zst.shape[0]
-    s0h = 0.0
-    vel = 0.0
-    for i in range(m - 1):
-        acc = 0.0
-        for j in range(m):
-            acc += Ms[s, i, j] * zst[j]
-        if i == i_w:
-            s0h = hsign * acc
-        vel = max(vel, abs(acc) * bnd[s, i])
-    B = kw * vel * growth(bnd[s, m - 1] * dh) * (1.0 + 1e-12)
-    if f0h + min(s0h, 0.0) * dh - 0.5 * B * dh * dh > 0.0:
-        return True
-    s1h = 0.0
-    for j in range(m):
-        s1h += Ms[s, i_w, j] * zb[j]
-    return clear_between(f0h, s0h, f1h, hsign * s1h, dh, B)

@@ -24,7 +24,6 @@ SCENARIOS = ("telemetry_rail_1v8_analog", "startup_5v_softstart", "dock_rail_5v_
 
 SCRIPT = """
 import sys
-from bucksim.engine import cycles
 import bucksim
 for name in sys.argv[1:]:
     run = bucksim.simulate(bucksim.load_scenario(f"scenarios/{name}.toml"))
