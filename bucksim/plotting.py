@@ -34,8 +34,11 @@ ITEM_COLOURS = ("#3b6ea5", "#9cc3e6", "#7b5ea7", "#8c5e34", "#c8553d", "#f0a58f"
                 "#2f2f2f")
 SIGNAL_NAMES = {"iL": "inductor current iL", "vsw": "switch node vsw", "vo": "output vo",
                 "vC": "capacitor voltage vC", "io": "load current io",
-                "ic": "capacitor current iC", "iin": "supply current iin",
-                "vin": "supply voltage vin", "high_side": "high-side current",
+                "ic": "capacitor current iC", "iin": "switch-cell input current iin",
+                "vin": "switch-cell input voltage vin", "vs": "source voltage vs",
+                "vterm": "input terminals vterm", "isrc": "source current isrc",
+                "icin": "input capacitor current icin", "ilf": "input filter current ilf",
+                "idamp": "filter damping current", "high_side": "high-side current",
                 "low_side": "low-side current",
                 "high_side_body_diode": "high-side body-diode current",
                 "low_side_body_diode": "low-side body-diode current",

@@ -147,8 +147,14 @@ class Run:
     @property
     def signals(self) -> tuple:
         """Names this run can evaluate: :data:`SIGNALS`, plus ``u`` and ``vref`` in an
-        analog loop."""
-        return SIGNALS + (LOOP_SIGNALS if self.stage.analog else ())
+        analog loop, and the input side's (``vs``, ``vterm``, ``isrc``, ``icin``,
+        ``icin1`` .., ``ilf``, ``idamp``, ``irp``) with an input capacitor."""
+        net = self.stage.net
+        extra = () if net is None else (("vs", "vterm", "isrc", "icin")
+                                         + tuple(k for k in net.rows if k[:4] == "icin"
+                                                 and k != "icin")
+                                         + ("ilf", "idamp", "irp"))
+        return SIGNALS + (LOOP_SIGNALS if self.stage.analog else ()) + extra
 
     @property
     def period(self) -> float:

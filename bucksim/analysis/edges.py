@@ -105,7 +105,10 @@ def node_transfers(run, t_start: float, t_stop: float | None = None) -> dict:
         z_b = run.augmented_at(seg.t0[idx[~full]] + tau_b[~full])[0]
         v_to[~full] = np.einsum("ij,ij->i", rows[~full], z_b)
     level = seg.system[idx] // (N_CONDUCTION * stage.n_modes * stage.n_bands)
-    vin = np.array([lev.vin for lev in stage.levels])[level]
+    if stage.net is None:
+        vin = np.array([lev.vin for lev in stage.levels])[level]
+    else:   # the cell's voltage as the piece starts (the input capacitor's side)
+        vin = np.einsum("ij,ij->i", run.signal_table("vin")[seg.system[idx]], z_a)
     high = np.isin(cond, (HIGH, HIGH_DIODE))
     v_path = np.where(high, vin, 0.0)
     # the charge moved through the closing branch, and the energy it leaves there:

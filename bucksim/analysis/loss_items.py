@@ -13,7 +13,8 @@ LOSS_ITEMS = ("high_side.conduction", "high_side.switching", "high_side_body_dio
               "low_side.switching",
               "low_side_body_diode.conduction", "switch_node.resistance", "inductor.dcr",
               "inductor.core",
-              "output_capacitor.esr", "supply.resistance")
+              "output_capacitor.esr", "supply.resistance", "input_capacitor.esr",
+              "input_filter.resistance", "input_filter_damping.resistance")
 
 _ITEM_LABELS = {
     "high_side.conduction": "high side conduction", "high_side.switching": "high side switching",
@@ -24,7 +25,10 @@ _ITEM_LABELS = {
     "low_side_body_diode.conduction": "low-side body diode",
     "switch_node.resistance": "switch-node resistance",
     "inductor.dcr": "inductor DCR", "inductor.core": "inductor core",
-    "output_capacitor.esr": "output capacitor ESR", "supply.resistance": "supply resistance"}
+    "output_capacitor.esr": "output capacitor ESR", "supply.resistance": "supply resistance",
+    "input_capacitor.esr": "input capacitor ESR",
+    "input_filter.resistance": "input filter resistance",
+    "input_filter_damping.resistance": "input filter damping"}
 
 
 def item_label(item: str) -> str:

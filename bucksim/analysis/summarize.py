@@ -27,8 +27,10 @@ from bucksim.analysis.summary import (
     Device,
     FluxDensity,
     InductorCurrent,
+    InputVoltage,
     OutputVoltage,
     Power,
+    SourceCurrent,
     Summary,
     SwitchNode,
     Transient,
@@ -62,9 +64,18 @@ def summarize(run, cycles: int | None = None) -> Summary:
     loss += e_core
     # formula energies (overlap, recovery, gate, core) are added to both sides; the
     # node's charge transfers are circuit: their source energy is the supply's own
-    e_in = ig.integral("vin", "iin") + float(np.sum(node["supply"])) + e_sw + e_core
+    e_formula = float(np.sum(node["supply"])) + e_sw + e_core
     e_out = ig.integral("vo", "io")
-    balance = _balance_error(run, t_start, e_in, e_out, loss)
+    side = _input_side(run.stage, ig, devices, width)
+    if side is None:
+        e_in = e_source = ig.integral("vin", "iin") + e_formula
+        e_source_loss = 0.0
+    else:
+        loss += side["loss"]
+        e_source_loss = side["source_loss"]
+        e_source = ig.integral("vs", "isrc") + e_formula
+        e_in = ig.integral("vterm", "isrc") + e_formula
+    balance = _balance_error(run, t_start, e_source, e_out, loss + e_source_loss)
     il_min, il_max = extrema(run, "iL", idx, tau_a, tau_b)
     vo_min, vo_max = extrema(run, "vo", idx, tau_a, tau_b)
     mode, dead_zero = _mode(run, idx, tau_b - tau_a)
@@ -79,11 +90,14 @@ def summarize(run, cycles: int | None = None) -> Summary:
         inductor_current=InductorCurrent(mean=ig.mean("iL"), rms=ig.rms("iL"), min=il_min,
                                          max=il_max, ripple=il_max - il_min),
         devices={name: _device(d) for name, d in devices.items()},
-        power=Power(input=p_in, output=p_out, loss=loss / width),
+        power=Power(input=p_in, output=p_out, loss=loss / width,
+                    source_loss=None if side is None else e_source_loss / width),
         efficiency=p_out / p_in if p_in > 0 else 0.0,
         energy_balance_error=float(balance),
         transients=tuple(Transient(**e) for e in event_metrics(run)),
         switch_node=_switch_node(run, t_stop, node),
+        input_voltage=None if side is None else side["voltage"],
+        source_current=None if side is None else side["current"],
         strategy=run.scenario.switching.strategy,
     )
 
@@ -221,9 +235,37 @@ def _conduction(stage, ig, width):
     e_dcr = add("inductor", "iL", stage.dcr * ig.square("iL"))
     e_esr = add("output_capacitor", "ic", stage.esr * ig.square("ic"))
     total += e_dcr + e_esr
-    if stage.rs > 0:
+    if stage.rs > 0 and stage.net is None:
         total += add("supply", "iin", stage.rs * ig.square("iin"))
     return devices, total
+
+
+def _input_side(stage, ig, devices, width):
+    """The input network's devices (added to ``devices``), their loss [J], the
+    source resistance's loss [J], and the cell voltage and source current
+    records; None without an input capacitor."""
+    net = stage.net
+    if net is None:
+        return None
+    total = 0.0
+    for name, signal, r in net.losses:
+        energy = r * ig.square(signal)
+        total += energy
+        if name in devices:         # the filter's parallel resistor joins its inductor
+            devices[name]["conduction_loss"] += energy / width
+            continue
+        devices[name] = {"rms": ig.rms(signal), "mean": ig.mean(signal),
+                         "conduction_loss": energy / width, "switching_loss": 0.0}
+    run = ig.run
+    lo, hi = _cell_extrema(run, ig)
+    return {"loss": total, "source_loss": net.source_resistance * ig.square("isrc"),
+            "voltage": InputVoltage(mean=ig.mean("vin"), min=lo, max=hi, ripple=hi - lo),
+            "current": SourceCurrent(mean=ig.mean("isrc"), rms=ig.rms("isrc"))}
+
+
+def _cell_extrema(run, ig):
+    idx, tau_a, tau_b, _ = window_pieces(run, run.t_end - ig.width)
+    return extrema(run, "vin", idx, tau_a, tau_b)
 
 
 def _switching(run, devices, t_start, t_stop):

@@ -19,7 +19,9 @@ from dataclasses import dataclass, field
 from bucksim.analysis.loss_items import LOSS_ITEMS, item_label  # noqa: F401 (re-exported)
 
 DEVICE_ORDER = ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode",
-                "switch_node", "inductor", "output_capacitor", "supply")
+                "switch_node", "inductor", "output_capacitor", "supply", "input_capacitor",
+                *(f"input_capacitor_{k}" for k in range(2, 9)), "input_filter",
+                "input_filter_damping")
 
 #: A mean current below this share of the same current's RMS (its natural
 #: scale: RMS >= |mean|) prints as 0. The exact integrals carry rounding of
@@ -140,12 +142,38 @@ class Device:
 
 @dataclass(frozen=True)
 class Power:
-    """Mean powers over the window [W]: ``input`` (supply, switching and core
-    energy included), ``output`` (to the load) and ``loss``."""
+    """Mean powers over the window [W]: ``input`` (switching and core energy
+    included), ``output`` (to the load) and ``loss``.
+
+    With an input capacitor, ``input`` is the power at the converter's input
+    terminals (the source side of the filter or capacitor), and
+    ``source_loss``, the source resistance's, is in neither ``input`` nor
+    ``loss``. Without one, ``input`` is the ideal source's power and the
+    source resistance is the ``supply`` device inside ``loss``.
+    """
 
     input: float
     output: float
     loss: float
+    source_loss: float | None = field(default=None, metadata=_OPTIONAL)
+
+
+@dataclass(frozen=True)
+class InputVoltage:
+    """The switch cell's input voltage over the window [V] (with an input capacitor)."""
+
+    mean: float
+    min: float
+    max: float
+    ripple: float
+
+
+@dataclass(frozen=True)
+class SourceCurrent:
+    """The current the source delivers [A] (with an input capacitor)."""
+
+    mean: float
+    rms: float
 
 
 @dataclass(frozen=True)
@@ -234,6 +262,9 @@ class Summary:
         dead time (a body diode stopped conducting); the mode stays ``"ccm"``
     switch_node : SwitchNode or None  the node's capacitance, Qoss and Eoss at the
         input voltage (None without node capacitance)
+    input_voltage : InputVoltage or None  the switch cell's input voltage (None
+        without an input capacitor)
+    source_current : SourceCurrent or None  the source's current (likewise)
     strategy : str or None        the stage's switching strategy (names the
         asynchronous low side a freewheel diode in :meth:`loss_items`); not
         part of :meth:`to_dict`
@@ -251,6 +282,8 @@ class Summary:
     transients: tuple = ()
     zero_current_in_dead_time: bool = False
     switch_node: SwitchNode | None = field(default=None, metadata={"optional": True})
+    input_voltage: InputVoltage | None = field(default=None, metadata=_OPTIONAL)
+    source_current: SourceCurrent | None = field(default=None, metadata=_OPTIONAL)
     strategy: str | None = field(default=None, compare=False, metadata={"internal": True})
 
     # -- plain views ------------------------------------------------------------
@@ -271,6 +304,8 @@ class Summary:
                    transients=tuple(Transient(**e) for e in data.get("transients", ())),
                    zero_current_in_dead_time=data.get("zero_current_in_dead_time", False),
                    switch_node=_switch_node_from(data.get("switch_node")),
+                   input_voltage=_record(InputVoltage, data.get("input_voltage")),
+                   source_current=_record(SourceCurrent, data.get("source_current")),
                    strategy=strategy)
 
     def with_transients(self, events) -> Summary:
@@ -320,6 +355,12 @@ class Summary:
         out["output_capacitor.esr"] = d["output_capacitor"].conduction_loss
         if "supply" in d:
             out["supply.resistance"] = d["supply"].conduction_loss
+        banks = [v.conduction_loss for k, v in d.items() if k.startswith("input_capacitor")]
+        if banks:
+            out["input_capacitor.esr"] = sum(banks)
+        for dev in ("input_filter", "input_filter_damping"):
+            if dev in d:
+                out[f"{dev}.resistance"] = d[dev].conduction_loss
         return out
 
     def plot(self, *, title: str | None = None, size=(7.0, 4.5)):
@@ -372,10 +413,17 @@ class Summary:
         if inductor is not None and inductor.core_loss is not None:
             lines.append(f"{'inductor core (iGSE)':<22}{'':>24}"
                          f"{format_si(inductor.core_loss, 'W'):>13}")
+        if self.input_voltage is not None:
+            v, src = self.input_voltage, self.source_current
+            lines += [f"input         cell mean {format_si(v.mean, 'V')}   ripple "
+                      f"{format_si(v.ripple, 'V')} p-p   source current mean "
+                      f"{format_si(src.mean, 'A')}, rms {format_si(src.rms, 'A')}"]
         lines += [
             "",
             f"power         in {format_si(p.input, 'W')}   out {format_si(p.output, 'W')}"
-            f"   loss {format_si(p.loss, 'W')}",
+            f"   loss {format_si(p.loss, 'W')}"
+            + ("" if p.source_loss is None else
+               f"   (source resistance {format_si(p.source_loss, 'W')}, outside)"),
             f"efficiency    {100 * self.efficiency:.3f} %",
             f"energy balance error {self.energy_balance_error:.2e} (relative)",
         ]
@@ -388,6 +436,10 @@ class Summary:
 
     def __repr__(self):
         return f"<Summary efficiency={self.efficiency:.5f} mode={self.mode}>"
+
+
+def _record(cls, data):
+    return None if data is None else cls(**data)
 
 
 def _transient_table(events) -> str:

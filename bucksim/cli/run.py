@@ -87,7 +87,20 @@ def _cmd_run(args) -> int:
     else:
         summary = run.summary(cycles=args.summary_cycles)
     print_summary(summary, scenario, n_segments, path, args)
+    _warn_filter(scenario, summary, path)
     return EXIT_OK if status == 0 else EXIT_USER
+
+
+def _warn_filter(scenario, summary, path):
+    """Warn on stderr when a closed loop's input filter has a thin margin
+    (:func:`bucksim.analysis.input_filter.filter_interaction`)."""
+    if scenario.control.mode == "open-loop" or scenario.input_capacitor is None:
+        return
+    from bucksim.analysis.input_filter import filter_interaction
+
+    check = filter_interaction(scenario, summary.power.input)
+    if check is not None and check.thin:
+        print(f"bucksim: warning: {path}: {check.message()}", file=sys.stderr)
 
 
 def _cmd_report(args) -> int:

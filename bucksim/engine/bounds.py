@@ -378,8 +378,9 @@ def third_norms(Ms, bnd, rows):
 def open_node_clear(coef, z, i_vn, d, low, high):
     """``(low_clear, high_clear)``: the open node provably stays off each clamp over
     ``[t, t + d]`` from state ``z`` (energy bound above). ``coef`` is
-    ``[L, Cn, C, a, b, c0, g, Icc]`` at the segment's level; ``low`` and ``high``
-    are the two clamp rows."""
+    ``[L, Cn, C, a, b, c0, g, Icc, free]`` at the segment's level (``free`` = 1:
+    the high clamp reads states the bound does not follow, an input network's
+    cell voltage, and is never cleared); ``low`` and ``high`` are the two clamp rows."""
     m = z.shape[0]
     L, cn, C, a, b, c0, g, icc = (coef[0], coef[1], coef[2], coef[3], coef[4], coef[5],
                                    coef[6], coef[7])
@@ -401,5 +402,5 @@ def open_node_clear(coef, z, i_vn, d, low, high):
     v_hi = a * (vc0 + v_star) + c0 + u_max
     margin = 1e-12 * (abs(low[m - 1]) + abs(high[m - 1]) + abs(v_lo) + abs(v_hi) + 1.0)
     low_clear = low[m - 1] - abs(low[0]) * i_max + v_lo > margin
-    high_clear = high[m - 1] - abs(high[0]) * i_max - v_hi > margin
+    high_clear = high[m - 1] - abs(high[0]) * i_max - v_hi > margin and coef[8] == 0.0
     return low_clear, high_clear

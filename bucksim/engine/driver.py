@@ -281,12 +281,15 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
             a = 1.0 / (1.0 + stage.esr * lev.conductance)
             coef += [[stage.L, cn, stage.C, a, stage.esr * a, -stage.esr * lev.current * a,
                       lev.conductance, lev.current] for cn in curve.caps]
-        open_coef = np.array(coef)
+        # the high clamp reads the cell's voltage with an input network, a state the
+        # energy bound of bounds.open_node_clear does not follow: flag it
+        free = 0.0 if stage.net is None else 1.0
+        open_coef = np.array([c + [free] for c in coef])
         edges = np.array([curve.edges for curve in stage.curves])
         e_vn[stage.i_node] = 1.0
     else:
         Vsw = Cls = Chs = np.zeros((1, m))
-        open_coef = np.ones((n_levels, 8))
+        open_coef = np.ones((n_levels, 9))
         edges = np.tile([-np.inf, np.inf], (n_levels, 1))
     return StageTables(Ms, table.exponentials, table.steps, system_guards(table),
                        float(table.taylor_gap),

@@ -13,6 +13,8 @@ from dataclasses import dataclass, field
 
 from bucksim.errors import ScenarioError
 from bucksim.model.capacitance import CapacitanceTable, is_positive
+from bucksim.model.checks import finite, non_negative, positive
+from bucksim.model.input_parts import InputCapacitor, InputFilter, check_input_side
 
 STRATEGIES = ("asynchronous", "forced-pwm", "diode-emulation")
 #: Readable name of each strategy, for tables and figures.
@@ -23,21 +25,7 @@ IMPLEMENTATIONS = ("digital", "analog")
 START_MODES = ("rest", "steady-state")
 
 
-def _finite(key, value, unit):
-    if not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value):
-        raise ScenarioError(key, f"must be a finite number in {unit}", value)
-
-
-def _positive(key, value, unit):
-    _finite(key, value, unit)
-    if value <= 0:
-        raise ScenarioError(key, f"must be > 0 {unit}", value)
-
-
-def _non_negative(key, value, unit):
-    _finite(key, value, unit)
-    if value < 0:
-        raise ScenarioError(key, f"must be >= 0 {unit}", value)
+_finite, _positive, _non_negative = finite, positive, non_negative
 
 
 def _capacitance(key, value):
@@ -71,15 +59,18 @@ class SupplyStep:
 
 @dataclass(frozen=True)
 class Supply:
-    """Input supply: ideal source ``voltage`` [V] behind ``resistance`` [ohm]."""
+    """Input supply: ideal source ``voltage`` [V] behind ``resistance`` [ohm] and
+    ``inductance`` [H] (the source's or the cable's; needs an input capacitor)."""
 
     voltage: float
     resistance: float = 0.0
     steps: tuple[SupplyStep, ...] = ()
+    inductance: float = 0.0
 
     def __post_init__(self):
         _positive("supply.voltage", self.voltage, "V")
         _non_negative("supply.resistance", self.resistance, "ohm")
+        _non_negative("supply.inductance", self.inductance, "H")
         _step_times("supply.steps", self.steps)
         for i, s in enumerate(self.steps):
             _positive(f"supply.steps[{i}].voltage", s.voltage, "V")
@@ -450,10 +441,13 @@ class Scenario:
     load: Load
     control: Control
     run: RunSettings
+    input_capacitor: InputCapacitor | None = None
+    input_filter: InputFilter | None = None
     source: str | None = field(default=None, compare=False)
     text: str | None = field(default=None, compare=False, repr=False)
 
     def __post_init__(self):
+        check_input_side(self.supply, self.input_capacitor, self.input_filter)
         T = self.switching.period
         sync = self.switching.strategy != "asynchronous"
         if sync and not isinstance(self.low_side, Mosfet):

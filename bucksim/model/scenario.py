@@ -6,7 +6,10 @@ prefix and the unit (``"2.2 uH"``, ``"500 kHz"``; see :mod:`bucksim.model.units`
 
     schema = 1
     title = "..."
-    [supply]            voltage, resistance = 0, steps = [{time, voltage}, ...]
+    [supply]            voltage, resistance = 0, inductance = 0, steps = [{time, voltage}, ...]
+    [input_capacitor]   capacitance, esr = 0, banks = [{capacitance, esr}, ...]   (optional)
+    [input_filter]      inductance, dcr = 0, damping = {resistance, capacitance},
+                        parallel_resistance                                    (optional)
     [switching]         frequency, strategy, dead_time = [falling, rising], node_resistance
     [inductor]          inductance, dcr = 0, core = {k, alpha, beta, volume, turns, area}
     [output_capacitor]  capacitance, esr = 0
@@ -27,7 +30,6 @@ Rejected input raises :class:`~bucksim.errors.ScenarioError` (file, line, key, e
 from __future__ import annotations
 
 import copy
-import numbers
 import re
 import tomllib
 from pathlib import Path
@@ -37,6 +39,13 @@ import tomli_w
 from bucksim.errors import ScenarioError
 from bucksim.model import parts
 from bucksim.model.capacitance import as_plain, is_positive, read_capacitance
+from bucksim.model.input_tables import (
+    INPUT_CAPACITOR_KEYS,
+    INPUT_FILTER_KEYS,
+    input_side_dict,
+    read_input_capacitor,
+    read_input_filter,
+)
 from bucksim.model.keylines import (
     key_lines,
     line_of,
@@ -44,7 +53,9 @@ from bucksim.model.keylines import (
     toml_error,
     warn_steps_after_end,
 )
-from bucksim.model.units import example, parse_quantity
+from bucksim.model.toml_table import REQUIRED as _REQUIRED
+from bucksim.model.toml_table import Table as _Table
+from bucksim.model.units import parse_quantity
 
 SCHEMA = 1
 
@@ -55,8 +66,9 @@ _KEY_SYNTAX = re.compile(r"[A-Za-z_][A-Za-z0-9_]*(?:\.[A-Za-z_][A-Za-z0-9_]*|\[[
 DEFAULT_SCENARIO_PATH = Path(__file__).resolve().parents[1] / "data" / "default.toml"
 
 TOP_KEYS = ("schema", "title", "supply", "switching", "inductor", "output_capacitor",
-            "high_side", "low_side", "load", "control", "run")
-SUPPLY_KEYS = ("voltage", "resistance", "steps")
+            "high_side", "low_side", "load", "control", "run", "input_capacitor",
+            "input_filter")
+SUPPLY_KEYS = ("voltage", "resistance", "steps", "inductance")
 SUPPLY_STEP_KEYS = ("time", "voltage")
 SWITCHING_KEYS = ("frequency", "strategy", "dead_time", "node_resistance")
 INDUCTOR_KEYS = ("inductance", "dcr", "core")
@@ -75,7 +87,6 @@ CONTROL_KEYS = ("mode", "duty", "soft_start", "reference", "compensator", "slope
 RUN_KEYS = ("duration", "cycles", "start", "summary_cycles", "initial_current",
             "initial_voltage")
 
-_REQUIRED = object()
 
 
 # ----------------------------------------------------------------------------- reading
@@ -124,73 +135,6 @@ def loads_scenario(text, source="<string>"):
     return scenario
 
 
-class _Table:
-    """A TOML table being read: typed getters; keys not in ``allowed`` rejected."""
-
-    def __init__(self, data, key, allowed, where=None):
-        self.data = data
-        self.key = key
-        for name, value in data.items():
-            if name not in allowed:
-                place = where or (f"[{key}]" if key else "the top level")
-                raise ScenarioError(self.sub(name), f"is not a known key (allowed in {place}: "
-                                    + ", ".join(allowed) + ")", value)
-
-    def sub(self, name):
-        return f"{self.key}.{name}" if self.key else name
-
-    def _get(self, name, default, expected):
-        if name in self.data:
-            return self.data[name]
-        if default is _REQUIRED:
-            raise ScenarioError(self.sub(name), f"is required ({expected})")
-        return default
-
-    def quantity(self, name, unit, default=_REQUIRED):
-        """A number in ``unit``, or a prefixed string; ``default`` when absent."""
-        if name not in self.data:
-            hint = f"in {unit}, e.g. {example(unit)!r}" if unit else "a number"
-            return self._get(name, default, hint)
-        return parse_quantity(self.data[name], unit, self.sub(name))
-
-    def integer(self, name, default=_REQUIRED):
-        value = self._get(name, default, "an integer")
-        if name not in self.data:
-            return value
-        if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-            raise ScenarioError(self.sub(name), "must be an integer", value)
-        return int(value)
-
-    def string(self, name, default=_REQUIRED):
-        """A string; which strings are valid is checked by the part itself."""
-        value = self._get(name, default, "a string")
-        if name in self.data and not isinstance(value, str):
-            raise ScenarioError(self.sub(name), "must be a string", value)
-        return value
-
-    def table(self, name, allowed, required=False):
-        """The sub-table ``name`` as a :class:`_Table`; ``None`` when absent."""
-        if name not in self.data:
-            if required:
-                raise ScenarioError(self.sub(name), f"is required: add a [{self.sub(name)}] "
-                                    "table with " + ", ".join(allowed))
-            return None
-        value = self.data[name]
-        if not isinstance(value, dict):
-            raise ScenarioError(self.sub(name), "must be a table with keys "
-                                + ", ".join(allowed), value)
-        return _Table(value, self.sub(name), allowed)
-
-    def tables(self, name, allowed):
-        """An array of tables (``steps = [{...}, ...]`` or ``[[...]]``)."""
-        value = self.data.get(name, [])
-        if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
-            raise ScenarioError(self.sub(name), "must be an array of tables {"
-                                + ", ".join(allowed) + "}", value)
-        return [_Table(v, f"{self.sub(name)}[{i}]", allowed, f"{self.sub(name)}[{i}]")
-                for i, v in enumerate(value)]
-
-
 def _build(doc, source=None, text=None):
     """Scenario from a parsed TOML document (``dict``)."""
     top = _Table(doc, "", TOP_KEYS)
@@ -211,6 +155,9 @@ def _build(doc, source=None, text=None):
         load=_load(top.table("load", LOAD_KEYS, required=True)),
         control=_control(top.table("control", CONTROL_KEYS, required=True)),
         run=_run(top.table("run", RUN_KEYS, required=True)),
+        input_capacitor=read_input_capacitor(top.table("input_capacitor",
+                                                       INPUT_CAPACITOR_KEYS)),
+        input_filter=read_input_filter(top.table("input_filter", INPUT_FILTER_KEYS)),
         source=source,
         text=text,
     )
@@ -220,7 +167,8 @@ def _supply(t):
     steps = tuple(parts.SupplyStep(time=s.quantity("time", "s"), voltage=s.quantity("voltage", "V"))
                   for s in t.tables("steps", SUPPLY_STEP_KEYS))
     return parts.Supply(voltage=t.quantity("voltage", "V"),
-                        resistance=t.quantity("resistance", "ohm", 0.0), steps=steps)
+                        resistance=t.quantity("resistance", "ohm", 0.0), steps=steps,
+                        inductance=t.quantity("inductance", "H", 0.0))
 
 
 def _switching(t):
@@ -351,6 +299,8 @@ def scenario_to_dict(scenario):
     """
     s = scenario
     supply = {"voltage": s.supply.voltage, "resistance": s.supply.resistance}
+    if s.supply.inductance > 0:
+        supply["inductance"] = s.supply.inductance
     if s.supply.steps:
         supply["steps"] = [{"time": st.time, "voltage": st.voltage} for st in s.supply.steps]
     inductor = {"inductance": s.inductor.inductance, "dcr": s.inductor.dcr}
@@ -394,7 +344,7 @@ def scenario_to_dict(scenario):
                              "esr": s.output_capacitor.esr},
         "high_side": _mosfet_dict(s.high_side),
         "low_side": low_side,
-        "load": load, "control": control, "run": run,
+        "load": load, "control": control, "run": run, **input_side_dict(s),
     }
 
 

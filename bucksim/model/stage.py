@@ -67,110 +67,45 @@ from __future__ import annotations
 import numpy as np
 
 from bucksim.errors import ScenarioError
-from bucksim.model.capacitance import NodeCurve
+from bucksim.model.conduction import (
+    CONDUCTION_NAMES,
+    CONTROLLER_UNIT,
+    GATE_HIGH,
+    GATE_LOW,
+    GATE_OFF,
+    HIGH,
+    HIGH_DIODE,
+    IDLE,
+    LOW,
+    LOW_DIODE,
+    N_CONDUCTION,
+    N_STATES,
+    NODE_STATE,
+    OPEN,
+    REVERSE_CURRENT_THRESHOLD,
+    STATE_NAMES,
+    STRATEGY_CODES,
+    UNITS,
+    clamp_current,
+    current_reverses,
+    node_capacitance,
+    node_curve,
+    zero_current_states,
+)
+from bucksim.model.input_network import input_network
 from bucksim.model.levels import Level, is_analog_loop, operating_levels
-from bucksim.model.parts import STRATEGIES, Diode, Mosfet, Scenario
+from bucksim.model.parts import Diode, Mosfet, Scenario
+from bucksim.model.stage_input import INPUT_SIGNALS, InputRows
 
-HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE, OPEN = range(6)
-N_CONDUCTION = 6
-CONDUCTION_NAMES = ("high", "low", "low-diode", "high-diode", "idle", "open")
-
-#: Gate commands of a switching phase.
-GATE_HIGH, GATE_OFF, GATE_LOW = 0, 1, 2
-
-STRATEGY_CODES = {name: code for code, name in enumerate(STRATEGIES)}
-
-N_STATES = 2
-STATE_NAMES = ("iL", "vC")
-#: Name of the switch-node state (present when the node has capacitance).
-NODE_STATE = "vn"
-#: Units of the controller states appended in an analog loop.
-CONTROLLER_UNIT = "V"
-
-#: The inductor current "reverses" when its minimum lies below
-#: ``-REVERSE_CURRENT_THRESHOLD max(|min iL|, |max iL|)`` (the one definition for the
-#: summary and the light-load tools). Why 1e-9: a current held at zero is exact to
-#: rounding only, and that grows past 1e-16: an event instant rounded to the spacing
-#: of absolute time leaves ``|diL/dt| ulp(t)``, a shooting solve leaves ~1e-12 of the
-#: scale (more in high-Q stages); one part in 1e9 of the peak returns no charge
-#: anyone could measure, so the flag is robust on both sides.
-REVERSE_CURRENT_THRESHOLD = 1e-9
+#: The stage and the conduction rules it is read by (defined in conduction).
+__all__ = ["Stage", "CONDUCTION_NAMES", "CONTROLLER_UNIT", "GATE_HIGH", "GATE_LOW", "GATE_OFF",
+           "HIGH", "HIGH_DIODE", "IDLE", "LOW", "LOW_DIODE", "N_CONDUCTION", "N_STATES",
+           "NODE_STATE", "OPEN", "REVERSE_CURRENT_THRESHOLD", "STATE_NAMES", "STRATEGY_CODES",
+           "UNITS", "clamp_current", "current_reverses", "node_capacitance", "node_curve",
+           "zero_current_states"]
 
 
-def current_reverses(il_min: float, il_max: float) -> bool:
-    """True when the inductor current goes negative by more than rounding.
-
-    Parameters
-    ----------
-    il_min, il_max : float
-        Exact minimum and maximum of ``iL`` [A] over the window.
-
-    Notes
-    -----
-    ``il_min < -REVERSE_CURRENT_THRESHOLD max(|il_min|, |il_max|)``.
-    """
-    scale = max(abs(il_min), abs(il_max))
-    return bool(il_min < -REVERSE_CURRENT_THRESHOLD * scale)
-
-
-def zero_current_states(strategy: str) -> frozenset[int]:
-    """Conduction states that end when the inductor current reaches zero: for
-    ``strategy`` (``switching.strategy``), ``{LOW_DIODE, HIGH_DIODE}``, and ``LOW``
-    too in diode emulation.
-
-    Notes
-    -----
-    A diode conducts one way only: the low-side diode (body diode, or the
-    freewheel diode of an asynchronous stage) while ``iL > 0``, the high-side
-    body diode while ``iL < 0``; either stops at ``iL = 0`` and the stage
-    idles. In diode emulation the low-side channel is turned off at zero
-    current as well; in forced PWM it conducts both ways (common practice).
-    The cycle loop (:mod:`bucksim.engine.cycles`) writes the same rule out
-    inline, where a set cannot be used.
-    """
-    if strategy not in STRATEGY_CODES:
-        raise ValueError(f"switching.strategy: expected one of {', '.join(STRATEGIES)}, "
-                         f"got {strategy!r}")
-    if strategy == "diode-emulation":
-        return frozenset((LOW, LOW_DIODE, HIGH_DIODE))
-    return frozenset((LOW_DIODE, HIGH_DIODE))
-
-
-def node_curve(scenario: Scenario, vin: float) -> NodeCurve:
-    """The switch node's capacitance against ``vn`` at input voltage ``vin`` [V]:
-    the high side's ``coss`` plus the low-side MOSFET's ``coss`` or the freewheel
-    diode's ``cj`` (:class:`~bucksim.model.capacitance.NodeCurve`)."""
-    ls = scenario.low_side
-    return NodeCurve(scenario.high_side.coss, ls.coss if isinstance(ls, Mosfet) else ls.cj, vin)
-
-
-def node_capacitance(scenario: Scenario) -> float:
-    """The switch node's capacitance [F], charge-equivalent over ``0 .. Vin``
-    (:meth:`~bucksim.model.capacitance.NodeCurve.equivalent`; for linear parts
-    the sum of the high side's ``coss`` and the low side's ``coss`` or ``cj``).
-    Above 0 the node is a state."""
-    return node_curve(scenario, scenario.supply.voltage).equivalent()
-
-
-def clamp_current(il, conduction, strategy: str) -> np.ndarray:
-    """``iL`` [A] with the sign its conduction state guarantees.
-
-    A state of :func:`zero_current_states` ends at ``iL = 0`` exactly, but
-    its end time is rounded to the spacing of absolute time, which can put
-    the evaluated end a few 1e-12 A past zero. The state fixes the sign:
-    ``iL >= 0`` in ``LOW_DIODE`` (and ``LOW`` in diode emulation), ``iL <= 0``
-    in ``HIGH_DIODE``; other states are left as they are.
-
-    ``il`` [A] and ``conduction`` (each value's state) broadcast; ``strategy``:
-    ``switching.strategy``.
-    """
-    conduction = np.asarray(conduction)
-    from_above = sorted(zero_current_states(strategy) - {HIGH_DIODE})
-    il = np.where(np.isin(conduction, from_above), np.maximum(il, 0.0), il)
-    return np.where(conduction == HIGH_DIODE, np.minimum(il, 0.0), il)
-
-
-class Stage:
+class Stage(InputRows):
     """Linear systems and output maps for every (level, conduction state).
 
     System id ``s = ((level * n_modes + held) * n_bands + band) * N_CONDUCTION + conduction``
@@ -215,13 +150,20 @@ class Stage:
                                 "once it is given anywhere", min(float(np.min(c.caps))
                                                                 for c in self.curves))
         self.i_node = N_STATES if self.node else -1
+        #: the input network (input capacitor, source inductance, filter) or None
+        self.net = input_network(scenario)
+        self.n_in = 0 if self.net is None else self.net.n
+        #: position of the first input-network state
+        self.i_in = N_STATES + int(self.node)
         #: position of the first controller state (analog loop)
-        self.i_ctl = N_STATES + int(self.node)
+        self.i_ctl = self.i_in + self.n_in
         self.n = self.i_ctl + (k + 1 if self.analog else 0)
         self.state_names = (STATE_NAMES + ((NODE_STATE,) if self.node else ())
+                            + (self.net.names if self.net is not None else ())
                             + (tuple(f"w{i + 1}" for i in range(k)) + ("vref",)
                                if self.analog else ()))
-        self.plant_index = np.array([0, 1] + ([2] if self.node else []) + [self.n])
+        self.plant_index = np.array([0, 1] + ([2] if self.node else [])
+                                    + list(range(self.i_in, self.i_ctl)) + [self.n])
         # anti-windup of an analog integrator: a second copy of every system
         # with the integrator held (its row zeroed), see integrator_limits
         self.n_modes = 2 if self.analog and scenario.control.compensator.get(
@@ -302,7 +244,7 @@ class Stage:
     def _embed(self, row3: np.ndarray, vn: float = 0.0) -> np.ndarray:
         """A row over ``[iL, vC, 1]`` (plus ``vn`` times the node state) as a
         row over the whole augmented state."""
-        if not self.analog and not self.node:
+        if not self.analog and not self.node and self.net is None:
             return row3
         out = np.zeros(self.n + 1)
         out[[0, 1, self.n]] = row3
@@ -325,7 +267,12 @@ class Stage:
         vin = self.levels[level].vin
         rn = self.r_node     # the open node's voltage is vn - rn iL (vn: its capacitance's)
         low = self._embed(np.array([self.r_ls - rn, 0.0, self.vf_ls]), vn=1.0)
-        high = self._embed(np.array([rn - self.rs - self.r_hs, 0.0, vin + self.vf_hs]), vn=-1.0)
+        if self.net is None:
+            high = self._embed(np.array([rn - self.rs - self.r_hs, 0.0, vin + self.vf_hs]),
+                               vn=-1.0)
+        else:   # the body diode's node voltage: the cell's (carrying iL) + Vf - r_hs iL
+            high = self._cell_row(self.levels[level], True) + self._embed(
+                np.array([rn - self.r_hs, 0.0, self.vf_hs]), vn=-1.0)
         return low, high
 
     def initial_state(self, x0) -> np.ndarray:
@@ -342,6 +289,8 @@ class Stage:
                              f"({', '.join(self.state_names)}), got {x0.shape[0]}")
         out = np.zeros(self.n)
         out[:N_STATES] = x0
+        if self.net is not None:
+            out[self.i_in:self.i_ctl] = self.net.rest_state(self.levels[0].vin)
         if self.analog:
             ctl = self.scenario.control
             out[-1] = 0.0 if ctl.soft_start > 0 else ctl.reference
@@ -381,7 +330,7 @@ class Stage:
         else:
             di = (self._vsw(lev, k, vo) - vo - np.array([self.dcr, 0.0, 0.0])) / self.L
         dv = ic / self.C
-        if not self.analog and not self.node:
+        if not self.analog and not self.node and self.net is None:
             return np.array([di, dv, [0.0, 0.0, 0.0]])
         m = self.n + 1
         q = self.n_controller
@@ -389,6 +338,8 @@ class Stage:
         M[0], M[1] = self._embed(di, vn=di_vn if self.node else 0.0), self._embed(dv)
         if self.node:
             M[self.i_node] = self._embed(dvn_row, vn=dvn)
+        if self.net is not None:
+            self._with_network(M, lev, k, vo)
         if not self.analog:
             return M
         # compensator: w' = Ac w + Bc e, e = H (vref - vo)
@@ -414,6 +365,11 @@ class Stage:
         """
         if name in ("u", "vref"):
             return self._controller_signal(name, system)
+        if name in INPUT_SIGNALS or name.startswith("icin"):
+            return self._input_signal(name, system)
+        if name == "vsw" and self.net is not None and self.split_id(system)[1] in (HIGH,
+                                                                                 HIGH_DIODE):
+            return self._input_signal(name, system)
         if name == "vsw" and self.node and self.split_id(system)[1] == OPEN:
             return self._embed(np.array([-self.r_node, 0.0, 0.0]), vn=1.0)
         return self._embed(self._signal3(name, system))
@@ -487,10 +443,5 @@ class Stage:
         is :meth:`~bucksim.model.capacitance.NodeCurve.stored`, ``Cn vsw^2 / 2`` when
         linear)."""
         node = float(self.curves[level].stored(vsw)) if self.node else 0.0
-        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2 + node
-
-
-#: Unit of each signal and state a run can evaluate.
-UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw": "V",
-         "vin": "V", "high_side": "A", "low_side": "A", "high_side_body_diode": "A",
-         "low_side_body_diode": "A", "switch_node": "A", "t": "s", "u": "V", "vref": "V", "vn": "V"}
+        net = self.net.stored_energy(x[self.i_in:self.i_ctl]) if self.net is not None else 0.0
+        return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2 + node + net

@@ -33,6 +33,7 @@ import numpy as np
 from scipy.linalg import expm
 
 from bucksim.engine.driver import build_table, integrate, phase_durations
+from bucksim.model.input_network import input_network
 from bucksim.model.stage import (
     HIGH_DIODE,
     IDLE,
@@ -162,7 +163,7 @@ def initial_guess(scenario) -> np.ndarray:
     from bucksim.analysis.budget import operating_point
     op = operating_point(scenario)
     guess = np.array([op["valley"], op["vo"]])  # a cycle starts at high-side turn-on
-    guess = _with_node(scenario, guess)
+    guess = _with_node(scenario, guess, drawn=op["duty"] * op["io"])
     r = scenario.load.resistance
     if r in (None, np.inf) and scenario.load.current > 0 and op["vo"] > 0:
         r = op["vo"] / scenario.load.current    # a current sink: its resistance at Vo
@@ -173,14 +174,21 @@ def initial_guess(scenario) -> np.ndarray:
             M = 2.0 / (1.0 + np.sqrt(1.0 + 4.0 * K / D ** 2))
             # the node rings about the output in the idle interval
             vo = M * scenario.supply.voltage
-            guess = _with_node(scenario, np.array([0.0, vo]), vo)
+            drawn = vo * vo / (r * scenario.supply.voltage)     # the input power at Vs
+            guess = _with_node(scenario, np.array([0.0, vo]), vo, drawn)
     return guess
 
 
-def _with_node(scenario, x, vn: float = 0.0):
+def _with_node(scenario, x, vn: float = 0.0, drawn: float = 0.0):
     """``[iL, vC]`` with the node state ``vn`` [V] appended when the node has
-    capacitance (its value at a period's start only sets the first edge's jump)."""
-    return np.append(x, vn) if node_capacitance(scenario) > 0 else x
+    capacitance (its value at a period's start only sets the first edge's jump),
+    then the input network's DC state with ``drawn`` [A] taken from the cell."""
+    x = np.append(x, vn) if node_capacitance(scenario) > 0 else x
+    net = input_network(scenario)
+    if net is None:
+        return x
+    dc = np.linalg.solve(net.A, -(net.b_s * scenario.supply.voltage + net.b_d * drawn))
+    return np.append(x, dc)
 
 
 def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1e-12,
@@ -204,34 +212,36 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
     # (the channel sets the node): shoot on [iL, vC] and carry vn along, so that
     # Newton's damping is not judged on a state the map does not depend on
     reduced = pmap.stage.node and pmap.scenario.control.duty > 0
-    node = {"vn": x[-1]}
+    iv, node = pmap.stage.i_node, {"vn": x[pmap.stage.i_node]}
+
+    def full(xr):
+        return np.insert(xr, iv, node["vn"]) if reduced else xr
 
     def step(xr):
         if not reduced:
             return pmap.step(xr)
-        x1, res = pmap.step(np.append(xr, node["vn"]))
-        node["vn"] = x1[-1]
-        return x1[:-1], res
+        x1, res = pmap.step(full(xr))
+        node["vn"] = x1[iv]
+        return np.delete(x1, iv), res
 
     def jacobian(xr, x1, res, s):
         J = pmap.monodromy(res)
-        return J[:-1, :-1] if reduced else J
+        return np.delete(np.delete(J, iv, 0), iv, 1) if reduced else J
 
     def scale(xr, x1, res):
         return _scale(xr, x1, res, xr.shape[0])
 
-    start = x[:-1] if reduced else x
+    start = np.delete(x, iv) if reduced else x
     shot = shoot(step, start, jacobian=jacobian, scale=scale, tol=tol, max_iter=max_iter,
                  max_halvings=30, max_brute_cycles=0)
     used, block = 0, PRE_SETTLE_CYCLES
     while not shot.success and used + block <= max_brute_cycles:
-        # Newton's basin can be small (an output that settles over thousands of
-        # periods; a DCM node ring whose phase at the next turn-on moves with the
-        # state): settle a block of periods in one engine call, shoot again, and
-        # double the block; brute-force settling period by period is the last resort
-        x_full = np.append(shot.x, node["vn"]) if reduced else shot.x
+        # Newton's basin can be small (an output settling over thousands of periods, a
+        # DCM ring whose phase at turn-on moves with the state): settle a block of
+        # periods at once, shoot again, double the block; period by period is last
+        x_full = full(shot.x)
         if not np.all(np.isfinite(x_full)):
-            x_full = np.append(start, node["vn"]) if reduced else start
+            x_full = full(start)
         res = integrate(pmap.stage, x_full, table=pmap.table, n_cycles=block,
                         t_end=block * pmap.scenario.period, phase_cache=pmap._phases)
         pmap.evaluations += block
@@ -239,8 +249,8 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
         block *= 2
         if not (res.success and np.all(np.isfinite(res.x_end))):
             break
-        node["vn"] = res.x_end[-1]
-        again = res.x_end[:-1] if reduced else res.x_end
+        node["vn"] = res.x_end[iv]
+        again = np.delete(res.x_end, iv) if reduced else res.x_end
         shot = shoot(step, again, jacobian=jacobian, scale=scale, tol=tol, max_iter=max_iter,
                      max_halvings=30, max_brute_cycles=0)
     if not shot.success and max_brute_cycles > used:
@@ -252,7 +262,7 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
         shot = dataclasses.replace(shot, message=f"{last}, also after {used} settled "
                                                  f"periods; {settled}")
     if reduced:
-        shot = dataclasses.replace(shot, x=np.append(shot.x, shot.aux.x_end[-1]))
+        shot = dataclasses.replace(shot, x=np.insert(shot.x, iv, shot.aux.x_end[iv]))
     if shot.method == "brute-force" and not shot.success:
         J = np.eye(n)       # settling failed: no period to linearise about
     else:
