@@ -218,26 +218,31 @@ class InputStage:
             dx[0] = (vsw - c.dcr * il - vo) / c.inductance
         dx[1] = k * (il - c.conductance * vc - c.sink) / c.capacitance
 
+    def branches(self, x, code, vs):
+        """Branch currents [A]: ``(icin per bank, idamp, ilf)`` and the cell tuple.
+
+        ``ilf`` is the filter inductor's current (``isrc`` without ``Rp``, 0
+        without a filter); an ideal bank's current is the KCL remainder."""
+        net = self.net
+        cell = v, isrc, iin, _ = self.cell(x, code, vs)
+        icin = [0.0 if e == 0.0 else (v - x[2 + k]) / e for k, (_, e) in enumerate(net.banks)]
+        idamp = 0.0 if net.rd is None else (v - self._x(x, "vcd")) / net.rd
+        for k, (_, e) in enumerate(net.banks):
+            if e == 0.0:
+                icin[k] = isrc - iin - idamp - sum(icin)
+        ilf = self._x(x, "ilf") if net.has_ilf else (isrc if net.lf is not None else 0.0)
+        return icin, idamp, ilf, cell
+
     def derivative(self, x, code, vs):
         """Right-hand side ``dx/dt`` (with the quadrature ``E`` last)."""
         net = self.net
         dx = np.zeros(self.n)
-        v, isrc, iin, vt = self.cell(x, code, vs)
+        icin, idamp, ilf, (v, isrc, _, vt) = self.branches(x, code, vs)
         self._stage_rows(x, code, v, dx)
-        spent, ideal = iin, None
-        for k, (cap, e) in enumerate(net.banks):
-            if e == 0.0:
-                ideal = k
-                continue
-            i = (v - x[2 + k]) / e
-            dx[2 + k] = i / cap
-            spent += i
+        for k, (cap, _) in enumerate(net.banks):
+            dx[2 + k] = icin[k] / cap
         if net.rd is not None:
-            i = (v - self._x(x, "vcd")) / net.rd
-            dx[self.index["vcd"]] = i / net.cd
-            spent += i
-        if ideal is not None:
-            dx[2 + ideal] = (isrc - spent) / net.banks[ideal][0]
+            dx[self.index["vcd"]] = idamp / net.cd
         if net.has_isrc:
             if net.lf is not None and net.rp is None:
                 didt = (vs - (net.rs + net.dcr) * isrc - v) / (net.ls + net.lf)
@@ -245,7 +250,7 @@ class InputStage:
                 didt = (vs - net.rs * isrc - vt) / net.ls
             dx[self.index["isrc"]] = didt
         if net.has_ilf:
-            dx[self.index["ilf"]] = (vt - v - net.dcr * self._x(x, "ilf")) / net.lf
+            dx[self.index["ilf"]] = (vt - v - net.dcr * ilf) / net.lf
         dx[-1] = vs * isrc
         return dx
 
@@ -318,15 +323,35 @@ class Trace:
         return self.full_states(times)[0][:, :-1]
 
     def values(self, times):
-        """Dict of every state by name plus ``vin`` (cell), ``isrc``, ``iin``,
-        ``vterm`` [V] and ``vs`` [V] at ``times`` [s]."""
+        """Dict of every state by name plus the signals ``vin`` (cell), ``isrc``,
+        ``iin``, ``vterm``, ``vs`` [V, A], the bank currents ``icin1``, ... and
+        their sum ``icin``, ``idamp`` and ``ilf`` [A] at ``times`` [s]."""
         x, idx = self.full_states(times)
         out = {name: x[:, i] for i, name in enumerate(self.names)}
-        cell = np.array([self.model.cell(xi, self.seg_code[i], self.seg_vs[i])
-                         for xi, i in zip(x, idx, strict=True)]).reshape(-1, 4)
+        rows = [self.model.branches(xi, self.seg_code[i], self.seg_vs[i])
+                for xi, i in zip(x, idx, strict=True)]
+        cell = np.array([r[3] for r in rows]).reshape(-1, 4)
         out.update(vin=cell[:, 0], isrc=cell[:, 1], iin=cell[:, 2], vterm=cell[:, 3],
-                   vs=self.seg_vs[idx])
+                   vs=self.seg_vs[idx], idamp=np.array([r[1] for r in rows]),
+                   ilf=np.array([r[2] for r in rows]))
+        icin = np.array([r[0] for r in rows]).reshape(len(rows), -1)
+        for k in range(icin.shape[1]):
+            out[f"icin{k + 1}"] = icin[:, k]
+        out["icin"] = icin.sum(axis=1)
         return out
+
+    def window_mean(self, start, stop, fn, nodes=16):
+        """``(1 / (stop - start)) int fn(values) dt`` over a window of whole
+        intervals, Gauss-Legendre with ``nodes`` points per interval."""
+        g, w = np.polynomial.legendre.leggauss(nodes)
+        slack = 1e-9 * (stop - start)        # the caller's window edges may round apart
+        keep = ((self.seg_t0 >= start - slack) & (self.seg_t1 <= stop + slack)
+                & (self.seg_t1 > self.seg_t0))
+        a, b = self.seg_t0[keep], self.seg_t1[keep]
+        t = (0.5 * (a + b)[:, None] + 0.5 * (b - a)[:, None] * g).ravel()
+        # interior nodes only, so each lies strictly inside its own interval
+        f = np.asarray(fn(self.values(t))).reshape(a.size, nodes)
+        return float((0.5 * (b - a) * (f @ w)).sum() / (b - a).sum())
 
 
 class _Phase:
