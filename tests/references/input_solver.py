@@ -75,7 +75,8 @@ every inductor current 0.
 References
 ----------
 R. W. Erickson and D. Maksimovic, Fundamentals of Power Electronics, 3rd ed.,
-2020, ch. 2 (buck stage, capacitor charge balance) and ch. 17 (input filters).
+2020, ch. 2 (buck stage, capacitor charge balance) and ch. 17 (input filters);
+chapter numbers from memory.
 """
 
 from __future__ import annotations

@@ -5,8 +5,8 @@ Each check names its source beside it. The independent reference
 (:mod:`tests.references.input_solver`) writes the network's KCL/KVL out by
 hand and integrates stage plus network with ``scipy.integrate.solve_ivp``
 (DOP853, rtol 1e-12; Hairer, Norsett and Wanner, *Solving Ordinary
-Differential Equations I*, 2nd ed., 1993, sec. II.5), restarted at gate
-changes, terminal events at iL = 0. The reference is itself checked against
+Differential Equations I*, 2nd ed., 1993, sec. II.5, from memory), restarted
+at gate changes, terminal events at iL = 0. The reference is itself checked against
 the bare stage reference (:mod:`tests.references.stage_solver`, matrix
 exponential) and against phasor impedance division of the network.
 
@@ -202,8 +202,8 @@ def test_reference_network_against_impedance_division(name):
 
 def test_reference_explicit_and_implicit_integrators_agree():
     """DOP853 (rtol 1e-12) and Radau with the exact Jacobian (rtol 1e-10; Hairer and
-    Wanner, Solving ODE II, 2nd ed., 1996, sec. IV.8) on one filtered DCM case from
-    rest: every state at every gate change to 1e-8 of its scale, same events."""
+    Wanner, Solving ODE II, 2nd ed., 1996, sec. IV.8, from memory) on one filtered
+    DCM case from rest: every state at every gate change to 1e-8 of its scale, same events."""
     model = InputStage.from_scenario(scenario("dcm_diode_emulation_filter_damping"))
     a = simulate(model, 60)
     b = simulate(model, 60, method="Radau", rtol=1e-10)
@@ -313,8 +313,9 @@ def ring_frequency(samples, period, order):
 
 def test_filter_resonance_after_supply_step():
     """A 1 V supply step rings at 1 / (2 pi sqrt(Lf Cf)) within 2 % (Erickson and
-    Maksimovic, Fundamentals of Power Electronics, 3rd ed., ch. 17; lightly damped:
-    series R 17 mohm against sqrt(Lf/Cf) = 224 mohm), on bucksim's cell voltage and on
+    Maksimovic, Fundamentals of Power Electronics, 3rd ed., ch. 17, chapter from
+    memory; lightly damped: series R 17 mohm against sqrt(Lf/Cf) = 224 mohm), on
+    bucksim's cell voltage and on
     the reference; the two measured frequencies agree to 1e-6. The running stage
     shifts the ring by about +0.8 %: at 36 kHz its input admittance is close to
     D^2 / (j w L), an inductance L / D^2 = 62 uH across Cf (derived, small-signal)."""
