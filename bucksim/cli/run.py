@@ -98,7 +98,9 @@ def _warn_filter(scenario, summary, path):
         return
     from bucksim.analysis.input_filter import filter_interaction
 
-    check = filter_interaction(scenario, summary.power.input)
+    # the power the converter takes (output and losses): the window may not hold whole
+    # periods of a ringing filter, whose stored energy then moves the terminal power
+    check = filter_interaction(scenario, summary.power.output + summary.power.loss)
     if check is not None and check.thin:
         print(f"bucksim: warning: {path}: {check.message()}", file=sys.stderr)
 
