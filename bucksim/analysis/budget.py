@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 
 from bucksim.analysis.budget_dcm import dcm_conduction, dcm_core, dcm_point, dcm_switching
 from bucksim.analysis.budget_edges import async_edges, dead_times, node_charge, recovered_ccm
+from bucksim.analysis.budget_input import input_items
 from bucksim.analysis.budget_ring import lc_dead_time_integral, node_parts, slew_excess
 from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.model.parts import Mosfet
@@ -326,10 +327,11 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
                             scenario.output_capacitor.esr * dI * dI / 12.0, "ESR dI^2/12",
                             "Erickson & Maksimovic 3rd ed. ch. 2 (triangular ripple)",
                             "the ripple current's share in the load (all of it taken into C)"))
-    if scenario.supply.resistance > 0:
+    if scenario.supply.resistance > 0 and scenario.input_capacitor is None:
         items.append(BudgetItem("supply.conduction", "supply", "conduction",
                                 scenario.supply.resistance * D * ms, "Rs D (Io^2 + dI^2/12)", EM,
                                 _RAMP))
+    items += [BudgetItem(*row) for row in input_items(scenario, op["valley"], op["peak"], D, fs)]
     return items
 
 

@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import math
 
+from bucksim.analysis.budget_input import input_items
 from bucksim.analysis.budget_ring import (
     idle_ring,
     node_parts,
@@ -336,11 +337,11 @@ def dcm_conduction(scenario, op: dict) -> list[tuple]:
                scenario.output_capacitor.esr * max(ms_l - op["io"] ** 2, 0.0),
                "ESR (<iL^2> - Io^2)", _EM5,
                "the ripple current's share in the load (all of it taken into C)")]
-    if scenario.supply.resistance > 0:
+    if scenario.supply.resistance > 0 and scenario.input_capacitor is None:
         items.append(("supply.conduction", "supply", "conduction",
                       scenario.supply.resistance * ms_on, "Rs D (i0^2 + i0 Ipk + Ipk^2) / 3",
                       _EM5, ramp))
-    return items
+    return items + input_items(scenario, op["i_on"], pk, D, fs)
 
 
 def dcm_switching(scenario, op: dict) -> list[tuple]:
