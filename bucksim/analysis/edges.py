@@ -41,6 +41,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from bucksim.analysis.edges_input import jump_energies
 from bucksim.analysis.moments import SegmentMoments
 from bucksim.analysis.windows import window_pieces
 from bucksim.model.stage import HIGH, HIGH_DIODE, LOW, LOW_DIODE, N_CONDUCTION
@@ -113,14 +114,19 @@ def node_transfers(run, t_start: float, t_stop: float | None = None) -> dict:
     v_path = np.where(high, vin, 0.0)
     # the charge moved through the closing branch, and the energy it leaves there:
     # integral (V_path - v) Cn(v) dv (Cn (v_b - v_a)(V_path - (v_a + v_b)/2) when linear)
+    # with an input network the closing high side's jump is the network's
+    # (edges_input); the drift after it is booked here, from the node after the jump
+    jumps = jump_energies(run, idx, tau_a, z_a, cond)
+    start = np.where(jumps["jump"], jumps["v_b"], v_from)
     loss = np.zeros(len(idx))
     charge = np.zeros(len(idx))
     for lv, curve in enumerate(stage.curves):
         k = level == lv
-        charge[k] = curve.charge(v_from[k], v_to[k])
-        loss[k] = curve.transfer_loss(v_from[k], v_to[k], v_path[k])
+        charge[k] = curve.charge(start[k], v_to[k])
+        loss[k] = curve.transfer_loss(start[k], v_to[k], v_path[k])
+    loss += jumps["loss"]
     out.update(index=idx, t=seg.t0[idx] + tau_a, conduction=cond, v_from=v_from, v_to=v_to,
-               loss=loss, supply=np.where(high, vin * charge, 0.0),
+               loss=loss, supply=np.where(high, vin * charge, 0.0) + jumps["supply"],
                high_side=float(np.sum(loss[high])), low_side=float(np.sum(loss[~high])))
     return out
 

@@ -21,6 +21,7 @@ import math
 import numpy as np
 
 from bucksim.analysis.edges import node_transfers, node_voltage_at
+from bucksim.analysis.edges_input import network_state_before
 from bucksim.analysis.extrema import extrema
 from bucksim.analysis.moments import SegmentMoments
 from bucksim.analysis.summary import (
@@ -303,7 +304,7 @@ def _core(run, devices, idx, tau_a, tau_b, width):
 def _balance_error(run, t_start, e_in, e_out, loss):
     """Relative residual of ``E_in = E_out + E_loss + dE_stored`` over the window."""
     stage = run.stage
-    x_a = run.at([t_start])[0]
+    x_a = network_state_before(run, t_start, run.at([t_start])[0])
     x_b = run.x_end
     e_a = stage.stored_energy(x_a, node_voltage_at(run, t_start), stage.level_at(t_start))
     e_b = stage.stored_energy(x_b, node_voltage_at(run, run.t_end), stage.level_at(run.t_end))

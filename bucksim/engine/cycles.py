@@ -46,6 +46,7 @@ from bucksim.engine.kernels import (
     CONTROL_ANALOG,
     CONTROL_DIGITAL,
     CONTROL_OPEN,
+    HIGH,
     HIGH_DIODE,
     IDLE,
     LOW_DIODE,
@@ -65,6 +66,7 @@ from bucksim.engine.period import (
     in_range,
     level_at,
     node_held,
+    node_jump,
     open_clamps,
     open_segment,
     phase_span,
@@ -157,6 +159,8 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                         or z[0] >= ph_lim):
                     tripped = True
                     break
+                if cond == HIGH and tab.jumps.shape[0] > 0:
+                    node_jump(tab, level, z)    # the node's charge from the input network
                 open_segment(buf, nseg, t, cond, s, z, zs, zst)
                 d = t_stop - t
                 if cond == OPEN and d > gs and (search_ls or search_hs):

@@ -301,7 +301,17 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
                        row_norms(Ms, bnd, Chs), third_norms(Ms, bnd, Chs), open_coef,
                        np.ascontiguousarray(edges, dtype=float), e_vn,
                        row_norms(Ms, bnd, e_vn.reshape(1, m)),
-                       third_norms(Ms, bnd, e_vn.reshape(1, m)))
+                       third_norms(Ms, bnd, e_vn.reshape(1, m)), _jumps(stage, m))
+
+
+def _jumps(stage, m):
+    """The state change per coulomb drawn at once from the cell, per level ((0, m)
+    without an input network or node capacitance): the network's ``b_d`` column."""
+    if stage.net is None or not stage.node:
+        return np.zeros((0, m))
+    col = np.zeros(m)
+    col[stage.i_in:stage.i_ctl] = stage.net.b_d
+    return np.tile(col, (len(stage.levels), 1))
 
 
 def phase_program(scenario, P, nominal, t_end: float) -> PhaseProgram:

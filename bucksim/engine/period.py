@@ -23,6 +23,7 @@ from bucksim.engine.kernels import (
     GATE_HIGH,
     GATE_LOW,
     GATE_OFF,
+    HIGH,
     HIGH_DIODE,
     LOW,
     LOW_DIODE,
@@ -241,3 +242,41 @@ def node_held(tab, level, cond, z):
     """Set the node state to the voltage its conducting path holds (the invariant:
     ``z[i_vn]`` is the node voltage at every segment's end)."""
     z[tab.i_vn] = _dot(tab.Vsw[level * N_CONDUCTION + cond], z)
+
+
+@njit(inline="always")
+def band_charge(edges, coef, level, n_bands, v_a, v_b):
+    """``integral_{v_a}^{v_b} Cn(v) dv`` [C]: the node capacitance piecewise constant in
+    its bands (``coef[level * n_bands + band, 1]``, edges ``edges[level]``)."""
+    lo, hi, sign = v_a, v_b, 1.0
+    if v_b < v_a:
+        lo, hi, sign = v_b, v_a, -1.0
+    q = 0.0
+    for b in range(n_bands):
+        a = max(lo, edges[level, b])
+        c = min(hi, edges[level, b + 1])
+        if c > a:
+            q += coef[level * n_bands + b, 1] * (c - a)
+    return sign * q
+
+
+@njit(inline="always")
+def node_jump(tab, level, z):
+    """The high side closes on the node: the node's charge ``Q`` moves from the
+    switch cell at once, and the input network's state changes by ``jumps[level] Q``.
+    ``Q`` takes the node from its held ``z[i_vn]`` to the channel's voltage, which the
+    change itself moves by ``Cn / Cin`` of it: a fixed point, a contraction by that ratio."""
+    row = tab.Vsw[level * N_CONDUCTION + HIGH]
+    jump = tab.jumps[level]
+    edges, n_bands = tab.band_edges, tab.band_edges.shape[1] - 1
+    v_a = z[tab.i_vn]
+    v0 = _dot(row, z)
+    k = _dot(row, jump)
+    q = 0.0
+    for _ in range(8):
+        q_new = band_charge(edges, tab.open_coef, level, n_bands, v_a, v0 + k * q)
+        if q_new == q:
+            break
+        q = q_new
+    for i in range(z.shape[0]):
+        z[i] += jump[i] * q

@@ -81,6 +81,10 @@ class StageTables(NamedTuple):
     e_vn: np.ndarray
     kvn: np.ndarray
     k3vn: np.ndarray
+    #: (n_levels, m) with an input network, the state change per coulomb drawn at once
+    #: from the switch cell (the network's column of the drawn current): the high side
+    #: closing on the node takes the node's charge from there; (0, m) without one.
+    jumps: np.ndarray
 
 
 class PhaseProgram(NamedTuple):

@@ -327,7 +327,8 @@ def test_bundled_scenarios_load_and_round_trip(path, tmp_path):
     assert s.title and s.source == str(path)
     assert s.text.lstrip().startswith("#")          # each starts with its comment header
     assert "invented for demonstration" in s.text
-    assert s.run.summary_cycles == 20
+    # an input filter's demo averages over whole periods of the filter's resonance
+    assert s.run.summary_cycles == 20 or s.input_filter is not None
     if s.control.mode == "open-loop":   # closed-loop demos are timed by their events
         assert 2000 <= s.n_cycles <= 4000
     out = tmp_path / "again.toml"

@@ -1,0 +1,85 @@
+"""The node's charge drawn from the input network when the high side closes.
+
+With an input capacitor the high side's channel, closing on the node at
+``v_a``, takes the charge ``Q = integral_{v_a}^{v_b} Cn dv`` from the switch cell
+at once: the engine changes the network's state by ``b_d Q``
+(:func:`bucksim.engine.period.node_jump`, ``b_d`` the network's column of the
+drawn current, :mod:`bucksim.model.input_network`), so the segment's stored
+start state is the state after it. The banks give up their share of ``Q``; a
+purely resistive source path gives the rest, from the ideal source. The energy
+the transfer dissipates is what the sources give less what the node stores,
+
+.. math::
+
+    E = E_{net}(x^-) - E_{net}(x^+) + V_s Q_{src} - \\int_{v_a}^{v_b} v\\,C_n(v)\\,dv,
+
+booked to the closing channel (the channel, the banks' ESR and the source's
+resistance share it in the real spike; the limit of an instant transfer does
+not say how). The node's later drift while the channel conducts (its drop and
+the cell voltage move) is booked as before: drawn from the ideal source at the
+cell's voltage (:func:`bucksim.analysis.edges.node_transfers`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from bucksim.model.stage import HIGH
+
+
+def _live(stage) -> bool:
+    return stage.net is not None and stage.node
+
+
+def jump_energies(run, idx, tau_a, z_a, cond) -> dict:
+    """For the conducting pieces ``idx`` (segments, piece starts ``tau_a`` [s], start
+    states ``z_a``, conduction states ``cond``): which are jumps (a high-side segment's
+    start), and for each ``v_b`` [V] (the node after the jump), ``loss`` and
+    ``supply`` [J] (from the ideal source). Zeros where there is no jump."""
+    stage = run.stage
+    n = len(idx)
+    out = {"jump": np.zeros(n, bool), "v_b": np.zeros(n), "loss": np.zeros(n),
+           "supply": np.zeros(n)}
+    if not _live(stage) or n == 0:
+        return out
+    seg = run.segments
+    jump = (cond == HIGH) & (tau_a == 0.0)
+    rows = run.signal_table("vsw")[seg.system[idx[jump]]]
+    v_b = np.einsum("ij,ij->i", rows, z_a[jump])
+    v_a = z_a[jump, stage.i_node]
+    net, lo, hi = stage.net, stage.i_in, stage.i_ctl
+    caps = np.array([name.startswith("vc") for name in net.names])
+    loss, supply = np.zeros(len(v_b)), np.zeros(len(v_b))
+    for j, (k, va, vb) in enumerate(zip(idx[jump], v_a, v_b, strict=True)):
+        level = stage.split_id(seg.system[k])[0]
+        curve, vs = stage.curves[level], stage.levels[level].vin
+        q = float(curve.charge(va, vb))
+        post = z_a[jump][j, lo:hi]
+        dx = net.b_d * q
+        pre = post - dx
+        q_src = q + float(np.sum(net.storage[caps] * dx[caps]))    # the banks' share left
+        supply[j] = vs * q_src
+        loss[j] = (net.stored_energy(pre) - net.stored_energy(post) + supply[j]
+                   - (float(curve.stored(vb)) - float(curve.stored(va))))
+    out["jump"][jump] = True
+    out["v_b"][jump], out["loss"][jump], out["supply"][jump] = v_b, loss, supply
+    return out
+
+
+def network_state_before(run, t: float, x: np.ndarray) -> np.ndarray:
+    """``x`` (the state :meth:`bucksim.Run.at` gives at ``t``: a segment's stored start)
+    with the input network as it was just before a jump at ``t``, if one happens there."""
+    stage = run.stage
+    if not _live(stage):
+        return x
+    seg = run.segments
+    k = int(np.searchsorted(seg.t0, t, side="left"))
+    if k >= len(seg) or seg.t0[k] != t or seg.conduction[k] != HIGH:
+        return x
+    z = np.append(seg.x0[k], 1.0)
+    e = jump_energies(run, np.array([k]), np.zeros(1), z[None, :], np.array([HIGH]))
+    level = stage.split_id(seg.system[k])[0]
+    q = float(stage.curves[level].charge(z[stage.i_node], e["v_b"][0]))
+    x = np.array(x, dtype=float, copy=True)
+    x[stage.i_in:stage.i_ctl] -= stage.net.b_d * q
+    return x
