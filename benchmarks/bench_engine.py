@@ -35,6 +35,7 @@ from scipy.integrate import solve_ivp
 import bucksim
 from bucksim.engine.driver import build_table, integrate
 from bucksim.model.capacitance import CapacitanceTable
+from bucksim.model.input_parts import CapacitorBank, InputCapacitor
 from bucksim.model.parts import (
     Capacitor,
     Control,
@@ -51,12 +52,14 @@ from bucksim.model.stage import Stage
 
 
 def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9),
-         coss=(0.0, 0.0)) -> Scenario:
+         coss=(0.0, 0.0), network=False) -> Scenario:
     """A 12 V -> 3.3 V, 500 kHz bench rail (invented demo values); ``coss`` (high, low)
-    [F] above 0 makes the switch node a state."""
+    [F] above 0 makes the switch node a state; ``network``: a 22 uF / 3 mohm input
+    capacitor behind 10 mohm and 1 uH (two more states)."""
+    net = {"input_capacitor": InputCapacitor((CapacitorBank(22e-6, 3e-3),))} if network else {}
     return Scenario(
         title=f"bench {strategy}",
-        supply=Supply(12.0),
+        supply=Supply(12.0, 0.01, inductance=1e-6) if network else Supply(12.0),
         switching=Switching(500e3, strategy, dead),
         inductor=Inductor(4.7e-6, 0.012),
         output_capacitor=Capacitor(47e-6, 0.004),
@@ -67,6 +70,7 @@ def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9),
         load=Load(load_ohm),
         control=Control(duty=0.285),
         run=RunSettings(cycles=cycles),
+        **net,
     )
 
 
@@ -163,6 +167,9 @@ def main(argv=None):
     curve = [sqrt_law(c * 5.0 ** 0.5) for c in node]     # the same C at 5 V
     fpwm_tab, res_tab = engine_rate(rail("forced-pwm", 0.66, a.cycles, coss=curve))
     seg_tab = len(res_tab.t0) / a.cycles
+    # the input side as states (a bank and the source's inductance: two more)
+    fpwm_net, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles, network=True))
+    fpwm_node_net, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles, coss=node, network=True))
 
     closed = closed_loop_rate(a.cycles)
     analog = closed_loop_rate(a.cycles, implementation="analog")
@@ -186,6 +193,8 @@ def main(argv=None):
         "diode_emulation_dcm_node_cycles_per_s": de_node,
         "forced_pwm_coss_table_cycles_per_s": fpwm_tab,
         "forced_pwm_coss_table_segments_per_cycle": seg_tab,
+        "forced_pwm_input_capacitor_cycles_per_s": fpwm_net,
+        "forced_pwm_node_input_capacitor_cycles_per_s": fpwm_node_net,
         "closed_loop_dcm_cycles_per_s": closed,
         "analog_loop_dcm_cycles_per_s": analog,
         "solve_ivp_cycles_per_s": ode_rate,
@@ -202,6 +211,9 @@ def main(argv=None):
           f"segments a cycle) | {fpwm_tab:.3g} cycles/s |")
     print(f"| engine, diode emulation in DCM with node capacitance (node ring) "
           f"| {de_node:.3g} cycles/s |")
+    print(f"| engine, forced PWM with an input capacitor and source inductance (+2 states) "
+          f"| {fpwm_net:.3g} cycles/s |")
+    print(f"| engine, the same with node capacitance | {fpwm_node_net:.3g} cycles/s |")
     print(f"| engine, digital voltage-mode loop, diode emulation in DCM | {closed:.3g} cycles/s |")
     print(f"| engine, analog voltage-mode loop (PI, 4 states), diode emulation in DCM "
           f"| {analog:.3g} cycles/s |")
