@@ -17,18 +17,25 @@ import numpy as np
 from scipy.optimize import brentq
 
 from bucksim.analysis.extrema import piece_extrema
+from bucksim.analysis.pruned import window_extrema
 from bucksim.analysis.windows import signal_mean
 
 DEFAULT_BAND = 0.01
 
 
 def _pieces(run, ta, tb):
+    """Pieces of the segments in ``[ta, tb]`` (segment index, start and end in it).
+    The segments are in time order: the window is one index range."""
     seg = run.segments
-    end = seg.t0 + seg.dt
-    idx = np.nonzero((end > ta) & (seg.t0 < tb))[0]
-    tau_a = np.maximum(ta - seg.t0[idx], 0.0)
-    tau_b = np.minimum(tb, end[idx]) - seg.t0[idx]
+    k_a = max(int(np.searchsorted(seg.t0, ta, side="right")) - 1, 0)
+    k_b = int(np.searchsorted(seg.t0, tb, side="left"))
+    idx = np.arange(k_a, k_b)
+    t0 = seg.t0[k_a:k_b]
+    tau_a = np.maximum(ta - t0, 0.0)
+    tau_b = np.minimum(tb - t0, seg.dt[k_a:k_b])
     keep = tau_b > tau_a
+    if keep.all():
+        return idx, tau_a, tau_b
     return idx[keep], tau_a[keep], tau_b[keep]
 
 
@@ -131,13 +138,14 @@ def transients(run, band: float = DEFAULT_BAND) -> list[dict]:
         if idx.shape[0] == 0:
             continue
         ref = _target(run, t_ev, tb)
-        lo, hi = piece_extrema(run, "vo", idx, ta_, tb_)
-        _, il_hi = piece_extrema(run, "iL", idx, ta_, tb_)
         width = band * abs(ref)
         lo_b, hi_b = ref - width, ref + width
-        t_last = _settle_time(run, idx, ta_, tb_, lo_b, hi_b, lo, hi)
-        out.append(event_record(kind, t_ev, tb, ref, float(lo.min()), float(hi.max()),
-                                float(il_hi.max()), band, t_last))
+        # exact extrema only where the pieces' bounds can reach them or the band's edges
+        v_lo, v_hi, sel, lo, hi = window_extrema(run, "vo", idx, ta_, tb_, band=(lo_b, hi_b))
+        il_hi = window_extrema(run, "iL", idx, ta_, tb_)[1]
+        # the pieces outside sel provably stay inside the band: the exit is among sel
+        t_last = _settle_time(run, idx[sel], ta_[sel], tb_[sel], lo_b, hi_b, lo, hi)
+        out.append(event_record(kind, t_ev, tb, ref, v_lo, v_hi, il_hi, band, t_last))
     return out
 
 
