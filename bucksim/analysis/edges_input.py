@@ -44,9 +44,9 @@ def jump_energies(run, idx, tau_a, z_a, cond) -> dict:
         return out
     seg = run.segments
     jump = (cond == HIGH) & (tau_a == 0.0)
-    rows = run.signal_table("vsw")[seg.system[idx[jump]]]
-    v_b = np.einsum("ij,ij->i", rows, z_a[jump])
-    v_a = z_a[jump, stage.i_node]
+    z_j = z_a[jump]
+    v_b = _node_after(run, idx[jump], z_j)
+    v_a = z_j[:, stage.i_node]
     net, lo, hi = stage.net, stage.i_in, stage.i_ctl
     caps = np.array([name.startswith("vc") for name in net.names])
     loss, supply = np.zeros(len(v_b)), np.zeros(len(v_b))
@@ -54,7 +54,7 @@ def jump_energies(run, idx, tau_a, z_a, cond) -> dict:
         level = stage.split_id(seg.system[k])[0]
         curve, vs = stage.curves[level], stage.levels[level].vin
         q = float(curve.charge(va, vb))
-        post = z_a[jump][j, lo:hi]
+        post = z_j[j, lo:hi]
         dx = net.b_d * q
         pre = post - dx
         q_src = q + float(np.sum(net.storage[caps] * dx[caps]))    # the banks' share left
@@ -64,6 +64,11 @@ def jump_energies(run, idx, tau_a, z_a, cond) -> dict:
     out["jump"][jump] = True
     out["v_b"][jump], out["loss"][jump], out["supply"][jump] = v_b, loss, supply
     return out
+
+
+def _node_after(run, k, z):
+    """The node voltage the closed high side holds at the starts ``z`` of segments ``k``."""
+    return np.einsum("ij,ij->i", run.signal_table("vsw")[run.segments.system[k]], z)
 
 
 def network_state_before(run, t: float, x: np.ndarray) -> np.ndarray:
@@ -77,9 +82,9 @@ def network_state_before(run, t: float, x: np.ndarray) -> np.ndarray:
     if k >= len(seg) or seg.t0[k] != t or seg.conduction[k] != HIGH:
         return x
     z = np.append(seg.x0[k], 1.0)
-    e = jump_energies(run, np.array([k]), np.zeros(1), z[None, :], np.array([HIGH]))
     level = stage.split_id(seg.system[k])[0]
-    q = float(stage.curves[level].charge(z[stage.i_node], e["v_b"][0]))
+    v_b = _node_after(run, np.array([k]), z[None, :])[0]
+    q = float(stage.curves[level].charge(z[stage.i_node], v_b))
     x = np.array(x, dtype=float, copy=True)
     x[stage.i_in:stage.i_ctl] -= stage.net.b_d * q
     return x

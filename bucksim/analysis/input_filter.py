@@ -78,12 +78,10 @@ def output_impedance(scenario, frequencies) -> np.ndarray:
         return None
     row = net.rows["vin"]
     c, d_d = row[:net.n], row[net.n + 1]
-    eye = np.eye(net.n)
-    out = []
-    for f in np.atleast_1d(np.asarray(frequencies, dtype=float)):
-        s = 2j * np.pi * f
-        out.append(-(c @ np.linalg.solve(s * eye - net.A, net.b_d) + d_d))
-    return np.array(out)
+    s = 2j * np.pi * np.atleast_1d(np.asarray(frequencies, dtype=float))
+    x = np.linalg.solve(s[:, None, None] * np.eye(net.n) - net.A,
+                        np.broadcast_to(net.b_d[:, None], (s.shape[0], net.n, 1)))
+    return -(x[:, :, 0] @ c + d_d)
 
 
 def filter_interaction(scenario, power: float, points: int = 2000) -> FilterInteraction | None:

@@ -67,7 +67,7 @@ def summarize(run, cycles: int | None = None) -> Summary:
     # node's charge transfers are circuit: their source energy is the supply's own
     e_formula = float(np.sum(node["supply"])) + e_sw + e_core
     e_out = ig.integral("vo", "io")
-    side = _input_side(run.stage, ig, devices, width)
+    side = _input_side(run, ig, devices, (idx, tau_a, tau_b))
     if side is None:
         e_in = e_source = ig.integral("vin", "iin") + e_formula
         e_source_loss = 0.0
@@ -241,11 +241,11 @@ def _conduction(stage, ig, width):
     return devices, total
 
 
-def _input_side(stage, ig, devices, width):
+def _input_side(run, ig, devices, pieces):
     """The input network's devices (added to ``devices``), their loss [J], the
-    source resistance's loss [J], and the cell voltage and source current
-    records; None without an input capacitor."""
-    net = stage.net
+    source resistance's loss [J], and the cell voltage (its extrema over the
+    window's ``pieces``) and source current records; None without an input capacitor."""
+    net, width = run.stage.net, ig.width
     if net is None:
         return None
     total = 0.0
@@ -257,16 +257,11 @@ def _input_side(stage, ig, devices, width):
             continue
         devices[name] = {"rms": ig.rms(signal), "mean": ig.mean(signal),
                          "conduction_loss": energy / width, "switching_loss": 0.0}
-    run = ig.run
-    lo, hi = _cell_extrema(run, ig)
+    lo, hi = extrema(run, "vin", *pieces)
     return {"loss": total, "source_loss": net.source_resistance * ig.square("isrc"),
             "voltage": InputVoltage(mean=ig.mean("vin"), min=lo, max=hi, ripple=hi - lo),
             "current": SourceCurrent(mean=ig.mean("isrc"), rms=ig.rms("isrc"))}
 
-
-def _cell_extrema(run, ig):
-    idx, tau_a, tau_b, _ = window_pieces(run, run.t_end - ig.width)
-    return extrema(run, "vin", idx, tau_a, tau_b)
 
 
 def _switching(run, devices, t_start, t_stop):

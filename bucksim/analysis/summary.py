@@ -17,10 +17,11 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 from bucksim.analysis.loss_items import LOSS_ITEMS, item_label  # noqa: F401 (re-exported)
+from bucksim.model.input_parts import MAX_BANKS
 
 DEVICE_ORDER = ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode",
                 "switch_node", "inductor", "output_capacitor", "supply", "input_capacitor",
-                *(f"input_capacitor_{k}" for k in range(2, 9)), "input_filter",
+                *(f"input_capacitor_{k}" for k in range(2, MAX_BANKS + 1)), "input_filter",
                 "input_filter_damping")
 
 #: A mean current below this share of the same current's RMS (its natural

@@ -305,13 +305,14 @@ def stage_tables(stage, table: TransitionTable) -> StageTables:
 
 
 def _jumps(stage, m):
-    """The state change per coulomb drawn at once from the cell, per level ((0, m)
-    without an input network or node capacitance): the network's ``b_d`` column."""
+    """The state change per coulomb drawn at once from the cell ((1, m); (0, m)
+    without an input network or node capacitance): the network's ``b_d`` column,
+    the same at every level (the levels change sources, not the network)."""
     if stage.net is None or not stage.node:
         return np.zeros((0, m))
-    col = np.zeros(m)
-    col[stage.i_in:stage.i_ctl] = stage.net.b_d
-    return np.tile(col, (len(stage.levels), 1))
+    col = np.zeros((1, m))
+    col[0, stage.i_in:stage.i_ctl] = stage.net.b_d
+    return col
 
 
 def phase_program(scenario, P, nominal, t_end: float) -> PhaseProgram:

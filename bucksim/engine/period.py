@@ -263,11 +263,11 @@ def band_charge(edges, coef, level, n_bands, v_a, v_b):
 @njit(inline="always")
 def node_jump(tab, level, z):
     """The high side closes on the node: the node's charge ``Q`` moves from the
-    switch cell at once, and the input network's state changes by ``jumps[level] Q``.
+    switch cell at once, and the input network's state changes by ``jumps[0] Q``.
     ``Q`` takes the node from its held ``z[i_vn]`` to the channel's voltage, which the
     change itself moves by ``Cn / Cin`` of it: a fixed point, a contraction by that ratio."""
     row = tab.Vsw[level * N_CONDUCTION + HIGH]
-    jump = tab.jumps[level]
+    jump = tab.jumps[0]
     edges, n_bands = tab.band_edges, tab.band_edges.shape[1] - 1
     v_a = z[tab.i_vn]
     v0 = _dot(row, z)

@@ -70,8 +70,9 @@ class StageTables(NamedTuple):
     k3ls: np.ndarray
     khs: np.ndarray
     k3hs: np.ndarray
-    #: (n_levels * n_bands, 8) ``[L, Cn, C, a, b, c0, g, Icc]`` of the open node's energy
-    #: bound (:func:`~bucksim.engine.bounds.open_node_clear`), per (level, band).
+    #: (n_levels * n_bands, 9) ``[L, Cn, C, a, b, c0, g, Icc, free]`` of the open node's
+    #: energy bound (:func:`~bucksim.engine.bounds.open_node_clear`), per (level, band);
+    #: ``free`` = 1: the high clamp reads the input network and is never cleared.
     open_coef: np.ndarray
     #: (n_levels, n_bands + 1) edges [V] of the node capacitance's bands in ``vn``,
     #: ``-inf`` first and ``+inf`` last (:class:`~bucksim.model.capacitance.NodeCurve`).
@@ -81,9 +82,9 @@ class StageTables(NamedTuple):
     e_vn: np.ndarray
     kvn: np.ndarray
     k3vn: np.ndarray
-    #: (n_levels, m) with an input network, the state change per coulomb drawn at once
-    #: from the switch cell (the network's column of the drawn current): the high side
-    #: closing on the node takes the node's charge from there; (0, m) without one.
+    #: (1, m) with an input network and node capacitance, the state change per coulomb
+    #: drawn at once from the switch cell (the network's column of the drawn current):
+    #: the high side closing on the node takes the node's charge from there; (0, m) else.
     jumps: np.ndarray
 
 

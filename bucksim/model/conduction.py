@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from bucksim.model.capacitance import NodeCurve
+from bucksim.model.input_parts import MAX_BANKS
 from bucksim.model.parts import STRATEGIES, Mosfet, Scenario
 
 HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE, OPEN = range(6)
@@ -118,5 +119,5 @@ UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw
 # bank's state is "vcin")
 UNITS.update({"vs": "V", "vterm": "V", "isrc": "A", "icin": "A", "ilf": "A", "idamp": "A",
               "irp": "A", "vcin": "V", "vcd": "V"})
-UNITS.update({f"icin{k}": "A" for k in range(1, 9)})
-UNITS.update({f"vcin{k}": "V" for k in range(2, 9)})
+UNITS.update({f"icin{k}": "A" for k in range(1, MAX_BANKS + 1)})
+UNITS.update({f"vcin{k}": "V" for k in range(2, MAX_BANKS + 1)})

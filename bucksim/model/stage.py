@@ -367,10 +367,10 @@ class Stage(InputRows):
             return self._controller_signal(name, system)
         if name in INPUT_SIGNALS or name.startswith("icin"):
             return self._input_signal(name, system)
-        if name == "vsw" and self.net is not None and self.split_id(system)[1] in (HIGH,
-                                                                                 HIGH_DIODE):
-            return self._input_signal(name, system)
-        if name == "vsw" and self.node and self.split_id(system)[1] == OPEN:
+        level, k = self.split_id(system)
+        if name == "vsw" and self.net is not None and k in (HIGH, HIGH_DIODE):
+            return self._cell_vsw(self.levels[level], k)    # the cell's voltage, less drops
+        if name == "vsw" and self.node and k == OPEN:
             return self._embed(np.array([-self.r_node, 0.0, 0.0]), vn=1.0)
         return self._embed(self._signal3(name, system))
 
@@ -404,8 +404,6 @@ class Stage(InputRows):
             return il if k in (HIGH, HIGH_DIODE) else zero
         if name == "vsw":
             return self._vsw(lev, k, vo)
-        if name == "vin":
-            return np.array([0.0, 0.0, lev.vin])
         asynchronous = self.scenario.switching.strategy == "asynchronous"
         if name == "high_side":
             return il if k == HIGH else zero

@@ -65,8 +65,6 @@ class InputRows:
             if name == "isrc":
                 return self._embed(np.array([1.0 if high else 0.0, 0.0, 0.0]))
             raise KeyError(f"signal {name!r} exists only with an [input_capacitor]")
-        if name == "vsw" and high:
-            return self._cell_vsw(lev, k)
         if name == "vs":
             return self._embed(np.array([0.0, 0.0, lev.vin]))
         if name not in self.net.rows:
