@@ -28,6 +28,7 @@ from bucksim.analysis.budget_edges import async_edges, dead_times, node_charge, 
 from bucksim.analysis.budget_input import input_items
 from bucksim.analysis.budget_ring import lc_dead_time_integral, node_parts, slew_excess
 from bucksim.analysis.edges import snubbed_turn_off
+from bucksim.analysis.gate_drive import closed_form as gate_drive_closed_form
 from bucksim.model.parts import Mosfet
 from bucksim.model.stage import node_capacitance
 
@@ -224,7 +225,8 @@ def estimate(scenario, mode: str | None = None) -> LossBudget:
           :func:`bucksim.model.stage.node_capacitance`, a table's own charge and energy)
         - ``switching.recovery``: ``Qrr Vin fs``, or charge control
           (:func:`bucksim.analysis.budget_edges.recovered_ccm`)
-        - ``switching.gate``: ``(Qg_hs Vg_hs + Qg_ls Vg_ls) fs``
+        - ``gate_drive``: ``(Qg_hs Vg_hs + Qg_ls Vg_ls) fs + Iq Vin`` (ideal rail), ``(Qg_hs +
+          Qg_ls) V fs + Iq V`` from a regulator (``V = Vin``) or a bias rail (``Vbias``)
         - ``inductor.core``: iGSE for triangular flux,
           ``V k_i dB^beta f^alpha (D^(1-alpha) + (1-D)^(1-alpha))``
 
@@ -363,11 +365,10 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
                             "Erickson & Maksimovic 3rd ed. ch. 4 (charge control; from "
                             "memory); common practice (fixed Qrr)",
                             "the diode's current taken constant in each dead time"))
-    gate = hs.qg * hs.gate_voltage + (ls.qg * ls.gate_voltage if sync else 0.0)
-    items.append(BudgetItem("switching.gate", "gate drive", "switching", gate * fs,
-                            "(Qg_hs Vg_hs + Qg_ls Vg_ls) fs", CP,
+    gate, formula = gate_drive_closed_form(scenario, fs)
+    items.append(BudgetItem("gate_drive", "gate drive", "switching", gate, formula, CP,
                             "nothing: the same charge per turn-on on both sides (checks the "
-                            "count)"))
+                            "count and the rail)"))
     return items
 
 

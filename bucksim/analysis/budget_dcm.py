@@ -43,6 +43,7 @@ from bucksim.analysis.budget_ring import (
     transfer,
 )
 from bucksim.analysis.edges import snubbed_turn_off
+from bucksim.analysis.gate_drive import closed_form as gate_drive_closed_form
 from bucksim.analysis.recovery import recovery_parameters
 from bucksim.model.parts import Mosfet
 
@@ -380,10 +381,10 @@ def dcm_switching(scenario, op: dict) -> list[tuple]:
                   "the idle interval (charge control; 0 for a fixed qrr: no diode conducts "
                   "at turn-on in DCM)", "derived (charge control, Erickson & Maksimovic "
                   "3rd ed. ch. 4)", "the straight diode ramp"))
-    gate = hs.qg * hs.gate_voltage + (ls.qg * ls.gate_voltage if sync else 0.0)
-    items.append(("switching.gate", "gate drive", "switching", gate * fs,
-                  "(Qg_hs Vg_hs + Qg_ls Vg_ls) fs", _CP,
-                  "nothing: the same charge per turn-on on both sides (checks the count)"))
+    gate, formula = gate_drive_closed_form(scenario, fs)
+    items.append(("gate_drive", "gate drive", "switching", gate, formula, _CP,
+                  "nothing: the same charge per turn-on on both sides (checks the count "
+                  "and the rail)"))
     return items
 
 

@@ -14,6 +14,7 @@ import json
 from dataclasses import dataclass
 
 from bucksim.analysis.budget import estimate
+from bucksim.analysis.gate_drive import SHARES as GATE_SHARES
 
 #: Relative tolerance [-] per regime and item kind: the largest disagreement the row's
 #: reason accounts for, about twice what was measured (largest |diff| in brackets, rows
@@ -67,6 +68,9 @@ def _sim_value(summary: dict, key: str) -> float | None:
         return dev["switch_node"]["conduction_loss"] if "switch_node" in dev else None
     if key == "inductor.core":
         return dev["inductor"].get("core_loss")
+    if key == "gate_drive":
+        g = summary.get("gate_drive")
+        return 0.0 if g is None else sum(g[k] for k in GATE_SHARES)
     raise KeyError(key)
 
 
@@ -159,7 +163,8 @@ def _kind(key: str) -> str:
         return "switch_node"
     if key.startswith("switching."):
         return key.split(".", 1)[1]
-    return {"inductor.core": "core", "total": "total", "output": "output"}[key]
+    return {"inductor.core": "core", "total": "total", "output": "output",
+            "gate_drive": "gate"}[key]
 
 
 def _tolerance(regime: str, key: str, op: dict) -> float:

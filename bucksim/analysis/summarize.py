@@ -23,6 +23,7 @@ import numpy as np
 from bucksim.analysis.edges import node_transfers, node_voltage_at
 from bucksim.analysis.edges_input import network_state_before
 from bucksim.analysis.extrema import extrema
+from bucksim.analysis.gate_drive import gate_drive_energy, gate_drive_record
 from bucksim.analysis.moments import SegmentMoments
 from bucksim.analysis.summary import (
     Device,
@@ -59,13 +60,18 @@ def summarize(run, cycles: int | None = None) -> Summary:
     idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
     ig = WindowIntegrals(run, idx, tau_b - tau_a, z_a, width)
     devices, loss = _conduction(run.stage, ig, width)
-    e_sw, node = _switching(run, devices, t_start, t_stop)
+    e_sw, node, drive = _switching(run, devices, t_start, t_stop)
     loss += e_sw + node["high_side"] + node["low_side"]
     e_core = _core(run, devices, idx, tau_a, tau_b, width)
     loss += e_core
-    # formula energies (overlap, recovery, gate, core) are added to both sides; the
-    # node's charge transfers are circuit: their source energy is the supply's own
-    e_formula = float(np.sum(node["supply"])) + e_sw + e_core
+    # the gate drive beyond the MOSFETs' own share (in e_sw), and the controller
+    loss += drive["driver"] + drive["resistors"] + drive["regulator"] + drive["quiescent"]
+    # formula energies (overlap, recovery, core, what the gate drive draws from the
+    # input) are added to both sides; the node's charge transfers are circuit: their
+    # source energy is the supply's own
+    e_formula = (float(np.sum(node["supply"])) + e_sw - drive["internal"] + e_core
+                 + drive["input"])
+    e_bias = drive["bias"]
     e_out = ig.integral("vo", "io")
     side = _input_side(run, ig, devices, (idx, tau_a, tau_b))
     if side is None:
@@ -76,11 +82,12 @@ def summarize(run, cycles: int | None = None) -> Summary:
         e_source_loss = side["source_loss"]
         e_source = ig.integral("vs", "isrc") + e_formula
         e_in = ig.integral("vterm", "isrc") + e_formula
-    balance = _balance_error(run, t_start, e_source, e_out, loss + e_source_loss)
+    balance = _balance_error(run, t_start, e_source + e_bias, e_out, loss + e_source_loss)
     il_min, il_max = extrema(run, "iL", idx, tau_a, tau_b)
     vo_min, vo_max = extrema(run, "vo", idx, tau_a, tau_b)
     mode, dead_zero = _mode(run, idx, tau_b - tau_a)
-    p_in, p_out = e_in / width, e_out / width
+    p_in, p_out, p_bias = e_in / width, e_out / width, e_bias / width
+    bias = run.scenario.controller.driver_supply == "bias"
     return Summary(
         window=Window(start=t_start, stop=t_stop, cycles=n_cyc),
         mode=mode,
@@ -92,13 +99,15 @@ def summarize(run, cycles: int | None = None) -> Summary:
                                          max=il_max, ripple=il_max - il_min),
         devices={name: _device(d) for name, d in devices.items()},
         power=Power(input=p_in, output=p_out, loss=loss / width,
-                    source_loss=None if side is None else e_source_loss / width),
-        efficiency=p_out / p_in if p_in > 0 else 0.0,
+                    source_loss=None if side is None else e_source_loss / width,
+                    bias=p_bias if bias else None),
+        efficiency=p_out / (p_in + p_bias) if p_in + p_bias > 0 else 0.0,
         energy_balance_error=float(balance),
         transients=tuple(Transient(**e) for e in event_metrics(run)),
         switch_node=_switch_node(run, t_stop, node),
         input_voltage=None if side is None else side["voltage"],
         source_current=None if side is None else side["current"],
+        gate_drive=gate_drive_record(run.scenario, drive, width),
         strategy=run.scenario.switching.strategy,
     )
 
@@ -268,9 +277,11 @@ def _switching(run, devices, t_start, t_stop):
     """Switching energies booked to the two switches: the formula kinds (drawn from
     the supply, dissipated in the switch) and the node's charge transfers (``coss``,
     from :func:`~bucksim.analysis.edges.node_transfers`; none without node capacitance).
-    Returns the formula kinds' total [J] and the transfers."""
+    Returns the formula kinds' total [J], the transfers and the gate drive's energies
+    (:func:`~bucksim.analysis.gate_drive.gate_drive_energy`)."""
     width = t_stop - t_start
     sw = switching_energy(run, t_start, t_stop)
+    drive = gate_drive_energy(run.scenario, run.stage, sw["turn_ons"], t_start, t_stop)
     node = node_transfers(run, t_start)
     total = 0.0
     for name in ("high_side", "low_side"):
@@ -281,7 +292,7 @@ def _switching(run, devices, t_start, t_stop):
         energy += node[name]
         devices[name]["switching_loss"] = energy / width
         devices[name]["switching"] = {kind: e / width for kind, e in parts.items()}
-    return total, node
+    return total, node, drive
 
 
 def _core(run, devices, idx, tau_a, tau_b, width):

@@ -16,6 +16,7 @@ import json
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 
+from bucksim.analysis.gate_drive import GateDrive
 from bucksim.analysis.loss_items import LOSS_ITEMS, item_label  # noqa: F401 (re-exported)
 from bucksim.model.input_parts import MAX_BANKS
 
@@ -150,13 +151,17 @@ class Power:
     terminals (the source side of the filter or capacitor), and
     ``source_loss``, the source resistance's, is in neither ``input`` nor
     ``loss``. Without one, ``input`` is the ideal source's power and the
-    source resistance is the ``supply`` device inside ``loss``.
+    source resistance is the ``supply`` device inside ``loss``. ``bias`` is
+    drawn from an external bias rail by the gate drive and the controller
+    (``controller.driver_supply = "bias"`` only); the efficiency is ``output /
+    (input + bias)``.
     """
 
     input: float
     output: float
     loss: float
     source_loss: float | None = field(default=None, metadata=_OPTIONAL)
+    bias: float | None = field(default=None, metadata=_OPTIONAL)
 
 
 @dataclass(frozen=True)
@@ -266,6 +271,8 @@ class Summary:
     input_voltage : InputVoltage or None  the switch cell's input voltage (None
         without an input capacitor)
     source_current : SourceCurrent or None  the source's current (likewise)
+    gate_drive : GateDrive or None  the gate drive and the controller: where their
+        energy goes and what they draw (None without gate charge or a controller table)
     strategy : str or None        the stage's switching strategy (names the
         asynchronous low side a freewheel diode in :meth:`loss_items`); not
         part of :meth:`to_dict`
@@ -285,6 +292,7 @@ class Summary:
     switch_node: SwitchNode | None = field(default=None, metadata={"optional": True})
     input_voltage: InputVoltage | None = field(default=None, metadata=_OPTIONAL)
     source_current: SourceCurrent | None = field(default=None, metadata=_OPTIONAL)
+    gate_drive: GateDrive | None = field(default=None, metadata=_OPTIONAL)
     strategy: str | None = field(default=None, compare=False, metadata={"internal": True})
 
     # -- plain views ------------------------------------------------------------
@@ -307,6 +315,7 @@ class Summary:
                    switch_node=_switch_node_from(data.get("switch_node")),
                    input_voltage=_record(InputVoltage, data.get("input_voltage")),
                    source_current=_record(SourceCurrent, data.get("source_current")),
+                   gate_drive=_record(GateDrive, data.get("gate_drive")),
                    strategy=strategy)
 
     def with_transients(self, events) -> Summary:
@@ -350,6 +359,11 @@ class Summary:
                 out[f"{dev}.switching"] = d[dev].switching_loss
         if "switch_node" in d:      # the open node's current in its series resistance
             out["switch_node.resistance"] = d["switch_node"].conduction_loss
+        g = self.gate_drive
+        if g is not None:           # (the MOSFETs' own share is in their switching)
+            out.update({"gate_drive.driver": g.driver, "gate_drive.resistors": g.resistors,
+                        "gate_drive.regulator": g.regulator,
+                        "controller.quiescent": g.quiescent})
         out["inductor.dcr"] = d["inductor"].conduction_loss
         if d["inductor"].core_loss is not None:
             out["inductor.core"] = d["inductor"].core_loss
@@ -419,12 +433,15 @@ class Summary:
             lines += [f"input         cell mean {format_si(v.mean, 'V')}   ripple "
                       f"{format_si(v.ripple, 'V')} p-p   source current mean "
                       f"{format_si(src.mean, 'A')}, rms {format_si(src.rms, 'A')}"]
+        if self.gate_drive is not None:
+            lines += _drive_lines(self.gate_drive, format_si)
         lines += [
             "",
             f"power         in {format_si(p.input, 'W')}   out {format_si(p.output, 'W')}"
             f"   loss {format_si(p.loss, 'W')}"
             + ("" if p.source_loss is None else
-               f"   (source resistance {format_si(p.source_loss, 'W')}, outside)"),
+               f"   (source resistance {format_si(p.source_loss, 'W')}, outside)")
+            + ("" if p.bias is None else f"   bias rail {format_si(p.bias, 'W')} (in)"),
             f"efficiency    {100 * self.efficiency:.3f} %",
             f"energy balance error {self.energy_balance_error:.2e} (relative)",
         ]
@@ -437,6 +454,14 @@ class Summary:
 
     def __repr__(self):
         return f"<Summary efficiency={self.efficiency:.5f} mode={self.mode}>"
+
+
+def _drive_lines(g: GateDrive, format_si) -> list[str]:
+    w = lambda v: format_si(v, "W")  # noqa: E731
+    return [f"gate drive    driver {w(g.driver)}   gate resistors {w(g.resistors)}   MOSFET "
+            f"gates {w(g.internal)}   regulator {w(g.regulator)}   controller {w(g.quiescent)}",
+            f"              rail: {g.supply}; drawn from the input {w(g.input)}"
+            + (f", from the bias rail {w(g.bias)}" if g.supply == "bias" else "")]
 
 
 def _record(cls, data):

@@ -11,14 +11,14 @@ practice [2]_; ``i`` = iL at the instant):
 ============================  =========================================================
 transition                    energy [J]
 ============================  =========================================================
-high side turns on            gate ``Qg_hs Vg_hs`` (always);
+high side turns on            gate ``Qg_hs Vg_hs`` (always; the MOSFET's share);
   from low diode/low/open     overlap ``0.5 Vin max(i, 0) t_rise_hs``;
   (hard)                      reverse recovery ``Q Vin`` of the low-side diode's charge
 high side turns off, i > 0    overlap: the channel's current ramp against the node
                               capacitance, ``I^2 t_f^2 / (24 Cn)`` at low current,
                               ``-> 0.5 Vin i t_fall_hs`` at high current
                               (:func:`~bucksim.analysis.edges.snubbed_turn_off`)
-low side turns on             gate ``Qg_ls Vg_ls`` (always);
+low side turns on             gate ``Qg_ls Vg_ls`` (always; the MOSFET's share);
   from high body diode, or    overlap ``0.5 Vin |i| t_rise_ls``, recovery ``Q Vin`` of
   from high with i < 0        the high-side body diode's charge
 ============================  =========================================================
@@ -52,6 +52,7 @@ from __future__ import annotations
 import numpy as np
 
 from bucksim.analysis.edges import snubbed_turn_off
+from bucksim.analysis.gate_drive import loop_shares
 from bucksim.analysis.recovery import conduction_before_start, recovered_charges
 from bucksim.model.parts import Mosfet
 from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE, OPEN
@@ -94,7 +95,9 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
 
     hs_on = cur == HIGH
     hard_on = hs_on & np.isin(prev, (LOW_DIODE, LOW, IDLE, OPEN))
-    h["gate"] += hs.qg * hs.gate_voltage * np.count_nonzero(hs_on)
+    # the gate loop's share in the MOSFET's own gate resistance (analysis.gate_drive)
+    r_drv = sc.controller.driver_resistance
+    h["gate"] += hs.qg * hs.gate_voltage * np.count_nonzero(hs_on) * loop_shares(hs, r_drv)[2]
     h["overlap"] += np.sum(0.5 * vin[hard_on] * np.maximum(i[hard_on], 0.0)) * hs.rise_time
     recover = hs_on & (prev == LOW_DIODE)
     rec = recovered_charges(run, t_start, t_stop)
@@ -106,10 +109,13 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
                                                   run.stage.cn)))
 
     n_ls_on = 0
+    t_on = seg.t0[k]
+    out["turn_ons"] = {"high_side": t_on[hs_on], "low_side": t_on[:0]}
     if ls_fet:
         ls_on = cur == LOW
+        out["turn_ons"]["low_side"] = t_on[ls_on]
         n_ls_on = np.count_nonzero(ls_on)
-        lo["gate"] += ls.qg * ls.gate_voltage * n_ls_on
+        lo["gate"] += ls.qg * ls.gate_voltage * n_ls_on * loop_shares(ls, r_drv)[2]
         hard = ls_on & ((prev == HIGH_DIODE) | ((prev == HIGH) & (i < 0)))
         lo["overlap"] += np.sum(0.5 * vin[hard] * np.abs(i[hard])) * ls.rise_time
         lo["recovery"] += float(np.sum(rec["high_side"]["charges"] * rec["high_side"]["vin"]))

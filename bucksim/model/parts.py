@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from bucksim.errors import ScenarioError
 from bucksim.model.capacitance import CapacitanceTable, is_positive
 from bucksim.model.checks import finite, non_negative, positive
+from bucksim.model.drive_parts import Controller, GateResistance, check_drive
 from bucksim.model.input_parts import InputCapacitor, InputFilter, check_input_side
 
 STRATEGIES = ("asynchronous", "forced-pwm", "diode-emulation")
@@ -227,8 +228,8 @@ class Mosfet:
     ``rise_time``/``fall_time`` [s] are the drain voltage-current overlap
     times, ``coss`` [F] the output capacitance (a number, or a
     :class:`~bucksim.model.capacitance.CapacitanceTable` against ``Vds``), ``qg`` [C] the total gate
-    charge at ``gate_voltage`` [V]. The body diode's ``qrr`` [C] is its
-    reverse-recovery charge.
+    charge at ``gate_voltage`` [V], ``gate_resistance`` its gate loop's internal and
+    external resistances. The body diode's ``qrr`` [C] is its reverse-recovery charge.
     """
 
     rds_on: float
@@ -238,6 +239,7 @@ class Mosfet:
     coss: float | CapacitanceTable = 0.0
     qg: float = 0.0
     gate_voltage: float = 0.0
+    gate_resistance: GateResistance = GateResistance()
     section: str = field(default="high_side", compare=False, repr=False)
 
     def __post_init__(self):
@@ -443,11 +445,15 @@ class Scenario:
     run: RunSettings
     input_capacitor: InputCapacitor | None = None
     input_filter: InputFilter | None = None
+    controller: Controller = Controller()
     source: str | None = field(default=None, compare=False)
     text: str | None = field(default=None, compare=False, repr=False)
 
     def __post_init__(self):
         check_input_side(self.supply, self.input_capacitor, self.input_filter)
+        check_drive(self.controller, [m for m in (self.high_side, self.low_side)
+                                      if isinstance(m, Mosfet)],
+                    min([self.supply.voltage] + [s.voltage for s in self.supply.steps]))
         T = self.switching.period
         sync = self.switching.strategy != "asynchronous"
         if sync and not isinstance(self.low_side, Mosfet):

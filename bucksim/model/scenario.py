@@ -14,7 +14,10 @@ prefix and the unit (``"2.2 uH"``, ``"500 kHz"``; see :mod:`bucksim.model.units`
     [inductor]          inductance, dcr = 0, core = {k, alpha, beta, volume, turns, area}
     [output_capacitor]  capacitance, esr = 0
     [high_side]         rds_on, body_diode = {vf, r, qrr, tau, qrr_current}, rise_time,
-                        fall_time, coss (F, or [[V, F], ...]), qg, gate_voltage (else 0)
+                        fall_time, coss (F, or [[V, F], ...]), qg, gate_voltage (else 0),
+                        gate_resistance = {internal, external}
+    [controller]        quiescent_current, driver_supply, bias_voltage, driver_resistance
+                        (optional)
     [low_side]          device = "mosfet" (as [high_side]) | "diode" (the diode keys, cj)
     [load]              resistance (absent or inf: none), current = 0,
                         steps = [{time, resistance?, current?}, ...]
@@ -39,6 +42,13 @@ import tomli_w
 from bucksim.errors import ScenarioError
 from bucksim.model import parts
 from bucksim.model.capacitance import as_plain, is_positive, read_capacitance
+from bucksim.model.drive_tables import (
+    CONTROLLER_KEYS,
+    controller_dict,
+    gate_resistance_dict,
+    read_controller,
+    read_gate_resistance,
+)
 from bucksim.model.input_tables import (
     INPUT_CAPACITOR_KEYS,
     INPUT_FILTER_KEYS,
@@ -67,7 +77,7 @@ DEFAULT_SCENARIO_PATH = Path(__file__).resolve().parents[1] / "data" / "default.
 
 TOP_KEYS = ("schema", "title", "supply", "switching", "inductor", "output_capacitor",
             "high_side", "low_side", "load", "control", "run", "input_capacitor",
-            "input_filter")
+            "input_filter", "controller")
 SUPPLY_KEYS = ("voltage", "resistance", "steps", "inductance")
 SUPPLY_STEP_KEYS = ("time", "voltage")
 SWITCHING_KEYS = ("frequency", "strategy", "dead_time", "node_resistance")
@@ -75,7 +85,8 @@ INDUCTOR_KEYS = ("inductance", "dcr", "core")
 CORE_KEYS = ("k", "alpha", "beta", "volume", "turns", "area")
 CAPACITOR_KEYS = ("capacitance", "esr")
 DIODE_KEYS = ("vf", "r", "qrr", "cj", "tau", "qrr_current")
-MOSFET_KEYS = ("rds_on", "body_diode", "rise_time", "fall_time", "coss", "qg", "gate_voltage")
+MOSFET_KEYS = ("rds_on", "body_diode", "rise_time", "fall_time", "coss", "qg", "gate_voltage",
+               "gate_resistance")
 LOW_SIDE_DEVICES = ("mosfet", "diode")
 #: ``profile`` (load levels with their share of time) is read by
 #: ``bucksim compare`` from the file itself; it does not change a run.
@@ -158,6 +169,7 @@ def _build(doc, source=None, text=None):
         input_capacitor=read_input_capacitor(top.table("input_capacitor",
                                                        INPUT_CAPACITOR_KEYS)),
         input_filter=read_input_filter(top.table("input_filter", INPUT_FILTER_KEYS)),
+        controller=read_controller(top.table("controller", CONTROLLER_KEYS)),
         source=source,
         text=text,
     )
@@ -210,7 +222,8 @@ def _mosfet(t):
                         rise_time=t.quantity("rise_time", "s", 0.0),
                         fall_time=t.quantity("fall_time", "s", 0.0),
                         coss=read_capacitance(t, "coss"), qg=t.quantity("qg", "C", 0.0),
-                        gate_voltage=t.quantity("gate_voltage", "V", 0.0), section=t.key)
+                        gate_voltage=t.quantity("gate_voltage", "V", 0.0),
+                        gate_resistance=read_gate_resistance(t), section=t.key)
 
 
 def _low_side(top):
@@ -286,7 +299,7 @@ def _diode_dict(d):
 def _mosfet_dict(m):
     return {"rds_on": m.rds_on, "body_diode": _diode_dict(m.body_diode),
             "rise_time": m.rise_time, "fall_time": m.fall_time, "coss": as_plain(m.coss),
-            "qg": m.qg, "gate_voltage": m.gate_voltage}
+            "qg": m.qg, "gate_voltage": m.gate_voltage, **gate_resistance_dict(m.gate_resistance)}
 
 
 def scenario_to_dict(scenario):
@@ -345,6 +358,7 @@ def scenario_to_dict(scenario):
         "high_side": _mosfet_dict(s.high_side),
         "low_side": low_side,
         "load": load, "control": control, "run": run, **input_side_dict(s),
+        **controller_dict(s.controller),
     }
 
 

@@ -158,6 +158,8 @@ def test_summary_json_matches_the_command_line_and_round_trips(run):
 
 #: Summary keys present only with an input capacitor (docs: "with an `[input_capacitor]` only").
 INPUT_ONLY = ("power.source_loss", "input_voltage.", "source_current.")
+#: Present only with an external bias rail (docs: 'with `controller.driver_supply = "bias"`').
+BIAS_ONLY = ("power.bias",)
 
 
 def test_summary_keys_follow_the_reference_order(run):
@@ -170,10 +172,11 @@ def test_summary_keys_follow_the_reference_order(run):
         return [k for k in keys if not k.startswith("devices.")]
 
     assert outside_devices(leaves) == [k for k in outside_devices(documented)
-                                       if not k.startswith(INPUT_ONLY)]
-    # with an input capacitor every documented key is there, in the same order
+                                       if not k.startswith(INPUT_ONLY + BIAS_ONLY)]
+    # with an input capacitor and a bias rail every documented key is there, in order
     text = Path(SCENARIO).read_text(encoding="utf-8") + (
-        '\n[input_capacitor]\ncapacitance = "22 uF"\nesr = "3 mohm"\n')
+        '\n[input_capacitor]\ncapacitance = "22 uF"\nesr = "3 mohm"\n'
+        '\n[controller]\ndriver_supply = "bias"\nbias_voltage = "5 V"\n')
     networked = simulate(loads_scenario(text)).summary().to_dict()
     assert outside_devices(_leaves(networked)) == outside_devices(documented)
     names = [k for cell in tables[1] for k in _expand(cell)]

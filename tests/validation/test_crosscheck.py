@@ -65,7 +65,7 @@ def test_conduction_items_agree_in_ccm_with_small_ripple(strategy):
         r = rows[key]
         assert r["simulated"] == pytest.approx(r["closed_form"], rel=tol), key
     # Qrr and gate terms do not depend on the current: equal to rounding
-    for key in ("switching.recovery", "switching.gate"):
+    for key in ("switching.recovery", "gate_drive"):
         assert rows[key]["simulated"] == pytest.approx(rows[key]["closed_form"], rel=1e-9), key
     # the node's charge: the closed form Cn (v_b - v_a)(V_p - (v_a + v_b)/2) per closing
     # switch at the averaged edge currents (derived; budget._node_charge) against the
@@ -209,7 +209,7 @@ def test_sensor_rail_items_agree_in_dcm(sensor):
         if not r["closed_form"] and not r["simulated"]:
             continue
         tol = {"switching.coss": 0.05, "total loss": 0.01, "output power": 0.005,
-               "switching.gate": 1e-9}.get(key, 0.02)
+               "gate_drive": 1e-9}.get(key, 0.02)
         assert _rel(r) <= tol, (key, r["percent"])
     vo = cc.summary["output_voltage"]["mean"]
     assert cc.budget["operating_point"]["vo"] == pytest.approx(vo, rel=2e-3)
