@@ -1,4 +1,4 @@
-"""Figures: waveforms, steady states, losses, efficiency across load, reverse current, sweeps.
+"""Figures: waveforms, steady states, a summary's losses, sweeps, crosschecks.
 
 Every function returns a :class:`matplotlib.figure.Figure` built without
 pyplot's global state, so it is safe under any backend (Agg in tests and on
@@ -13,6 +13,8 @@ here, so an import the other way would close a cycle).
 Waveforms are drawn from the exact segment table: points are placed inside
 each segment, both ends included with the segment's own (left-limit) value
 at its end, so switch-node edges are vertical and never smeared by resampling.
+The light-load studies' figures (efficiency across load, loss breakdown, reverse
+current) are :mod:`bucksim.study_figures`.
 """
 
 from __future__ import annotations
@@ -29,9 +31,11 @@ STATE_LABELS = ("high side on", "low side on", "low-side diode", "high-side diod
 STRATEGY_STYLE = {"asynchronous": ("#8c5e34", "s", "-"),
                   "forced-pwm": ("#3b6ea5", "o", "-"),
                   "diode-emulation": ("#4f9d69", "^", "--")}
+#: One colour per loss item (as many as there are items; a neighbour never repeats).
 ITEM_COLOURS = ("#3b6ea5", "#9cc3e6", "#7b5ea7", "#8c5e34", "#c8553d", "#f0a58f",
                 "#e4c35b", "#4f9d69", "#a8d5a2", "#d9a0c0", "#8c8c8c", "#5b5b5b",
-                "#2f2f2f")
+                "#2f2f2f", "#b8860b", "#5f9ea0", "#cd5c5c", "#6b8e23", "#483d8b",
+                "#deb887", "#20b2aa")
 SIGNAL_NAMES = {"iL": "inductor current iL", "vsw": "switch node vsw", "vo": "output vo",
                 "vC": "capacitor voltage vC", "io": "load current io",
                 "ic": "capacitor current iC", "iin": "cell current iin",
@@ -171,137 +175,6 @@ def waveform_figure(run, signals=("iL", "vsw", "vo"), window=None, *, size=(8.0,
 
 
 # ----------------------------------------------------------------------------- comparison
-
-def efficiency_figure(comparison, log=None, *, size=(8.0, 5.0)):
-    """Efficiency [%] vs mean load current [A], one line per strategy.
-
-    ``log`` (default: the comparison's own setting) puts the load on a log axis.
-    Profile levels, when present, are marked with their share of time.
-    """
-    from matplotlib.ticker import PercentFormatter
-
-    log = comparison.log if log is None else log
-    fig = _figure(size)
-    ax = fig.add_subplot()
-    from bucksim.model.parts import STRATEGY_NAMES
-    for s in comparison.strategies:
-        rows = comparison.rows[s]
-        colour, marker, style = STRATEGY_STYLE[s]
-        ax.plot([r.load_current for r in rows], [100 * r.efficiency for r in rows],
-                color=colour, marker=marker, linestyle=style, markersize=4,
-                label=STRATEGY_NAMES[s])
-    if comparison.profile is not None:
-        pr = comparison.profile
-        first = pr.rows[comparison.strategies[0]]
-        for r, share in zip(first, pr.profile.shares, strict=True):
-            ax.axvline(r.load_current, color="#b0b0b0", linewidth=0.8, linestyle=":",
-                       label="_profile")
-            ax.annotate(f"{100 * share:.0f} % of time", (r.load_current, 0.02),
-                        xycoords=("data", "axes fraction"), rotation=90, fontsize="x-small",
-                        color="#707070", ha="right", va="bottom")
-    if log:
-        ax.set_xscale("log")
-    ax.set_xlabel(_label("load current", "A"))
-    ax.set_ylabel(_label("efficiency", "%"))
-    _eng_axis(ax.xaxis, "A")
-    ax.yaxis.set_major_formatter(PercentFormatter(100))
-    ax.grid(True, which="both", color="#e3e3e3", linewidth=0.6)
-    ax.legend(frameon=False)
-    title = comparison.title
-    if comparison.target_voltage is not None:
-        title += f" (Vo held at {comparison.target_voltage:.4g} V)"
-    ax.set_title(title, fontsize="medium")
-    return fig
-
-
-def loss_breakdown_figure(comparison, loads, *, size=(9.0, 5.5)):
-    """Stacked loss items [W] per strategy at the chosen sweep loads.
-
-    Parameters
-    ----------
-    comparison : Comparison
-    loads : sequence
-        Load levels of the comparison's sweep (values or strings such as
-        ``"0.3 A"``); a level not in the sweep raises ``KeyError``.
-
-    Returns
-    -------
-    Figure
-        One bar per (load, strategy); ``ax.containers`` holds one
-        ``BarContainer`` per loss item, labelled with the item's key.
-    """
-    from bucksim.analysis.loss_items import LOSS_ITEMS, item_label
-    from bucksim.model.units import format_si
-
-    picks = [comparison.level_index(lv) for lv in loads]
-    if not picks:
-        raise ValueError("loads must name at least one load level of the comparison")
-    strategies = comparison.strategies
-    n_s = len(strategies)
-    x, labels, bars = [], [], []
-    for g, k in enumerate(picks):
-        for j, s in enumerate(strategies):
-            x.append(g * (n_s + 1) + j)
-            r = comparison.rows[s][k]
-            # the load goes under the middle bar of its group, as the group's label
-            group = f"\n\n{format_si(r.load_current, 'A', 3)}" if j == n_s // 2 else ""
-            labels.append(_SHORT_NAMES[s] + group)
-            bars.append(r)
-    fig = _figure(size)
-    ax = fig.add_subplot()
-    bottom = np.zeros(len(bars))
-    for n, item in enumerate(LOSS_ITEMS):
-        h = np.array([r.losses.get(item, 0.0) for r in bars])
-        if not np.any(h > 0):
-            continue
-        ax.bar(x, h, bottom=bottom, width=0.8, color=ITEM_COLOURS[n % len(ITEM_COLOURS)],
-               label=item_label(item), gid=item)
-        bottom += h
-    ax.set_xticks(x, labels, fontsize="x-small")
-    ax.set_ylabel(_label("loss", "W"))
-    _eng_axis(ax.yaxis, "W")
-    ax.grid(True, axis="y", color="#e3e3e3", linewidth=0.6)
-    ax.set_axisbelow(True)
-    ax.legend(frameon=False, fontsize="small", loc="upper left")
-    ax.set_title(f"{comparison.title}: loss breakdown", fontsize="medium")
-    return fig
-
-
-def reverse_figure(result, *, size=(8.0, 5.0)):
-    """Minimum inductor current [A] vs mean load current [A], with the boundaries."""
-    fig = _figure(size)
-    ax = fig.add_subplot()
-    pts = result.points
-    ax.plot([p.load_current for p in pts], [p.min_current for p in pts], color="#1f3b57",
-            marker="o", markersize=4, label="minimum iL (simulated)")
-    ax.axhline(0.0, color="#8c8c8c", linewidth=0.8)
-    b = result.boundary
-    word = "reversal" if b.kind == "reversal" else "DCM"
-    ax.axvline(b.closed_form, color="#c8553d", linestyle="--", linewidth=1.0,
-               label=f"{word} boundary, closed form dI/2")
-    if b.simulated is not None:
-        ax.axvline(b.simulated, color="#4f9d69", linestyle="-", linewidth=1.0,
-                   label=f"{word} boundary, simulated")
-    ax.set_xlabel(_label("load current", "A"))
-    ax.set_ylabel(_label("minimum inductor current", "A"))
-    _eng_axis(ax.xaxis, "A")
-    _eng_axis(ax.yaxis, "A")
-    ax.grid(True, color="#e3e3e3", linewidth=0.6)
-    ax.legend(frameon=False)
-    ax.set_title(_with_strategy(result.title, result.strategy), fontsize="medium")
-    return fig
-
-
-def _with_strategy(title: str, strategy: str) -> str:
-    """The title, naming the strategy once: appended only when the title does not
-    name it already (scenario titles often do, e.g. "..., forced PWM)")."""
-    words = strategy.replace("-", " ")
-    if words.lower() in title.lower().replace("-", " "):
-        return title
-    return f"{title} ({words.replace('pwm', 'PWM')})"
-
-
-# ----------------------------------------------------------------------------- summary
 
 def summary_loss_figure(summary, *, title=None, size=(7.0, 4.5)):
     """The loss breakdown of a summary's window: one horizontal bar per loss item [W].

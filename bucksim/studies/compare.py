@@ -371,21 +371,21 @@ class Comparison:
         ----------
         kind : {"efficiency", "breakdown"}
             ``"efficiency"``: efficiency against load, one line per strategy
-            (:func:`bucksim.plotting.efficiency_figure`); ``"breakdown"``:
+            (:func:`bucksim.study_figures.efficiency_figure`); ``"breakdown"``:
             stacked loss items per strategy at ``loads``
-            (:func:`bucksim.plotting.loss_breakdown_figure`).
+            (:func:`bucksim.study_figures.loss_breakdown_figure`).
         loads : sequence, optional
             For ``"breakdown"``: sweep levels to show (default all of them).
         log : bool, optional
             For ``"efficiency"``: a log load axis (default the comparison's own).
         """
-        from bucksim import plotting
+        from bucksim import study_figures
 
         if kind == "efficiency":
-            return plotting.efficiency_figure(self, log=log, **kw)
+            return study_figures.efficiency_figure(self, log=log, **kw)
         if kind == "breakdown":
             picks = [lv.value for lv in self.levels] if loads is None else loads
-            return plotting.loss_breakdown_figure(self, picks, **kw)
+            return study_figures.loss_breakdown_figure(self, picks, **kw)
         raise ValueError(f"kind must be 'efficiency' or 'breakdown', got {kind!r}")
 
     def efficiency_figure(self, log=None):

@@ -297,8 +297,8 @@ class ReverseCurrentResult:
 
     def plot(self, **kw):
         """Figure: minimum inductor current vs load current, with the boundaries
-        (:func:`bucksim.plotting.reverse_figure`)."""
-        from bucksim.plotting import reverse_figure
+        (:func:`bucksim.study_figures.reverse_figure`)."""
+        from bucksim.study_figures import reverse_figure
         return reverse_figure(self, **kw)
 
     def to_pandas(self):

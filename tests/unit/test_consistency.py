@@ -232,8 +232,8 @@ def test_reverse_figure_names_the_strategy_once(strategy):
     import matplotlib
 
     matplotlib.use("Agg")
-    from bucksim.plotting import reverse_figure
     from bucksim.studies.reverse import reverse_current
+    from bucksim.study_figures import reverse_figure
 
     sc = bucksim.load_scenario("scenarios/core_rail_1v0.toml")
     sc = dataclasses.replace(sc, switching=dataclasses.replace(sc.switching, strategy=strategy))

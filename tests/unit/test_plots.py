@@ -19,15 +19,13 @@ from bucksim.analysis.summary import item_label
 from bucksim.model.parts import STRATEGY_NAMES
 from bucksim.plotting import (
     STATE_LABELS,
-    efficiency_figure,
-    loss_breakdown_figure,
-    reverse_figure,
     save_png,
     waveform_figure,
 )
 from bucksim.steady.solve import steady_state
 from bucksim.studies.compare import compare
 from bucksim.studies.reverse import reverse_current
+from bucksim.study_figures import efficiency_figure, loss_breakdown_figure, reverse_figure
 from tests.validation.test_compare import pol_rail
 
 CYCLES = 6
@@ -112,26 +110,76 @@ def test_efficiency_figure_data(comparison, tmp_path):
         assert list(ln.get_ydata()) == [100 * r.efficiency for r in rows]
 
 
-def test_loss_breakdown_figure_data(comparison):
-    fig = loss_breakdown_figure(comparison, ["50 mA", "3 A"])
-    ax, = fig.axes
-    assert "[W]" in ax.get_ylabel()
-    bars = [(s, lv) for lv in ("50 mA", "3 A") for s in comparison.strategies]
-    total = np.zeros(len(bars))
+def _stacks(ax, bars):
+    """Each bar's stacked items from the figure objects: {bar: [(item, bottom, height)]}."""
+    out = {b: [] for b in bars}
     for container in ax.containers:
         item = container.patches[0].get_gid()
         assert container.get_label() == item_label(item)
-        for k, (patch, (s, lv)) in enumerate(zip(container.patches, bars, strict=True)):
-            want = comparison.row(s, lv).losses.get(item, 0.0)
-            # (matplotlib keeps a stacked bar as bottom and top: its height is
-            # rounded to the bar below it, a few 1e-16 of the stack)
-            assert patch.get_height() == pytest.approx(want, rel=1e-12,
-                                                       abs=1e-15 * (total[k] + want))
-            assert patch.get_y() == pytest.approx(total[k], rel=1e-12, abs=1e-15)
-        total += [pt.get_height() for pt in container.patches]
-    assert total == pytest.approx([comparison.row(s, lv).loss for s, lv in bars], rel=1e-8)
+        for patch, b in zip(container.patches, bars, strict=True):
+            out[b].append((item, patch.get_y(), patch.get_height()))
+    return out
+
+
+def test_loss_breakdown_in_watts_has_one_panel_per_load(comparison):
+    loads = ("50 mA", "3 A")
+    fig = loss_breakdown_figure(comparison, loads, scale="watts")
+    assert len(fig.axes) == 2
+    assert "[W]" in fig.axes[0].get_ylabel()
+    for ax, lv in zip(fig.axes, loads, strict=True):
+        bars = [(s, lv) for s in comparison.strategies]
+        for b, parts in _stacks(ax, bars).items():
+            total = 0.0
+            for item, bottom, height in parts:
+                want = comparison.row(*b).losses.get(item, 0.0)
+                # (matplotlib keeps a stacked bar as bottom and top: its height is
+                # rounded to the bar below it, a few 1e-16 of the stack)
+                assert height == pytest.approx(want, rel=1e-12, abs=1e-15 * (total + want))
+                assert bottom == pytest.approx(total, rel=1e-12, abs=1e-15)
+                total += height
+            assert total == pytest.approx(comparison.row(*b).loss, rel=1e-8)
     with pytest.raises(KeyError, match="not in the comparison"):
         loss_breakdown_figure(comparison, ["1 A"])
+    with pytest.raises(ValueError, match="scale"):
+        loss_breakdown_figure(comparison, loads, scale="log")
+
+
+def test_every_bar_of_the_breakdown_is_visible_at_the_lightest_load(comparison, tmp_path):
+    # the shares view: every (load, strategy) bar fills the axis whatever its watts,
+    # each item is its share of that bar, and the bar's total is written above it
+    loads = ("50 mA", "3 A")
+    fig = loss_breakdown_figure(comparison, loads)
+    save_png(fig, tmp_path / "breakdown.png", dpi=50)   # draws it
+    ax, = fig.axes
+    assert "[%]" in ax.get_ylabel()
+    bars = [(s, lv) for lv in loads for s in comparison.strategies]
+    light = [comparison.row(s, "50 mA").loss for s in comparison.strategies]
+    heavy = [comparison.row(s, "3 A").loss for s in comparison.strategies]
+    assert max(heavy) > 15 * min(light)     # in watts the lightest bar would be a sliver
+    span = ax.get_ylim()[1] - ax.get_ylim()[0]
+    for b, parts in _stacks(ax, bars).items():
+        row = comparison.row(*b)
+        top = sum(h for _, _, h in parts)
+        assert top == pytest.approx(100.0, rel=1e-12)
+        assert top / span > 0.8
+        for item, _, height in parts:
+            assert height == pytest.approx(100 * row.losses.get(item, 0.0) / row.loss,
+                                           rel=1e-9, abs=1e-12)
+    totals = [t.get_text() for t in ax.texts if t.get_gid() == "total"]
+    from bucksim.model.units import format_si
+    assert totals == [format_si(comparison.row(*b).loss, "W", 3) for b in bars]
+
+
+def test_efficiency_figure_marks_where_the_mode_changes(comparison):
+    fig = efficiency_figure(comparison)
+    ax, = fig.axes
+    marks = [ln for ln in ax.lines if ln.get_gid() == "mode_change"]
+    expected = 0
+    for s in comparison.strategies:
+        words = [(r.mode, r.reverse_current) for r in comparison.rows[s]]
+        expected += sum(a != b for a, b in zip(words, words[1:], strict=False))
+    assert expected > 0
+    assert len(marks) == expected
 
 
 def test_reverse_figure_data():
