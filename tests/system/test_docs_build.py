@@ -1,7 +1,7 @@
 """The documentation site: it builds with warnings as errors, and the README's links land.
 
 * The Sphinx build of ``docs/`` (MyST pages, the API reference from the docstrings through
-  autodoc and numpydoc, the three notebooks through myst-nb, not executed) runs in a
+  autodoc and numpydoc, the four notebooks through myst-nb, not executed) runs in a
   subprocess exactly as ``.ci/run`` would, ``python -m sphinx -W -b html docs OUT``, into a
   temporary folder, and must exit 0 and write every page.
 * Every relative link in the README names a page that exists in ``docs/`` (and, with an
@@ -32,7 +32,8 @@ README = REPO / "README.md"
 PAGES = ("getting-started.md", "scenario-reference.md", "summary-reference.md",
          "hdf5-layout.md", "python-api.md", "api-reference.rst", "architecture.md",
          "performance.md", "validation.md", "safety.md", "tutorials.md", "input-side.md")
-NOTEBOOKS = ("01_first_tour", "02_strategy_for_a_rail", "03_validate_loss_budget")
+NOTEBOOKS = ("01_first_tour", "02_strategy_for_a_rail", "03_validate_loss_budget",
+             "04_sizing_the_input_capacitor")
 
 BUILD_TIMEOUT = 600  # s: a loaded two-core machine; the build takes a few seconds when idle
 

@@ -23,7 +23,8 @@ pytest.importorskip("ipykernel")
 
 ROOT = Path(__file__).resolve().parents[2]
 NOTEBOOKS = ROOT / "notebooks"
-NAMES = ("01_first_tour.ipynb", "02_strategy_for_a_rail.ipynb", "03_validate_loss_budget.ipynb")
+NAMES = ("01_first_tour.ipynb", "02_strategy_for_a_rail.ipynb", "03_validate_loss_budget.ipynb",
+         "04_sizing_the_input_capacitor.ipynb")
 CELL_TIMEOUT = 120  # s per cell
 WALL_LIMIT = 60.0   # s per notebook, kernel start included
 
@@ -143,3 +144,18 @@ def test_loss_budget_conduction_item_agrees_in_ccm():
     assert closed > 0 and simulated > 0
     assert abs(percent) < 0.5
     assert abs(simulated / closed - 1.0) < 5e-3
+
+
+def test_input_capacitor_rms_peaks_at_half_duty_and_follows_the_ripple_form():
+    # Derived from the high-side current waveform (a ramp Io -/+ dI/2 over D T, the source
+    # taking its mean D Io): Icin,rms = sqrt(D (Io^2 + dI^2/12) - (D Io)^2); the exact
+    # waveform integral must agree within 0.5 %. D (1 - D) and the ripple
+    # Vin D (1 - D) / (L fs) both peak at D = 0.5, so the sweep's largest rms is there.
+    text = printed_text(run_notebook(NAMES[3])[0])
+    m = re.search(r"^largest rms at duty ([0-9.]+) \(D = ([0-9.]+)\): .*; ripple-inclusive form "
+                  r"\S+ \S+ \(([+-][0-9.]+) %\)", text, flags=re.MULTILINE)
+    assert m, "the notebook did not print its largest-rms line"
+    duty, share, percent = map(float, m.groups())
+    assert abs(duty - 0.5) < 1e-9
+    assert abs(share - 0.5) < 5e-3
+    assert abs(percent) < 0.5
