@@ -268,15 +268,16 @@ class ReverseCurrentResult:
         b = self.boundary
         lines = [self.title, f"strategy {self.strategy}, {format_si(self.frequency, 'Hz')}", "",
                  (f"{'load':>11}{'Io':>11}{'Vo':>11}{'min iL':>12}{'iL<0':>8}"
-                  f"{'Q back':>12}{'E back':>12}{'P back':>12}  mode")]
+                  f"{'returned charge':>17}{'returned energy':>17}{'returned power':>16}"
+                  "  mode")]
         for p in self.points:
             lines.append(f"{p.level!s:>11}{format_si(p.load_current, 'A'):>11}"
                          f"{format_si(p.output_voltage, 'V'):>11}"
                          f"{format_si(p.min_current, 'A'):>12}"
                          f"{100 * p.negative_fraction:>7.1f}%"
-                         f"{format_si(p.returned_charge, 'C'):>12}"
-                         f"{format_si(p.returned_energy, 'J'):>12}"
-                         f"{format_si(p.returned_power, 'W'):>12}  {p.mode.upper()}"
+                         f"{format_si(p.returned_charge, 'C'):>17}"
+                         f"{format_si(p.returned_energy, 'J'):>17}"
+                         f"{format_si(p.returned_power, 'W'):>16}  {p.mode.upper()}"
                          + ("  reverses" if p.reverses else ""))
         what = ("the inductor current reverses" if b.kind == "reversal"
                 else "the stage enters DCM (this strategy does not let the current reverse)")

@@ -197,7 +197,7 @@ def test_capacitor_mean_current_in_steady_state_prints_as_zero():
 
 # ----------------------------------------------------------------------------- slope compensation
 def test_slope_compensation_threshold_is_m2_2d_minus_1_over_2d():
-    """Peak-current mode at D ~ 0.82 (the bundled Kite rail). The standard stability
+    """Peak-current mode at D ~ 0.82 (the bundled handheld rail). The standard stability
     condition of the current loop (Erickson & Maksimovic, Fundamentals of Power
     Electronics, chapter on current-programmed control; Ridley's current-mode model;
     both from memory): a perturbation of the valley current is multiplied by
@@ -227,7 +227,7 @@ def test_slope_compensation_threshold_is_m2_2d_minus_1_over_2d():
 # ----------------------------------------------------------------------------- figures
 @pytest.mark.parametrize("strategy", ["forced-pwm", "diode-emulation"])
 def test_reverse_figure_names_the_strategy_once(strategy):
-    """The bundled Kestrel rail's title ends "forced PWM)": the figure's title must
+    """The bundled accelerator-card rail's title ends "forced PWM)": the figure's title must
     not repeat it, and must name the strategy when the run uses another one."""
     import matplotlib
 
