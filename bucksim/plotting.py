@@ -212,7 +212,7 @@ def summary_loss_figure(summary, *, title=None, size=(7.0, 4.5)):
     ax.set_axisbelow(True)
     if title is None:
         title = (f"loss {format_si(summary.power.loss, 'W')}, efficiency "
-                 f"{100 * summary.efficiency:.2f} % ({summary.mode.upper()})")
+                 f"{100 * summary.efficiency:.2f} % ({summary.conduction_mode.upper()})")
     ax.set_title(title, fontsize="medium")
     return fig
 

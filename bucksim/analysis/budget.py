@@ -189,7 +189,7 @@ def _operating_point(scenario, D: float) -> dict:
         vo = vo_new
     return {"duty": D, "vin": vin, "vo": vo, "io": io, "ripple": ripple,
             "peak": io + ripple / 2, "valley": io - ripple / 2,
-            "dead_time_share": (tf + tr) * fs, "frequency": fs, "mode": "ccm"}
+            "dead_time_share": (tf + tr) * fs, "frequency": fs, "conduction_mode": "ccm"}
 
 
 def estimate(scenario, mode: str | None = None) -> LossBudget:
@@ -245,7 +245,7 @@ def estimate(scenario, mode: str | None = None) -> LossBudget:
     if mode not in (None, "ccm"):
         raise ValueError(f"estimate: mode must be None or 'ccm', got {mode!r}")
     op = budget_point(scenario) if mode is None else operating_point(scenario)
-    if op["mode"] == "dcm":
+    if op["conduction_mode"] == "dcm":
         rows = dcm_conduction(scenario, op) + dcm_switching(scenario, op)
         core = dcm_core(scenario, op)
         return LossBudget(op, [BudgetItem(*row) for row in rows + ([core] if core else [])])

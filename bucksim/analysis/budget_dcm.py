@@ -277,7 +277,7 @@ def dcm_point(scenario, D: float) -> dict | None:
     return {"duty": D, "vin": vin, "vo": vo, "io": p["g"] * vo + p["icc"],
             "ripple": per["peak"] - min(per["i_on"], -per["ring_current"]),
             "peak": per["peak"], "valley": per["i_on"],
-            "dead_time_share": (tf + tr) / T, "frequency": 1.0 / T, "mode": "dcm",
+            "dead_time_share": (tf + tr) / T, "frequency": 1.0 / T, "conduction_mode": "dcm",
             "d2": (per["t_swing"] + per["t_diode"] + per["t_channel"]) / T,
             "d3": per["t_idle"] / T, "vo_no_ring": free[0], **{k: per[k] for k in keys}}
 

@@ -179,7 +179,7 @@ def _tolerance(regime: str, key: str, op: dict) -> float:
 
 
 def _regime(op: dict, scenario) -> str:
-    if op.get("mode") == "dcm":
+    if op.get("conduction_mode") == "dcm":
         return "dcm"
     forced = scenario.switching.strategy == "forced-pwm"
     return "reverse" if forced and op["valley"] < 0 else "ccm"
@@ -211,9 +211,10 @@ def _reason(item_reason: str, regime: str, key: str, summary: dict, curve: bool)
         why.append(REGIME_REASONS[regime][_kind(key)])
     if curve and (_kind(key) in _CURVE_KINDS or "body_diode" in key):
         why.append(_CURVE)
-    sim_dcm = summary["mode"] == "dcm"
+    sim_dcm = summary["conduction_mode"] == "dcm"
     if sim_dcm != (regime == "dcm"):
-        why.append(f"the waveforms are in {summary['mode'].upper()}, the closed form is not")
+        why.append(f"the waveforms are in {summary['conduction_mode'].upper()}, the closed "
+                   "form is not")
     return "; ".join(why)
 
 

@@ -90,7 +90,7 @@ def summarize(run, cycles: int | None = None) -> Summary:
     bias = run.scenario.controller.driver_supply == "bias"
     return Summary(
         window=Window(start=t_start, stop=t_stop, cycles=n_cyc),
-        mode=mode,
+        conduction_mode=mode,
         zero_current_in_dead_time=dead_zero,
         reverse_current=current_reverses(il_min, il_max),
         output_voltage=OutputVoltage(mean=ig.mean("vo"), min=vo_min, max=vo_max,

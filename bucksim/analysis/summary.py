@@ -255,7 +255,8 @@ class Summary:
     Attributes
     ----------
     window : Window
-    mode : str                    ``"ccm"`` or ``"dcm"``
+    conduction_mode : str         ``"ccm"`` or ``"dcm"`` (``mode`` until 0.x: a read-only
+        alias for one release, in attribute and index access)
     reverse_current : bool        the inductor current goes negative
     output_voltage : OutputVoltage
     inductor_current : InductorCurrent
@@ -279,7 +280,7 @@ class Summary:
     """
 
     window: Window
-    mode: str
+    conduction_mode: str
     reverse_current: bool
     output_voltage: OutputVoltage
     inductor_current: InductorCurrent
@@ -303,7 +304,9 @@ class Summary:
     @classmethod
     def from_dict(cls, data: Mapping, strategy: str | None = None) -> Summary:
         """The summary a :meth:`to_dict` dict (or its JSON) describes."""
-        return cls(window=Window(**data["window"]), mode=data["mode"],
+        # (files written before the field was renamed say "mode")
+        return cls(window=Window(**data["window"]),
+                   conduction_mode=data.get("conduction_mode", data.get("mode")),
                    reverse_current=data["reverse_current"],
                    output_voltage=OutputVoltage(**data["output_voltage"]),
                    inductor_current=InductorCurrent(**data["inductor_current"]),
@@ -326,8 +329,15 @@ class Summary:
     def to_json(self, **kw) -> str:
         return json.dumps(self.to_dict(), **kw)
 
+    @property
+    def mode(self) -> str:
+        """The former name of :attr:`conduction_mode` (kept for one release)."""
+        return self.conduction_mode
+
     # compatibility: the summary used to be a dict read by string keys
     def __getitem__(self, key):
+        if key == "mode":      # the former name, kept for one release
+            key = "conduction_mode"
         return self.to_dict()[key]
 
     def __contains__(self, key):
@@ -392,7 +402,7 @@ class Summary:
         lines = [
             f"window        {format_si(w.start, 's')} .. {format_si(w.stop, 's')} "
             f"({w.cycles:.4g} cycles)",
-            f"mode          {self.mode.upper()}"
+            f"mode          {self.conduction_mode.upper()}"
             + ("   inductor current reverses" if self.reverse_current else ""),
             f"output        mean {format_si(vo.mean, 'V')}   ripple {format_si(vo.ripple, 'V')} p-p"
             f"   [{format_si(vo.min, 'V')}, {format_si(vo.max, 'V')}]",
@@ -453,7 +463,7 @@ class Summary:
         return self.table()
 
     def __repr__(self):
-        return f"<Summary efficiency={self.efficiency:.5f} mode={self.mode}>"
+        return f"<Summary efficiency={self.efficiency:.5f} {self.conduction_mode}>"
 
 
 def _drive_lines(g: GateDrive, format_si) -> list[str]:

@@ -173,7 +173,7 @@ class Row:
     duty: float
     load_current: float
     output_voltage: float
-    mode: str
+    conduction_mode: str
     reverse_current: bool
     efficiency: float
     input_power: float
@@ -193,7 +193,7 @@ class Row:
         """A point that could not be evaluated: every metric NaN, ``error`` says why."""
         nan = math.nan
         return cls(strategy=strategy, level=level, duty=nan, load_current=nan,
-                   output_voltage=nan, mode="", reverse_current=False, efficiency=nan,
+                   output_voltage=nan, conduction_mode="", reverse_current=False, efficiency=nan,
                    input_power=nan, output_power=nan, loss=nan, losses={},
                    energy_balance_error=nan, error=str(error))
 
@@ -201,7 +201,7 @@ class Row:
         return {"strategy": self.strategy, "load": self.level.to_dict(), "error": self.error,
                 "duty": self.duty,
                 "load_current": self.load_current, "output_voltage": self.output_voltage,
-                "mode": self.mode, "reverse_current": self.reverse_current,
+                "conduction_mode": self.conduction_mode, "reverse_current": self.reverse_current,
                 "efficiency": self.efficiency,
                 "power": {"input": self.input_power, "output": self.output_power,
                           "loss": self.loss},
@@ -219,7 +219,7 @@ def _row(scenario, strategy, level, target, guess):
     p = s.power
     return Row(strategy=strategy, level=level, duty=sc.control.duty,
                load_current=cycle_mean(run, "io"), output_voltage=s.output_voltage.mean,
-               mode=s.mode, reverse_current=s.reverse_current,
+               conduction_mode=s.conduction_mode, reverse_current=s.reverse_current,
                efficiency=s.efficiency, input_power=p.input, output_power=p.output,
                loss=p.input - p.output, losses=loss_items(s, strategy),
                energy_balance_error=float(s.energy_balance_error))
@@ -298,7 +298,8 @@ class Comparison:
             for r in self.rows[s]:
                 rec = {"strategy": s, "load_key": r.level.key, "load_value": r.level.value,
                        "load_current_A": r.load_current, "output_voltage_V": r.output_voltage,
-                       "duty": r.duty, "mode": r.mode, "reverse_current": r.reverse_current,
+                       "duty": r.duty, "conduction_mode": r.conduction_mode,
+                       "reverse_current": r.reverse_current,
                        "efficiency": r.efficiency, "input_W": r.input_power,
                        "output_W": r.output_power, "loss_W": r.loss}
                 rec.update({f"{it}_W": r.losses.get(it, 0.0 if r.ok else math.nan)
@@ -323,7 +324,7 @@ class Comparison:
         """
         recs = self.records()
         head = ["strategy", "load_key", "load_value", "load_current_A", "output_voltage_V",
-                "duty", "mode", "reverse_current", "efficiency", "input_W", "output_W",
+                "duty", "conduction_mode", "reverse_current", "efficiency", "input_W", "output_W",
                 "loss_W"] + [f"{it}_W" for it in self._present_items()] + ["error"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")

@@ -174,7 +174,7 @@ class ReversePoint:
     negative_fraction : float share of the period with iL < 0
     returned_charge : float   charge sent back to the supply per cycle [C]
     returned_energy : float   energy sent back to the supply per cycle [J]
-    mode : str                ``"ccm"`` or ``"dcm"`` (idle time in the period)
+    conduction_mode : str     ``"ccm"`` or ``"dcm"`` (idle time in the period)
     """
 
     level: LoadLevel
@@ -185,7 +185,7 @@ class ReversePoint:
     negative_fraction: float
     returned_charge: float
     returned_energy: float
-    mode: str
+    conduction_mode: str
     frequency: float = field(repr=False, default=0.0)
 
     @property
@@ -199,7 +199,8 @@ class ReversePoint:
                 "reverses": self.reverses, "negative_fraction": self.negative_fraction,
                 "returned_charge": self.returned_charge,
                 "returned_energy": self.returned_energy,
-                "returned_power": self.returned_power, "mode": self.mode}
+                "returned_power": self.returned_power,
+                "conduction_mode": self.conduction_mode}
 
 
 @dataclass(frozen=True)
@@ -277,7 +278,7 @@ class ReverseCurrentResult:
                          f"{100 * p.negative_fraction:>7.1f}%"
                          f"{format_si(p.returned_charge, 'C'):>17}"
                          f"{format_si(p.returned_energy, 'J'):>17}"
-                         f"{format_si(p.returned_power, 'W'):>16}  {p.mode.upper()}"
+                         f"{format_si(p.returned_power, 'W'):>16}  {p.conduction_mode.upper()}"
                          + ("  reverses" if p.reverses else ""))
         what = ("the inductor current reverses" if b.kind == "reversal"
                 else "the stage enters DCM (this strategy does not let the current reverse)")
@@ -335,7 +336,7 @@ def _point(scenario, level):
                         output_voltage=cycle_mean(run, "vo"), min_current=il_min,
                         reverses=current_reverses(il_min, il_max), negative_fraction=neg / T,
                         returned_charge=charge, returned_energy=energy,
-                        mode="dcm" if idle else "ccm",
+                        conduction_mode="dcm" if idle else "ccm",
                         frequency=scenario.switching.frequency)
 
 

@@ -72,7 +72,7 @@ def column_unit(name):
     if is_input(name):
         return _INPUT_UNITS.get(last)
     head = parts[0]
-    if name in ("point", "draw", "mode", "error", "steady.iterations", "steady.method",
+    if name in ("point", "draw", "conduction_mode", "error", "steady.iterations", "steady.method",
                 "window.cycles", "reverse_current"):
         return ""
     if name in ("efficiency", "energy_balance_error", "steady.residual", "steady.max_floquet"):

@@ -73,8 +73,9 @@ DOC_SECTIONS = {
     "safety.md": ("Safety and license", ("Safety", "License")),
 }
 
-SUMMARY_KEYS = ("window", "mode", "reverse_current", "output_voltage", "inductor_current",
-                "devices", "power", "efficiency", "energy_balance_error", "transients")
+SUMMARY_KEYS = ("window", "conduction_mode", "reverse_current", "output_voltage",
+                "inductor_current", "devices", "power", "efficiency", "energy_balance_error",
+                "transients")
 
 #: Options whose value is a file the command writes.
 OUTPUT_OPTIONS = ("--out", "--figure", "--csv", "--breakdown")
@@ -221,7 +222,7 @@ def _output_files(argv, clone):
 def _check_summary(data, command):
     for key in SUMMARY_KEYS:
         assert key in data, f"{command}: summary without {key!r}"
-    assert data["mode"] in ("ccm", "dcm")
+    assert data["conduction_mode"] in ("ccm", "dcm")
     assert 0.0 < data["efficiency"] < 1.0
     assert data["energy_balance_error"] < 1e-9
     for name in ("high_side", "low_side", "inductor", "output_capacitor"):

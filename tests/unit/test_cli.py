@@ -15,7 +15,7 @@ SCENARIOS = "scenarios"
 def test_run_default_json(capsys):
     assert main(["run", "--json"]) == 0
     out = json.loads(capsys.readouterr().out)
-    assert out["mode"] in ("ccm", "dcm")
+    assert out["conduction_mode"] in ("ccm", "dcm")
     assert out["energy_balance_error"] < 1e-9
     # keys of the design contract
     for key in ("window", "output_voltage", "inductor_current", "devices", "power", "efficiency"):

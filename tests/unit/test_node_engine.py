@@ -119,9 +119,9 @@ def test_forced_pwm_is_never_dcm_and_flags_zero_current_in_a_dead_time():
                                 run__start="steady-state")).summary()
     de = bucksim.simulate(_rail("diode-emulation", "20 ohm",
                                 run__start="steady-state")).summary()
-    assert fp.mode == "ccm" and fp.reverse_current
+    assert fp.conduction_mode == "ccm" and fp.reverse_current
     assert fp.zero_current_in_dead_time
-    assert de.mode == "dcm" and not de.zero_current_in_dead_time
+    assert de.conduction_mode == "dcm" and not de.zero_current_in_dead_time
     for s in (fp, de):
         assert s.energy_balance_error < 1e-9
 

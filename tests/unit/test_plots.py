@@ -176,7 +176,7 @@ def test_efficiency_figure_marks_where_the_mode_changes(comparison):
     marks = [ln for ln in ax.lines if ln.get_gid() == "mode_change"]
     expected = 0
     for s in comparison.strategies:
-        words = [(r.mode, r.reverse_current) for r in comparison.rows[s]]
+        words = [(r.conduction_mode, r.reverse_current) for r in comparison.rows[s]]
         expected += sum(a != b for a, b in zip(words, words[1:], strict=False))
     assert expected > 0
     assert len(marks) == expected

@@ -266,14 +266,18 @@ def test_comparison_plots(comparison):
     assert len(labelled) == len(comparison.strategies)
     for ln, s in zip(labelled, comparison.strategies, strict=True):
         assert list(_xy(ln)[1]) == [100 * r.efficiency for r in comparison.rows[s]]
-    fig = comparison.plot("breakdown")
+    fig = comparison.plot("breakdown")      # each bar in shares of its own loss
     ax, = fig.axes
     n_bars = len(comparison.levels) * len(comparison.strategies)
     assert all(len(c.patches) == n_bars for c in ax.containers)
     total = sum(np.array([p.get_height() for p in c.patches]) for c in ax.containers)
-    want = [comparison.rows[s][k].loss for k in range(len(comparison.levels))
-            for s in comparison.strategies]
-    assert total == pytest.approx(want, rel=1e-8)
+    assert total == pytest.approx(np.full(n_bars, 100.0), rel=1e-12)
+    fig = comparison.plot("breakdown", scale="watts")    # one panel per load
+    assert len(fig.axes) == len(comparison.levels)
+    for k, ax in enumerate(fig.axes):
+        total = sum(np.array([p.get_height() for p in c.patches]) for c in ax.containers)
+        want = [comparison.rows[s][k].loss for s in comparison.strategies]
+        assert total == pytest.approx(want, rel=1e-8)
     with pytest.raises(ValueError, match="kind"):
         comparison.plot("pie")
 

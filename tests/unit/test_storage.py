@@ -55,8 +55,8 @@ def runs():
     for name, sc in SCENARIOS.items():
         run = simulate(sc)
         out[name] = (run, run.summary().to_dict())
-    assert out["forced-pwm"][1]["mode"] == "ccm"
-    assert out["dcm"][1]["mode"] == "dcm"
+    assert out["forced-pwm"][1]["conduction_mode"] == "ccm"
+    assert out["dcm"][1]["conduction_mode"] == "dcm"
     return out
 
 

@@ -82,7 +82,7 @@ def test_async_diode_loss_is_vf_io_one_minus_d_and_the_largest_item():
     c = compare(core_rail(), ["15 A"], diode=p.Diode(vf, 0.5e-3, 0.0),
                 strategies=("asynchronous",), output_voltage=1.0)
     row = c.rows["asynchronous"][0]
-    assert row.mode == "ccm"
+    assert row.conduction_mode == "ccm"
     assert row.output_voltage == pytest.approx(1.0, rel=1e-9)
     diode = row.losses["freewheel_diode.conduction"]
     assert diode == pytest.approx(vf * row.load_current * (1 - row.duty), rel=0.05)
@@ -105,8 +105,8 @@ def test_light_load_forced_pwm_is_least_efficient(pol):
     says they block the reversal."""
     fp = pol.row("forced-pwm", LIGHT)
     others = [pol.row(s, LIGHT) for s in ("asynchronous", "diode-emulation")]
-    assert fp.reverse_current and fp.mode == "ccm"
-    assert all(r.mode == "dcm" for r in others)
+    assert fp.reverse_current and fp.conduction_mode == "ccm"
+    assert all(r.conduction_mode == "dcm" for r in others)
     assert all(fp.efficiency < r.efficiency for r in others)
     # from 20 mA to 100 mA: forced PWM's loss stays put, the others' grows with load
     assert pol.row("forced-pwm", 0.1).loss == pytest.approx(pol.row("forced-pwm", 0.02).loss,
@@ -121,11 +121,11 @@ def test_diode_emulation_tracks_forced_pwm_heavy_and_async_light(pol):
     diode's Vf so only the strategy differs."""
     assert pol.diode.vf == pol_rail().low_side.body_diode.vf
     de, fp = pol.row("diode-emulation", HEAVY), pol.row("forced-pwm", HEAVY)
-    assert de.mode == fp.mode == "ccm"
+    assert de.conduction_mode == fp.conduction_mode == "ccm"
     assert abs(de.efficiency - fp.efficiency) < 1e-3
     de, fp, asy = (pol.row(s, LIGHT) for s in ("diode-emulation", "forced-pwm",
                                                 "asynchronous"))
-    assert de.mode == asy.mode == "dcm"
+    assert de.conduction_mode == asy.conduction_mode == "dcm"
     assert abs(de.efficiency - asy.efficiency) < abs(de.efficiency - fp.efficiency)
 
 

@@ -42,6 +42,6 @@ def test_efficiency_is_continuous_through_the_ccm_boundary(strategies, loads):
         assert all(r.ok for r in rows), [r.error for r in rows]
         _steps_are_explained([r.efficiency for r in rows])
     # the sweep crosses a boundary where the stage can leave CCM
-    modes = {r.mode for s in strategies for r in cmp.rows[s]}
+    modes = {r.conduction_mode for s in strategies for r in cmp.rows[s]}
     if "diode-emulation" in strategies or "asynchronous" in strategies:
         assert modes == {"ccm", "dcm"}, modes

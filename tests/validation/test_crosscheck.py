@@ -55,7 +55,7 @@ def rail(strategy="forced-pwm", R=0.33, L=22e-6, dead=(20e-9, 25e-9)):
 @pytest.mark.parametrize("strategy", ["forced-pwm", "asynchronous"])
 def test_conduction_items_agree_in_ccm_with_small_ripple(strategy):
     cc = crosscheck(rail(strategy))
-    assert cc.summary["mode"] == "ccm" and not cc.summary["reverse_current"]
+    assert cc.summary["conduction_mode"] == "ccm" and not cc.summary["reverse_current"]
     rows = {r["item"]: r for r in cc.rows}
     conduction = [k for k in rows if k.endswith(".conduction") and rows[k]["closed_form"] > 1e-6]
     # ESR: the closed form sends all the ripple into C; a little flows in the
@@ -173,11 +173,11 @@ def test_dcm_operating_point_is_the_textbook_conversion_ratio(strategy, D, R):
     K = 2.0 * sc.inductor.inductance * sc.switching.frequency / R
     M = 2.0 / (1.0 + math.sqrt(1.0 + 4.0 * K / D ** 2))
     op = estimate(sc).operating_point
-    assert op["mode"] == "dcm"
+    assert op["conduction_mode"] == "dcm"
     assert op["vo"] / 12.0 == pytest.approx(M, rel=1e-3)
     assert op["d2"] == pytest.approx(D * (1.0 - M) / M, rel=1e-3)
     s = simulate_settled(sc, None).summary().to_dict()
-    assert s["mode"] == "dcm"
+    assert s["conduction_mode"] == "dcm"
     assert s["output_voltage"]["mean"] / 12.0 == pytest.approx(M, rel=1e-3)
 
 
@@ -203,7 +203,7 @@ def test_sensor_rail_items_agree_in_dcm(sensor):
     (0.05 %), the node's charge 5 % (2.7 %), total loss 1 % (0.01 %), output power
     0.5 % (0.16 %), Vo 0.2 % (0.08 %)."""
     sc, run, cc = sensor
-    assert cc.regime == "dcm" and cc.summary["mode"] == "dcm" and not cc.flagged
+    assert cc.regime == "dcm" and cc.summary["conduction_mode"] == "dcm" and not cc.flagged
     rows = _rows(cc)
     for key, r in rows.items():
         if not r["closed_form"] and not r["simulated"]:
@@ -238,7 +238,7 @@ def test_ccm_closed_form_fails_the_dcm_tolerances(sensor):
     sc, run, cc = sensor
     sim = _rows(cc)
     old = estimate(sc, mode="ccm")
-    assert old.operating_point["mode"] == "ccm"
+    assert old.operating_point["conduction_mode"] == "ccm"
     for it in old.items:
         if it.key in ("high_side.conduction", "low_side.conduction", "inductor.conduction"):
             s = sim[it.key]["simulated"]
@@ -294,7 +294,7 @@ def test_dcm_rail_agrees_for_both_strategies(strategy, R):
     the supply (derived), which the closed form books. Measured: every row within
     0.8 % but the overlap at 60 ohm (1.9 %)."""
     cc = crosscheck(rail(strategy, R=R, L=4.7e-6))
-    assert cc.regime == "dcm" and cc.summary["mode"] == "dcm"
+    assert cc.regime == "dcm" and cc.summary["conduction_mode"] == "dcm"
     assert not cc.flagged, [(r["item"], r["percent"]) for r in cc.rows if r["flagged"]]
     hbd = _rows(cc)["high_side_body_diode.conduction"]
     op = cc.budget["operating_point"]

@@ -97,7 +97,7 @@ def test_switching_frequency_10_khz():
     s = _clean_summary(sc)
     vo = s["output_voltage"]["mean"]
     io = vo / R
-    assert s["mode"] == "ccm"
+    assert s["conduction_mode"] == "ccm"
     assert vo == pytest.approx(d * vin - io * _r_eq(d, 1e-3, 1e-3), rel=1e-4)   # [EM] ch. 3
     di = _off_ripple(vo, io, d, L, fs, 1e-3)
     assert s["inductor_current"]["ripple"] == pytest.approx(di, rel=5e-3)       # [EM] ch. 2
@@ -129,7 +129,7 @@ def test_inductance_10_nh():
     s = _clean_summary(sc)
     vo = s["output_voltage"]["mean"]
     io = vo / R
-    assert s["mode"] == "ccm" and s["inductor_current"]["min"] > 0
+    assert s["conduction_mode"] == "ccm" and s["inductor_current"]["min"] > 0
     di = _off_ripple(vo, io, d, L, fs, 1e-3)
     assert s["inductor_current"]["ripple"] == pytest.approx(di, rel=5e-3)       # [EM] ch. 2
 
@@ -144,7 +144,7 @@ def test_inductance_10_nh_at_10_khz():
                        capacitance=C, resistance=R, dcr=0.01, esr=0.01, rds_hs=0.02,
                        vf_hs=0.7, vf_ls=0.5, cycles=200)
     s = _clean_summary(sc)
-    assert s["mode"] == "dcm" and s["reverse_current"] is False
+    assert s["conduction_mode"] == "dcm" and s["reverse_current"] is False
     assert s["output_voltage"]["max"] < vin
 
 
@@ -157,7 +157,7 @@ def test_inductance_10_mh():
     s = _clean_summary(sc)
     vo = s["output_voltage"]["mean"]
     io = vo / R
-    assert s["mode"] == "ccm"
+    assert s["conduction_mode"] == "ccm"
     assert vo == pytest.approx(d * vin - io * _r_eq(d, 1e-3, 1e-3), rel=1e-4)   # [EM] ch. 3
     di = _off_ripple(vo, io, d, L, fs, 1e-3)
     assert s["inductor_current"]["ripple"] == pytest.approx(di, rel=5e-3)       # [EM] ch. 2
@@ -257,7 +257,7 @@ def test_load_1_ma_is_dcm_at_the_textbook_ratio():
     s = _clean_summary(sc)
     k = 2 * L * fs / R
     m = 2 / (1 + math.sqrt(1 + 4 * k / d**2))                                    # [EM] ch. 5
-    assert s["mode"] == "dcm" and s["reverse_current"] is False
+    assert s["conduction_mode"] == "dcm" and s["reverse_current"] is False
     assert s["output_voltage"]["mean"] == pytest.approx(m * vin, rel=2e-3)
     assert s["output_voltage"]["mean"] / R == pytest.approx(1e-3, rel=0.05)
 
@@ -307,7 +307,7 @@ def test_duty_0_99_asynchronous():
     s = _clean_summary(sc)
     vo = s["output_voltage"]["mean"]
     io = vo / R
-    assert s["mode"] == "ccm"
+    assert s["conduction_mode"] == "ccm"
     # [EM] ch. 3, diode as a drop V_D for (1 - D) Ts
     assert vo == pytest.approx(d * vin - (1 - d) * vf - io * d * r_hs, rel=1e-4)
 

@@ -432,7 +432,7 @@ def test_reference_cases_reach_their_modes():
     for name in REFERENCE:
         s = _summary(name)
         want = "dcm" if name.startswith("dcm") else "ccm"
-        assert s.mode == want, name
+        assert s.conduction_mode == want, name
     assert _summary("reverse_forced_pwm_ideal_bank_filter_parallel_r").reverse_current
 
 

@@ -165,7 +165,7 @@ def test_no_reversal_without_forced_pwm_and_dcm_boundary(strategy):
     assert not light.reverses and not heavy.reverses
     assert light.returned_charge == 0 and light.negative_fraction == 0
     assert light.min_current >= -1e-9
-    assert light.mode == "dcm" and heavy.mode == "ccm"
+    assert light.conduction_mode == "dcm" and heavy.conduction_mode == "ccm"
 
 
 def test_table_dict_and_figure():

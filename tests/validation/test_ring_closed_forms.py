@@ -140,7 +140,7 @@ def test_crosscheck_keeps_a_damped_dcm_ring_within_tolerance(rn):
     own row appears."""
     cc = crosscheck(_damped("scenarios/radio_rail_3v3_light_load.toml", rn))
     rows = {r["item"]: r for r in cc.rows}
-    assert cc.summary["mode"] == "dcm"
+    assert cc.summary["conduction_mode"] == "dcm"
     assert "switch_node.resistance" in rows
     assert rows["switch_node.resistance"]["closed_form"] > 0.0
     assert [k for k, r in rows.items() if r["flagged"]] == []

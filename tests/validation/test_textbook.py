@@ -51,7 +51,7 @@ def _ccm_summary():
 
 def test_ccm_conversion_ratio():
     s = _ccm_summary()
-    assert s["mode"] == "ccm"
+    assert s["conduction_mode"] == "ccm"
     assert s["output_voltage"]["mean"] == pytest.approx(VO, rel=5e-3)   # [EM] ch. 2: M = D
 
 
@@ -103,7 +103,7 @@ def test_dcm_conversion_ratio(strategy, duty, k):
     sc = _dcm_stage(strategy, duty, k, cycles=6000)
     s = bucksim.simulate(sc, check=True).summary(cycles=WINDOW).to_dict()
     m = 2 / (1 + math.sqrt(1 + 4 * k / duty**2))
-    assert s["mode"] == "dcm"
+    assert s["conduction_mode"] == "dcm"
     assert s["output_voltage"]["mean"] == pytest.approx(m * sc.supply.voltage, rel=2e-3)
     _assert_no_reverse_current(s)
 
@@ -127,7 +127,7 @@ def test_ccm_dcm_boundary(strategy, duty, margin, mode):
     # settle, and the ripple stays small against the 5 % margin.
     sc = _dcm_stage(strategy, duty, margin * (1 - duty), cycles=4000, capacitance=47e-6)
     s = bucksim.simulate(sc, check=True).summary(cycles=WINDOW).to_dict()
-    assert s["mode"] == mode
+    assert s["conduction_mode"] == mode
     if mode == "ccm":
         assert s["inductor_current"]["min"] > 0.0
     _assert_no_reverse_current(s)
