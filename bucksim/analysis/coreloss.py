@@ -24,9 +24,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.integrate import quad
-from scipy.optimize import brentq
-from scipy.special import gammaln
 
 from bucksim.analysis.segments import segment_states
 
@@ -79,9 +76,13 @@ def cos_power_integral(alpha: float, method: str = "gamma") -> float:
     if not alpha > 0:
         raise ValueError(f"alpha must be > 0, got {alpha!r}")
     if method == "gamma":
+        from scipy.special import gammaln  # scipy is heavy to import: only where used
+
         return 2.0 * math.sqrt(math.pi) * math.exp(gammaln((alpha + 1) / 2)
                                                    - gammaln(alpha / 2 + 1))
     if method == "quad":
+        from scipy.integrate import quad
+
         val, _ = quad(lambda th: math.cos(th) ** alpha, 0.0, math.pi / 2,
                       epsabs=0.0, epsrel=1e-13, limit=200)
         return 4.0 * val
@@ -218,6 +219,8 @@ def _zeros_in_chunk(slope: _Slope, k, a, b, fa, fb, ga, gb):
     most two: one if its end values differ in sign, two if they agree but the
     value at its one interior extremum has the other sign.
     """
+    from scipy.optimize import brentq  # 0.4 s to import: only when used
+
     f = slope.scalar(k, 0)
     tol = {"xtol": 1e-15 * max(abs(a), abs(b), 1e-300), "rtol": 4 * np.finfo(float).eps}
     if fa * fb < 0:

@@ -14,7 +14,6 @@ the band after it.
 from __future__ import annotations
 
 import numpy as np
-from scipy.optimize import brentq
 
 from bucksim.analysis.extrema import piece_extrema
 from bucksim.analysis.pruned import window_extrema
@@ -100,6 +99,8 @@ def _settle_time(run, idx, tau_a, tau_b, lo_b, hi_b, lo, hi):
             # outside at a, inside at b: a band crossing lies between; it is the
             # exit if vo stays inside from just after it to b (exact extrema)
             bound = hi_b if v_a > hi_b else lo_b
+            from scipy.optimize import brentq  # 0.4 s to import: only when used
+
             tc = float(brentq(lambda t, bound=bound: run.at([t], "vo")[0] - bound,
                               t0 + a, t0 + b, xtol=1e-300, rtol=4 * np.finfo(float).eps))
             after = min(tc - t0 + 16 * np.spacing(tc), b)
