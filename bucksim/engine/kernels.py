@@ -48,7 +48,7 @@ from bucksim.engine.bounds import (
 )
 
 # propagation has its own module; the kernels name it too (one front door for callers)
-from bucksim.engine.propagation import TAYLOR_ORDER, advance, apply, derivative
+from bucksim.engine.propagation import TAYLOR_ORDER, advance, apply, derivative, plain_args
 
 # conduction codes (mirrors bucksim.model.stage; numba needs plain module constants)
 HIGH, LOW, LOW_DIODE, HIGH_DIODE, IDLE, OPEN = 0, 1, 2, 3, 4, 5
@@ -287,6 +287,7 @@ def find_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c,
                        ramp, t_ref, snap, taylor_gap, coef, bounds, k3)
 
 
+@plain_args
 @njit(cache=True, _nrt=False)
 def locate_zero(Ms, E, h, s, za, zb, a, b, sign0, guard, tmp, trial, work, c, level, ramp,
                 t_ref, snap, taylor_gap, poly, bounds, k3):

@@ -27,6 +27,7 @@ from numba import njit
 from bucksim.engine.bounds import growth, open_node_clear, reach
 from bucksim.engine.kernels import locate_zero
 from bucksim.engine.loop_parts import _dot, _needs_search, newton_crossing
+from bucksim.engine.propagation import plain_args
 
 #: Event kinds besides the clamps' conduction states: the band's edges.
 BAND_DOWN, BAND_UP = -1, -2
@@ -85,6 +86,7 @@ def band_edge_event(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, edges
     return tz, kind
 
 
+@plain_args
 @njit(cache=True, _nrt=False)
 def _earlier(Ms, E, h, s, zs, z, zs2, zs3, t, t_stop, tz, kind, gs, row, krow, k3, this,
              taylor_gap, tmp, trial, work, poly, bnd):

@@ -13,11 +13,36 @@ eigenstructure. :mod:`bucksim.engine.kernels` names these too.
 
 from __future__ import annotations
 
-from numba import njit
+from numba import njit, types
 
 #: Order of the Taylor series for remainders below the table's last step
 #: (mirrors tables.TAYLOR_ORDER; the table is built so it is exact to rounding).
 TAYLOR_ORDER = 8
+
+
+def plain_args(kernel):
+    """Type every call of ``kernel`` from compiled code with plain argument types.
+
+    numba compiles one copy of a kernel per argument types of its callers, and a
+    caller's constants (``True``, ``5``) have literal types of their own, as has an
+    ``int32`` index read from the segment table: the cycle loop's searches and
+    propagation were compiled twice each (about 12 s of a 75 s cold start,
+    ``benchmarks/bench_cli.py``). With literals as their plain type and every integer as
+    ``int64``, numba compiles one copy and the caller converts its value; the values,
+    and so the results, are the same. Python calls are typed as before (no literals).
+    """
+    typing = kernel.get_call_template
+
+    def get_call_template(args, kws):
+        return typing(tuple(_plain(a) for a in args), kws)
+
+    kernel.get_call_template = get_call_template
+    return kernel
+
+
+def _plain(t):
+    t = types.unliteral(t)
+    return types.int64 if isinstance(t, types.Integer) else t
 
 
 @njit(cache=True, inline="always")
@@ -48,6 +73,7 @@ def derivative(Ms, s, z, row):
     return acc
 
 
+@plain_args
 @njit(cache=True, _nrt=False)
 def taylor_step(Ms, s, z, u, tmp):
     """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER, for short ``u``.
@@ -86,6 +112,7 @@ def taylor_step3(Ms, s, z, u):
     z[0], z[1], z[2] = a0, a1, a2
 
 
+@plain_args
 @njit(cache=True, _nrt=False)
 def advance(Ms, E, h, s, z, d, tmp):
     """z <- expm(M_s d) @ z for any d >= 0: binary digits of d over the table,
