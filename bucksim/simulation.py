@@ -18,9 +18,11 @@ from bucksim.model.scenario import locate_in, require_scenario
 from bucksim.model.stage import Stage
 from bucksim.steady.result import periodic_scenario
 from bucksim.steady.solve import steady_state
+from bucksim.threads import single_blas_thread
 from bucksim.waveforms import Run
 
 
+@single_blas_thread
 def simulate(scenario, x0=None, *, check: bool = False, progress=None) -> Run:
     """Simulate a scenario's power stage exactly, cycle by cycle.
 
@@ -81,6 +83,7 @@ def _check_fits(scenario, n_states, **where):
         raise locate_in(scenario, err) from None
 
 
+@single_blas_thread
 def simulate_settled(scenario, cycles: int | None = None) -> Run:
     """Simulate ``cycles`` periods on the periodic steady state of the t = 0 level.
 
@@ -259,6 +262,7 @@ def _check_state_range(run):
         run.status, run.message = status, message
 
 
+@single_blas_thread
 def simulate_to_file(scenario, path, compression=None, *, chunk_cycles: int | None = None,
                      progress=None) -> dict:
     """Simulate ``scenario`` and stream its segments into the HDF5 file ``path``.

@@ -21,6 +21,7 @@ from bucksim.errors import SimulationError
 from bucksim.io.hdf5 import save_run
 from bucksim.io.runfile import read_run
 from bucksim.model.stage import CONDUCTION_NAMES, STATE_NAMES, UNITS, Stage
+from bucksim.threads import single_blas_thread
 
 if TYPE_CHECKING:
     from bucksim.engine.controlled import ControllerState
@@ -275,6 +276,7 @@ class Run:
         return self.segments.t0.copy()
 
     # -- post-processing ---------------------------------------------------------
+    @single_blas_thread
     def summary(self, cycles: int | None = None):
         """Summary over the last ``cycles`` periods (default ``run.summary_cycles``).
 

@@ -31,6 +31,7 @@ from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.analysis.gate_drive import closed_form as gate_drive_closed_form
 from bucksim.model.parts import Mosfet
 from bucksim.model.stage import node_capacitance
+from bucksim.threads import single_blas_thread
 
 
 @dataclass(frozen=True)
@@ -192,6 +193,7 @@ def _operating_point(scenario, D: float) -> dict:
             "dead_time_share": (tf + tr) * fs, "frequency": fs, "conduction_mode": "ccm"}
 
 
+@single_blas_thread
 def estimate(scenario, mode: str | None = None) -> LossBudget:
     """Closed-form loss budget at the scenario's operating point, CCM or DCM.
 

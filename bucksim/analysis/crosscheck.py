@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 from bucksim.analysis.budget import estimate
 from bucksim.analysis.gate_drive import SHARES as GATE_SHARES
+from bucksim.threads import single_blas_thread
 
 #: Relative tolerance [-] per regime and item kind: the largest disagreement the row's
 #: reason accounts for, about twice what was measured (largest |diff| in brackets, rows
@@ -218,6 +219,7 @@ def _reason(item_reason: str, regime: str, key: str, summary: dict, curve: bool)
     return "; ".join(why)
 
 
+@single_blas_thread
 def crosscheck(scenario, run=None, cycles=None) -> CrossCheck:
     """Compare :func:`bucksim.estimate` with the waveform integrals.
 

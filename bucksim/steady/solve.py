@@ -6,8 +6,10 @@ from bucksim.model.scenario import require_scenario
 from bucksim.steady.closed_loop import closed_loop_steady_state
 from bucksim.steady.open_loop import open_loop_steady_state
 from bucksim.steady.result import CLOSED_LOOP_DEFAULTS, OPEN_LOOP_DEFAULTS, SteadyState
+from bucksim.threads import single_blas_thread
 
 
+@single_blas_thread
 def steady_state(scenario, x0=None, *, controller=None, tol: float | None = None,
                  max_iter: int | None = None,
                  max_brute_cycles: int | None = None) -> SteadyState:

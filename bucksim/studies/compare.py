@@ -62,6 +62,7 @@ from bucksim.studies.profile import (
     make_profile,
 )
 from bucksim.studies.reverse import CAUTION, cycle_mean
+from bucksim.threads import single_blas_thread
 
 # ----------------------------------------------------------------------------- strategies
 
@@ -398,6 +399,7 @@ class Comparison:
         return self.plot("breakdown", loads=loads)
 
 
+@single_blas_thread
 def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
             regulate=True, strategies=STRATEGIES, log=False) -> Comparison:
     """Efficiency and losses of the three strategies across load, on the same parts.

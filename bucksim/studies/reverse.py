@@ -55,6 +55,7 @@ from bucksim.studies.levels import (
     segment_values,
     with_level,
 )
+from bucksim.threads import single_blas_thread
 
 CAUTION = ("Caution: simulation is no substitute for validating the power stage on the bench "
            "with its real parts.")
@@ -427,6 +428,7 @@ def find_boundary(scenario) -> Boundary:
     return Boundary(what, ripple / 2.0, io, D, vo, ripple)
 
 
+@single_blas_thread
 def reverse_current(scenario, load=None) -> ReverseCurrentResult:
     """Reverse inductor current across load, in periodic steady state.
 

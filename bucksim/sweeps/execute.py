@@ -7,15 +7,10 @@ processes, or on a Dask cluster; every path calls :func:`run_batch`, so a
 point's row does not depend on where it ran.
 
 Each point runs its BLAS and LAPACK calls on one thread, wherever it runs (in
-this process, a pool worker or a Dask worker), for two reasons. Results: a
-threaded BLAS may split a reduction differently with the thread count, so a
-row could depend in its last bits on where it ran; with one thread everywhere
-the rows are bit-identical. Speed: OpenBLAS threads cost far more than they
-save on 3 x 3 exponentials, and on a loaded machine they made a point about 20
-times slower (measured here). The thread count is set through each library's
-own entry point (OpenBLAS, MKL, BLIS; threadpoolctl as well when installed),
-because environment variables are read only when a library loads and numpy and
-scipy each bring their own OpenBLAS, which may already be loaded by then.
+this process, a pool worker or a Dask worker): :func:`bucksim.threads.serial_blas`,
+which says why (bit-identical rows wherever they run; a point about 20 times
+slower on a loaded machine otherwise). Pool workers also start with the
+thread-count variables of :data:`WORKER_ENV` set.
 
 Pool workers end with the process that started them: on Linux the kernel
 sends them SIGKILL when it dies (``prctl(PR_SET_PDEATHSIG)``), and elsewhere a
@@ -27,7 +22,6 @@ ever). Dask's own workers already watch their nanny and scheduler.
 from __future__ import annotations
 
 import concurrent.futures as cf
-import contextlib
 import ctypes
 import math
 import multiprocessing
@@ -37,113 +31,10 @@ import sys
 import threading
 import time
 
+from bucksim.threads import _blas_controls, serial_blas
+
 WORKER_ENV = {"NUMBA_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1",
               "MKL_NUM_THREADS": "1"}
-
-# (file name part, get, set) of the thread-count entry points of BLAS libraries
-_BLAS_SETTERS = (("openblas", "openblas_get_num_threads", "openblas_set_num_threads"),
-                 ("openblas", "scipy_openblas_get_num_threads",
-                  "scipy_openblas_set_num_threads"),
-                 ("openblas", "scipy_openblas_get_num_threads64_",
-                  "scipy_openblas_set_num_threads64_"),
-                 ("mkl", "MKL_Get_Max_Threads", "MKL_Set_Num_Threads"),
-                 ("blis", "bli_thread_get_num_threads", "bli_thread_set_num_threads"))
-_blas_lock = threading.Lock()
-_blas_users = 0
-_blas_saved = []
-_blas_libs = {}  # path -> (get, set) or None, for every BLAS seen mapped so far
-
-
-def _mapped_blas_paths():
-    """Paths of the BLAS libraries mapped into this process (Linux; else empty)."""
-    paths = set()
-    try:
-        with open("/proc/self/maps", encoding="utf-8", errors="replace") as f:
-            for line in f:
-                fields = line.split(maxsplit=5)
-                if len(fields) == 6:
-                    name = os.path.basename(fields[5].strip()).lower()
-                    if any(part in name for part, _, _ in _BLAS_SETTERS):
-                        paths.add(fields[5].strip())
-    except OSError:  # not Linux: threadpoolctl (if installed) and the environment
-        pass
-    return sorted(paths)
-
-
-def _blas_controls():
-    """``(get, set)`` thread-count functions of every BLAS loaded in this process.
-
-    numpy and scipy are imported first, so their BLAS libraries (each wheel
-    brings its own) are loaded and found before a point needs them. The maps
-    are read again on every call: a library loaded later is found too.
-    """
-    import numpy  # noqa: F401 - loads numpy's BLAS
-    import scipy.linalg  # noqa: F401 - loads scipy's BLAS and LAPACK
-
-    controls = []
-    for path in _mapped_blas_paths():
-        if path not in _blas_libs:
-            _blas_libs[path] = _thread_functions(path)
-        if _blas_libs[path] is not None:
-            controls.append(_blas_libs[path])
-    return controls
-
-
-def _thread_functions(path):
-    try:
-        lib = ctypes.CDLL(path)
-    except OSError:
-        return None
-    name = os.path.basename(path).lower()
-    for part, get_name, set_name in _BLAS_SETTERS:
-        if part not in name:
-            continue
-        get, put = getattr(lib, get_name, None), getattr(lib, set_name, None)
-        if get is not None and put is not None:
-            get.restype, get.argtypes = ctypes.c_int, []
-            put.restype, put.argtypes = None, [ctypes.c_int]
-            return get, put
-    return None
-
-
-def _threadpoolctl_limit():
-    """A threadpoolctl limiter holding every BLAS at one thread, or None if not installed."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:
-        return None
-    return threadpool_limits(limits=1, user_api="blas")
-
-
-@contextlib.contextmanager
-def serial_blas():
-    """Run the enclosed code with one BLAS thread; restore the counts on leaving.
-
-    Counted, so threads of one process (Dask threads) may nest it: the first
-    to enter sets one thread, the last to leave restores the old counts.
-    """
-    global _blas_users, _blas_saved
-    with _blas_lock:
-        if _blas_users == 0:
-            controls = _blas_controls()
-            limiter = _threadpoolctl_limit()
-            _blas_saved = [(put, get()) for get, put in controls] + [limiter]
-            for _, put in controls:
-                put(1)
-        _blas_users += 1
-    try:
-        yield
-    finally:
-        with _blas_lock:
-            _blas_users -= 1
-            if _blas_users == 0:
-                *counts, limiter = _blas_saved
-                if limiter is not None:  # threadpoolctl >= 3 restores; 2.x unregisters
-                    getattr(limiter, "restore_original_limits",
-                            getattr(limiter, "unregister", lambda: None))()
-                for put, n in counts:
-                    put(n)
-
 
 PR_SET_PDEATHSIG = 1  # linux/prctl.h
 

@@ -337,23 +337,28 @@ def test_resume_with_force_is_refused(tmp_path, capsys):
 
 def test_threadpoolctl_limits_are_applied_and_restored_when_installed(monkeypatch):
     # threadpoolctl (when installed) reaches BLAS builds the ctypes lookup does not
-    # know; its documented API: threadpool_limits(limits, user_api) applies at once,
-    # restore_original_limits() undoes it
+    # know; its documented API: ThreadpoolController().limit(limits, user_api) applies
+    # at once, restore_original_limits() undoes it
     import types
 
+    from bucksim import threads
     from bucksim.sweeps import execute as sweep_exec
 
     calls = []
 
     class Limiter:
-        def __init__(self, limits, user_api):
-            calls.append(("set", limits, user_api))
-
         def restore_original_limits(self):
             calls.append(("restore",))
 
+    class Controller:
+        def limit(self, limits, user_api):
+            calls.append(("set", limits, user_api))
+            return Limiter()
+
     monkeypatch.setitem(sys.modules, "threadpoolctl",
-                        types.SimpleNamespace(threadpool_limits=Limiter))
+                        types.SimpleNamespace(ThreadpoolController=Controller))
+    monkeypatch.setattr(threads, "_controller", None)
+    monkeypatch.setattr(threads, "_scan_key", None)     # the next entry scans again
     with sweep_exec.serial_blas():
         with sweep_exec.serial_blas():      # nested (Dask threads): applied once
             assert calls == [("set", 1, "blas")]
