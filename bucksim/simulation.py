@@ -84,17 +84,20 @@ def _check_fits(scenario, n_states, **where):
 
 
 @single_blas_thread
-def simulate_settled(scenario, cycles: int | None = None) -> Run:
+def simulate_settled(scenario, cycles: int | None = None, *, guess=None) -> Run:
     """Simulate ``cycles`` periods on the periodic steady state of the t = 0 level.
 
     Finds the steady state by shooting (open or closed loop), then runs the
     scenario without soft-start or steps from it (controller state included),
     so every metric describes the settled operating point. The run's
-    ``steady_state`` attribute holds the shooting result.
+    ``steady_state`` attribute holds the shooting result. ``guess``: a state to
+    start the shooting from (the ``x0`` of :func:`bucksim.steady_state`), e.g. the
+    periodic state of a neighbouring operating point; the result does not
+    depend on it beyond the shooting's tolerance.
     """
 
     require_scenario(scenario, "simulate_settled")
-    ss = _steady(scenario, "settled operating point")
+    ss = _steady(scenario, "settled operating point", guess)
     base = periodic_scenario(scenario)
     n = int(cycles or scenario.run.summary_cycles)
     sc = dataclasses.replace(base, run=dataclasses.replace(
@@ -108,7 +111,7 @@ def simulate_settled(scenario, cycles: int | None = None) -> Run:
     return run
 
 
-def _steady(scenario, context):
+def _steady(scenario, context, guess=None):
     """Periodic steady state (open or closed loop), or a SimulationError saying why not.
 
     A closed loop's periodic state with a Floquet multiplier on or outside
@@ -117,7 +120,7 @@ def _steady(scenario, context):
     open-loop stage is passive; its multipliers are never outside.)
     """
 
-    ss = steady_state(scenario)
+    ss = steady_state(scenario, guess)
     where = f"{scenario.source or scenario.title}: {context}"
     if not ss.success:
         err = SimulationError(f"{where}: {ss.message}")

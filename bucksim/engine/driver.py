@@ -260,7 +260,18 @@ class LoopArgs:
 
 
 def stage_tables(stage, table: TransitionTable) -> StageTables:
-    """The cycle loop's record of a stage's tables and bounds (taken once per run)."""
+    """The cycle loop's record of a stage's tables and bounds, built once per
+    (stage, table): a shooting integrates the same stage hundreds of times, and
+    the record took 2 ms to build (its bounds and rows), as long as the run."""
+    cached = getattr(table, "_loop_record", None)
+    if cached is not None and cached[0] is stage:
+        return cached[1]
+    record = _stage_tables(stage, table)
+    object.__setattr__(table, "_loop_record", (stage, record))   # (a frozen dataclass)
+    return record
+
+
+def _stage_tables(stage, table: TransitionTable) -> StageTables:
     Ms = table.matrices
     m = Ms.shape[1]
     bnd = system_bounds(Ms)

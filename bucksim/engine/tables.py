@@ -21,6 +21,8 @@ References
 
 from __future__ import annotations
 
+import threading
+from collections import OrderedDict
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -34,6 +36,28 @@ TAYLOR_ORDER = 8
 
 #: Largest ||A||_inf h of the series' step: (0.05)**9 / 9! ~ 5e-18.
 TAYLOR_REACH = 0.05
+
+#: Tables and phase exponentials kept for reuse, most recent last: a shooting and the
+#: run from its periodic state, or neighbouring sweep points at one duty, build the
+#: same systems (the same matrices to the bit give the same table to the bit).
+CACHE_ENTRIES = 16
+_cache: OrderedDict = OrderedDict()
+_cache_lock = threading.Lock()
+
+
+def _cached(key, build):
+    """``build()`` once per ``key`` among the last :data:`CACHE_ENTRIES` keys."""
+    with _cache_lock:
+        hit = _cache.get(key)
+        if hit is not None:
+            _cache.move_to_end(key)
+            return hit
+    value = build()
+    with _cache_lock:
+        _cache[key] = value
+        while len(_cache) > CACHE_ENTRIES:
+            _cache.popitem(last=False)
+    return value
 
 
 @dataclass(frozen=True)
@@ -76,9 +100,16 @@ def build_table(matrices: np.ndarray, period: float, depth: int = TABLE_DEPTH) -
     """Exact exponentials of each system at the binary fractions of ``period``.
 
     The table stops at the first level whose step is within the Taylor
-    series' reach (see the module notes), at ``depth`` levels at most.
+    series' reach (see the module notes), at ``depth`` levels at most. A table of
+    the same matrices, period and depth built recently is returned again (its
+    arrays are read only by every caller).
     """
     matrices = np.ascontiguousarray(matrices, dtype=float)
+    key = ("table", matrices.shape, matrices.tobytes(), float(period), int(depth))
+    return _cached(key, lambda: _build_table(matrices, period, depth))
+
+
+def _build_table(matrices: np.ndarray, period: float, depth: int) -> TransitionTable:
     n_sys, m, _ = matrices.shape
     norm = max(float(np.max(np.sum(np.abs(M[:-1, :-1]), axis=1))) for M in matrices)
     levels = depth
@@ -127,7 +158,14 @@ def system_guards(table: TransitionTable) -> np.ndarray:
 
 
 def phase_exponentials(matrices: np.ndarray, durations) -> np.ndarray:
-    """``expm(M_s d_p)`` for each system and each nominal phase duration ``d_p``."""
+    """``expm(M_s d_p)`` for each system and each nominal phase duration ``d_p``
+    (returned again for the same matrices and durations, like :func:`build_table`)."""
+    matrices = np.ascontiguousarray(matrices, dtype=float)
+    key = ("phases", matrices.shape, matrices.tobytes(), tuple(float(d) for d in durations))
+    return _cached(key, lambda: _phase_exponentials(matrices, durations))
+
+
+def _phase_exponentials(matrices: np.ndarray, durations) -> np.ndarray:
     n_sys, m, _ = matrices.shape
     out = np.empty((n_sys, len(durations), m, m))
     first = _first_copies(matrices)

@@ -61,6 +61,7 @@ from bucksim.studies.profile import (
     _profile_result,
     make_profile,
 )
+from bucksim.studies.regulate import regulated_point
 from bucksim.studies.reverse import CAUTION, cycle_mean
 from bucksim.threads import single_blas_thread
 
@@ -88,65 +89,6 @@ def strategy_scenario(scenario, strategy: str, diode: Diode | None = None):
                             "strategies (describe the low-side MOSFET; give the freewheel "
                             "diode with diode=... or --diode)", "diode")
     return rep(scenario, switching=rep(scenario.switching, strategy=strategy))
-
-
-def _duty_limits(scenario):
-    T = scenario.period
-    if scenario.switching.strategy == "asynchronous":
-        return 1e-5, 1.0 - 1e-6
-    tf, tr = scenario.switching.dead_time
-    return 1e-5, 1.0 - (tf + tr) / T - 1e-6
-
-
-def regulated_point(scenario, target: float, guess: float | None = None):
-    """Duty giving mean output voltage ``target`` [V] in steady state.
-
-    Returns ``(scenario at that duty, SteadyState, Run over one period)``.
-
-    Notes
-    -----
-    The mean output voltage rises monotonically with the duty (CCM: about
-    ``Vin`` per unit duty, Erickson ch. 2; DCM: ch. 5); the root is bracketed
-    from a step of ``(target - Vo) / Vin`` and found by ``brentq`` to 1e-12
-    in duty.
-    """
-    from scipy.optimize import brentq
-
-    rep = dataclasses.replace
-    lo, hi = _duty_limits(scenario)
-    memo = {}
-
-    def at(d):
-        if d not in memo:
-            sc = rep(scenario, control=rep(scenario.control, duty=float(d)))
-            ss, run = periodic_run(sc)
-            memo[d] = (cycle_mean(run, "vo") - target, sc, ss, run)
-        return memo[d][0]
-
-    a = min(max(scenario.control.duty if guess is None else guess, lo), hi)
-    fa = at(a)
-    step = -fa / scenario.supply.voltage
-    b = min(max(a + 1.2 * step, lo), hi)
-    if b == a:
-        b = min(max(a - math.copysign(1e-3, fa), lo), hi)
-    fb = at(b)
-    for _ in range(40):
-        if fa * fb <= 0:
-            break
-        if b in (lo, hi):
-            vmax = "the lowest" if b == lo else "the highest"
-            strategy = scenario.switching.strategy
-            raise ScenarioError("output_voltage", f"must be reachable with {strategy} at "
-                                f"this load ({vmax} duty gives {fb + target:.6g} V)", target)
-        a, fa, b = b, fb, min(max(b + 2.0 * (b - a), lo), hi)
-        fb = at(b)
-    if fa == 0 or fb == 0:
-        d = a if fa == 0 else b
-    else:
-        d = brentq(at, min(a, b), max(a, b), xtol=1e-12, rtol=1e-12)
-    at(d)
-    _, sc, ss, run = memo[d]
-    return sc, ss, run
 
 
 # ----------------------------------------------------------------------------- rows

@@ -127,9 +127,10 @@ def require_open_loop(scenario):
 
 # ----------------------------------------------------------------------------- one period
 
-def periodic_run(scenario):
+def periodic_run(scenario, guess=None):
     """The periodic steady state and one exact period of waveforms from it
-    (:func:`bucksim.simulation.simulate_settled` with one cycle).
+    (:func:`bucksim.simulation.simulate_settled` with one cycle; ``guess``: a
+    state to start the shooting from, e.g. a neighbouring point's periodic state).
 
     Returns
     -------
@@ -143,5 +144,5 @@ def periodic_run(scenario):
     """
     from bucksim.simulation import simulate_settled
 
-    run = simulate_settled(scenario, cycles=1)
+    run = simulate_settled(scenario, cycles=1, guess=guess)
     return run.steady_state, run

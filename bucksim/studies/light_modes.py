@@ -51,10 +51,10 @@ from bucksim.model.scenario import locate_in, require_scenario
 AUDIBLE_LIMIT = 20e3
 
 #: Result codes of the light-load modes (``success`` is ``status == 0``).
-STATUS_OK = 0
-STATUS_NO_PERIOD = 1        # no period closes: the load is outside the mode's range
-STATUS_NOT_AN_ORBIT = 2     # the periodic state fails the mode's own rule (checked)
-STATUS_SOLVER = 3           # a steady-state solve failed
+MODE_FOUND = 0
+MODE_NO_PERIOD = 1        # no period closes: the load is outside the mode's range
+MODE_NOT_AN_ORBIT = 2     # the periodic state fails the mode's own rule (checked)
+MODE_SOLVER_FAILED = 3           # a steady-state solve failed
 
 #: Conduction states of the idle interval (no switch conducts; the node open).
 _IDLE_STATES = tuple(CONDUCTION_NAMES.index(n) for n in ("idle", "open"))
@@ -182,7 +182,7 @@ class PfmResult:
 
     @property
     def success(self) -> bool:
-        return self.status == STATUS_OK
+        return self.status == MODE_FOUND
 
     @property
     def output_ripple(self) -> float:
@@ -321,7 +321,7 @@ def pfm_steady_state(scenario, *, peak_current=None, on_time=None, threshold=Non
     ton_guess = L * ipk_guess / (vin - vth) if ton is None else ton
     pulse = ton_guess + L * ipk_guess / vth
     period_guess = pulse / (2 * io / ipk_guess)
-    result = PfmResult(STATUS_OK, "", "on-time" if ipk is None else "peak-current",
+    result = PfmResult(MODE_FOUND, "", "on-time" if ipk is None else "peak-current",
                        threshold=vth)
     shooter = _Shooter(scenario)
     try:
@@ -330,7 +330,7 @@ def pfm_steady_state(scenario, *, peak_current=None, on_time=None, threshold=Non
     except _NoRoot as exc:
         return _no_period(result, str(exc), shooter.count, io)
     except SimulationError as exc:
-        return dataclasses.replace(result, status=STATUS_SOLVER, evaluations=shooter.count,
+        return dataclasses.replace(result, status=MODE_SOLVER_FAILED, evaluations=shooter.count,
                                    message=f"a periodic steady state was not found: {exc}")
     run = shooter.run(period, t_on)
     return _checked(result, run, period, t_on, shooter.count)
@@ -392,7 +392,7 @@ def _no_period(result, side, count, io):
     else:
         why = ("even back-to-back pulses leave the output below the threshold: the load "
                f"({io:.4g} A) is above what PFM with these pulses can carry")
-    return dataclasses.replace(result, status=STATUS_NO_PERIOD, evaluations=count,
+    return dataclasses.replace(result, status=MODE_NO_PERIOD, evaluations=count,
                                message=f"no PFM period closes: {why}")
 
 
@@ -406,7 +406,7 @@ def _checked(result, run, period, t_on, count):
                               on_time=t_on, peak_current=peak, run=run, evaluations=count,
                               summary=run.summary(cycles=1))
     if idle.size == 0:
-        return dataclasses.replace(out, status=STATUS_NOT_AN_ORBIT, message=(
+        return dataclasses.replace(out, status=MODE_NOT_AN_ORBIT, message=(
             "no idle interval: the current does not return to zero before the next pulse "
             "(continuous conduction); the load is too heavy for PFM with these pulses"))
     from bucksim.analysis.extrema import extrema
@@ -419,7 +419,7 @@ def _checked(result, run, period, t_on, count):
         ring = (" (the switch node rings through the idle interval: its current through the "
                 "capacitor's ESR carries the output below the threshold on a ring lobe)"
                 if np.any(seg.conduction[pieces] == CONDUCTION_NAMES.index("open")) else "")
-        return dataclasses.replace(out, status=STATUS_NOT_AN_ORBIT, message=(
+        return dataclasses.replace(out, status=MODE_NOT_AN_ORBIT, message=(
             f"the output falls to {low:.9g} V during the idle interval, below the threshold "
             f"{vth:.9g} V, before the period closes{ring}: the controller would start the "
             f"next pulse sooner, so this periodic state is not a PFM orbit"))

@@ -28,9 +28,9 @@ from bucksim.errors import ScenarioError
 from bucksim.model.parts import Control, RunSettings
 from bucksim.model.scenario import require_scenario
 from bucksim.studies.light_modes import (
-    STATUS_NO_PERIOD,
-    STATUS_NOT_AN_ORBIT,
-    STATUS_OK,
+    MODE_FOUND,
+    MODE_NO_PERIOD,
+    MODE_NOT_AN_ORBIT,
     _positive_number,
     _refuse,
     check_light_strategy,
@@ -101,7 +101,7 @@ class SkipResult:
 
     @property
     def success(self) -> bool:
-        return self.status == STATUS_OK
+        return self.status == MODE_FOUND
 
     @property
     def output_ripple(self) -> float:
@@ -211,7 +211,7 @@ def pulse_skipping_steady_state(scenario, *, min_on_time=None, threshold=None,
     vth = light_threshold(scenario, threshold)
     load_current(scenario, vth)
     sc = pulse_skipping_scenario(scenario, t_min, vth, cycles=block)
-    result = SkipResult(STATUS_OK, "", min_on_time=t_min, threshold=vth,
+    result = SkipResult(MODE_FOUND, "", min_on_time=t_min, threshold=vth,
                         clock_frequency=sc.switching.frequency)
     every = _every_clock(sc, t_min, vth)
     if every is not None:
@@ -250,7 +250,7 @@ def _every_clock(sc, t_min, vth):
 
 
 def _not_skipping(result, run):
-    return dataclasses.replace(result, status=STATUS_NOT_AN_ORBIT, run=run, clocks=1,
+    return dataclasses.replace(result, status=MODE_NOT_AN_ORBIT, run=run, clocks=1,
                                pulses=1, pattern=(1,), pattern_frequency=1.0 / run.period,
                                switching_frequency=1.0 / run.period,
                                summary=run.summary(), message=(
@@ -379,9 +379,9 @@ def _report(result, run, K):
     n = pulses.shape[0]
     T = run.period
     if K is None:
-        status, window = STATUS_NO_PERIOD, n // 2
+        status, window = MODE_NO_PERIOD, n // 2
     else:
-        status, window = STATUS_OK, K * math.ceil(_MIN_WINDOW / K)
+        status, window = MODE_FOUND, K * math.ceil(_MIN_WINDOW / K)
     f_eff = float(pulses[n - window:].sum()) / (window * T)
     out = dataclasses.replace(result, status=status, switching_frequency=f_eff, run=run,
                               summary=run.summary(cycles=int(window)))
