@@ -21,6 +21,8 @@ if TYPE_CHECKING:  # the names below load lazily (``__getattr__``); type checker
     from bucksim.analysis.budget import estimate
     from bucksim.analysis.crosscheck import crosscheck
     from bucksim.studies.compare import compare
+    from bucksim.studies.light_modes import pfm_steady_state
+    from bucksim.studies.pulse_skipping import pulse_skipping_steady_state
     from bucksim.studies.reverse import reverse_current
     from bucksim.sweeps.plan import sweep
     from bucksim.waveforms import Run
@@ -63,6 +65,8 @@ _LAZY = {
     "crosscheck": "bucksim.analysis.crosscheck",
     "compare": "bucksim.studies.compare",
     "reverse_current": "bucksim.studies.reverse",
+    "pfm_steady_state": "bucksim.studies.light_modes",
+    "pulse_skipping_steady_state": "bucksim.studies.pulse_skipping",
     "sweep": "bucksim.sweeps.plan",
     "Run": "bucksim.waveforms",
 }
@@ -82,5 +86,6 @@ def __dir__():
 
 
 __all__ = ["load_scenario", "simulate", "open_run", "steady_state", "estimate", "crosscheck",
-           "sweep", "reverse_current", "compare", "Run", "ScenarioError", "SimulationError",
+           "sweep", "reverse_current", "compare", "pfm_steady_state",
+           "pulse_skipping_steady_state", "Run", "ScenarioError", "SimulationError",
            "StorageError", "__version__"]

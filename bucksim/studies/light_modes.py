@@ -12,8 +12,9 @@ length. For a candidate period ``T`` and on-time ``t_on`` the stage is the
 open-loop stage at frequency ``1/T`` and duty ``t_on/T``; its exact periodic
 steady state (:func:`bucksim.simulation.simulate_settled`) is one PFM period
 if ``iL(t_on) = I_pk`` (fixed peak current) and ``vo(0) = V_th``. Both are
-solved by safeguarded root finding (Brent's method on a bracket, the on-time
-nested inside the period), and the solution is then checked: the current
+solved by safeguarded root finding (Brent's method on a bracket [1]_, the
+period nested inside the on-time; the lossless charge balance [2]_ starts the
+bracket), and the solution is then checked: the current
 must return to zero (an idle interval exists) and the output must stay above
 the threshold over the idle interval, else the controller would have started
 the next pulse sooner and the orbit is not one it runs.
@@ -301,8 +302,9 @@ def pfm_steady_state(scenario, *, peak_current=None, on_time=None, threshold=Non
 
         i_L(t_{on}) = I_{pk}, \\qquad v_o(0) = V_{th}
 
-    (the first only at fixed peak current). ``t_on`` is solved inside each
-    evaluation of the second equation, both by Brent's method on a bracket
+    (the first only at fixed peak current). ``T`` is solved inside each
+    evaluation of the first equation (along ``v_o(0) = V_th`` the peak grows
+    with the on-time), both by Brent's method on a bracket
     grown geometrically from the lossless charge-balance estimate
     ``f = I_o / (I_{pk} (t_{on} + t_{off}) / 2)``,
     ``t_on = L I_pk / (V_in - V_o)``, ``t_off = L I_pk / V_o`` [2]_. At the
@@ -313,20 +315,12 @@ def pfm_steady_state(scenario, *, peak_current=None, on_time=None, threshold=Non
     load's), which a PFM controller ignores while the pulse runs.
     """
     ipk, ton, vth, io = _pfm_inputs(scenario, peak_current, on_time, threshold)
-    vin, L = scenario.supply.voltage, scenario.inductor.inductance
-    if ipk is None:
-        ipk_guess = (vin - vth) * ton / L
-    else:
-        ipk_guess = ipk
-    ton_guess = L * ipk_guess / (vin - vth) if ton is None else ton
-    pulse = ton_guess + L * ipk_guess / vth
-    period_guess = pulse / (2 * io / ipk_guess)
+    ton_guess, period_guess = _lossless_guess(scenario, ipk, ton, vth, io)
     result = PfmResult(MODE_FOUND, "", "on-time" if ipk is None else "peak-current",
                        threshold=vth)
     shooter = _Shooter(scenario)
     try:
-        period, t_on = _solve_period(shooter, ipk, ton, ton_guess, vth,
-                                     max(period_guess, 1.2 * pulse))
+        period, t_on = _solve_period(shooter, ipk, ton, ton_guess, vth, period_guess)
     except _NoRoot as exc:
         return _no_period(result, str(exc), shooter.count, io)
     except SimulationError as exc:
@@ -334,6 +328,17 @@ def pfm_steady_state(scenario, *, peak_current=None, on_time=None, threshold=Non
                                    message=f"a periodic steady state was not found: {exc}")
     run = shooter.run(period, t_on)
     return _checked(result, run, period, t_on, shooter.count)
+
+
+def _lossless_guess(scenario, ipk, ton, vth, io):
+    """``(t_on, T)`` of the lossless stage by charge balance (the bracket's start):
+    ``t_on = L I_pk / (Vin - Vo)``, ``t_off = L I_pk / Vo``, ``T = I_pk (t_on +
+    t_off) / (2 I_o)``, at least 1.2 pulses."""
+    vin, L = scenario.supply.voltage, scenario.inductor.inductance
+    ipk_guess = (vin - vth) * ton / L if ipk is None else ipk
+    ton_guess = L * ipk_guess / (vin - vth) if ton is None else ton
+    pulse = ton_guess + L * ipk_guess / vth
+    return ton_guess, max(pulse / (2 * io / ipk_guess), 1.2 * pulse)
 
 
 def _pfm_inputs(scenario, peak_current, on_time, threshold):

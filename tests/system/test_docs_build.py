@@ -31,7 +31,8 @@ README = REPO / "README.md"
 #: The pages of the site (the issue's list), each linked from the README.
 PAGES = ("getting-started.md", "scenario-reference.md", "summary-reference.md",
          "hdf5-layout.md", "python-api.md", "api-reference.rst", "architecture.md",
-         "performance.md", "validation.md", "safety.md", "tutorials.md", "input-side.md")
+         "performance.md", "validation.md", "safety.md", "tutorials.md", "input-side.md",
+         "light-load.md", "light-load-modes.md")
 NOTEBOOKS = ("01_first_tour", "02_strategy_for_a_rail", "03_validate_loss_budget",
              "04_sizing_the_input_capacitor")
 
