@@ -16,13 +16,14 @@ import sys
 import traceback
 import warnings
 
-from bucksim.cli import cache, compare, crosscheck, plot, reverse, run, sweep
+from bucksim.cli import boundary, cache, compare, crosscheck, plot, run, sweep
 from bucksim.cli.common import EXIT_INTERNAL, EXIT_OK, EXIT_USER, ArgumentParser, UserError
 from bucksim.errors import ScenarioError, SimulationError, StorageError
 from bucksim.version import package_version
 
 #: The verbs that run numba kernels (the others, and ``--help``, never import numba).
-ENGINE_VERBS = frozenset({"run", "report", "crosscheck", "sweep", "reverse", "compare", "plot"})
+ENGINE_VERBS = frozenset({"run", "report", "crosscheck", "sweep", "boundary", "reverse",
+                          "compare", "plot"})
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -32,7 +33,7 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="Example: bucksim run scenarios/core_rail_1v0.toml --json")
     p.add_argument("--version", action="version", version=f"bucksim {package_version()}")
     sub = p.add_subparsers(dest="verb", metavar="VERB")
-    for verb in (run, crosscheck, cache, sweep, reverse, compare, plot):
+    for verb in (run, crosscheck, cache, sweep, boundary, compare, plot):
         verb.register(sub)
     return p
 

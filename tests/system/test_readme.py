@@ -179,7 +179,7 @@ def test_sections_in_order_and_every_command_is_bucksim():
         assert shlex.split(command, comments=True)[0] == "bucksim", command
     argvs = [shlex.split(c, comments=True) for c in commands]
     verbs = {argv[1] for argv in argvs if len(argv) > 1}
-    assert {"run", "report", "crosscheck", "reverse", "compare", "sweep", "plot"} <= verbs
+    assert {"run", "report", "crosscheck", "boundary", "compare", "sweep", "plot"} <= verbs
 
 
 def test_every_scenario_key_is_documented():
@@ -235,7 +235,7 @@ def _check_json(verb, data, command):
     elif verb == "crosscheck":
         items = {row["item"] for row in data["rows"]}
         assert "total loss" in items and "high_side.conduction" in items
-    elif verb == "reverse":
+    elif verb == "boundary":
         assert data["points"] and data["boundary"]["kind"] in ("reversal", "dcm")
     elif verb == "compare":
         assert set(data["rows"]) == set(data["strategies"])
@@ -277,7 +277,7 @@ def check_output(command, stdout, clone):
         assert "efficiency" in stdout and "energy balance error" in stdout, command
     elif verb == "crosscheck":
         assert "closed form" in stdout and "total loss" in stdout, command
-    elif verb == "reverse":
+    elif verb == "boundary":
         assert "boundary" in stdout and stdout.rstrip().splitlines()[-1].startswith("Caution")
     elif verb == "compare":
         assert "efficiency" in stdout and stdout.rstrip().splitlines()[-1].startswith("Caution")

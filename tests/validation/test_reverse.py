@@ -201,21 +201,34 @@ def test_load_levels():
 def _cli(args):
     import argparse
 
-    from bucksim.cli.reverse import register
+    from bucksim.cli.boundary import register
     parser = argparse.ArgumentParser(prog="bucksim")
-    register(parser.add_subparsers())
+    register(parser.add_subparsers(dest="verb"))
     ns = parser.parse_args(args)
     return ns.func(ns)
 
 
-def test_cli_reverse(tmp_path, capsys):
+def test_cli_boundary(tmp_path, capsys):
     from bucksim.model.scenario import dump_scenario
     path = tmp_path / "rail.toml"
     dump_scenario(stage(), path)
-    assert _cli(["reverse", str(path), "--load", "0.2", "0.8 A", "--json"]) == 0
+    assert _cli(["boundary", str(path), "--load", "0.2", "0.8 A", "--json"]) == 0
     out = json.loads(capsys.readouterr().out)
     assert [pt["reverses"] for pt in out["points"]] == [True, False]
-    assert _cli(["reverse", str(path), "--load", "3 uF"]) == 1
+    assert _cli(["boundary", str(path), "--load", "3 uF"]) == 1
     err = capsys.readouterr().err
     assert "3 uF" in err and "load" in err
-    assert _cli(["reverse", str(tmp_path / "missing.toml")]) == 1
+    assert _cli(["boundary", str(tmp_path / "missing.toml")]) == 1
+
+
+def test_cli_reverse_is_a_documented_alias_for_one_release(tmp_path, capsys):
+    # the old verb name still runs the same study, with a note naming the new one
+    from bucksim.model.scenario import dump_scenario
+    path = tmp_path / "rail.toml"
+    dump_scenario(stage(), path)
+    assert _cli(["boundary", str(path), "--load", "0.2", "--json"]) == 0
+    new = capsys.readouterr()
+    assert _cli(["reverse", str(path), "--load", "0.2", "--json"]) == 0
+    old = capsys.readouterr()
+    assert old.out == new.out and "note" not in new.err
+    assert "'bucksim reverse' is now 'bucksim boundary'" in old.err

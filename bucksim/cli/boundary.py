@@ -1,7 +1,8 @@
-"""``bucksim reverse``: where and how much the inductor current reverses at light load.
+"""``bucksim boundary``: where the inductor current reverses, or DCM begins, at light load.
 
-The verb keeps its name for this release; it reads as reverse current, not
-reverse recovery or polarity.
+The verb was called ``reverse``, which reads as reverse recovery or reverse
+polarity as easily as reverse current; ``reverse`` still works for this release
+as a documented alias (with a note on stderr) and goes in the next.
 """
 
 from __future__ import annotations
@@ -15,16 +16,19 @@ from bucksim.model.scenario import load_scenario
 
 
 def register(subparsers):
-    """Add the ``reverse`` verb to the ``bucksim`` command."""
+    """Add the ``boundary`` verb (alias ``reverse``) to the ``bucksim`` command."""
     p = subparsers.add_parser(
-        "reverse", help="where and how much the inductor current reverses at light load",
+        "boundary", aliases=["reverse"],
+        help="the light-load boundary: where the inductor current reverses (forced PWM) or "
+             "DCM begins, and how much charge goes back",
         description="Evaluate a scenario in periodic steady state at several load levels: "
                     "minimum inductor current, share of the period with negative current, "
                     "charge and energy returned to the supply per cycle, and the load below "
                     "which the current reverses (forced PWM) or the stage enters DCM "
                     "(diode emulation, asynchronous), in closed form and simulated.",
-        epilog="Example: bucksim reverse scenarios/core_rail_1v0.toml "
-               "--load '2 ohm' '0.5 ohm' '0.2 ohm' --json")
+        epilog="Example: bucksim boundary scenarios/core_rail_1v0.toml "
+               "--load '2 ohm' '0.5 ohm' '0.2 ohm' --json ('reverse' is the old name of "
+               "this verb, kept for this release)")
     p.add_argument("file", help="scenario TOML file (open loop)")
     p.add_argument("--load", metavar="VALUE", nargs="+", action="extend",
                    help="load level(s): '0.3 A', '2 ohm', or a number in the scenario's "
@@ -32,13 +36,16 @@ def register(subparsers):
     p.add_argument("--json", action="store_true", help="print the result as JSON on stdout")
     p.add_argument("--figure", metavar="PNG", help="also draw min iL vs load to this PNG")
     p.add_argument("--force", action="store_true", help="overwrite an existing --figure")
-    p.set_defaults(func=_cmd_reverse)
+    p.set_defaults(func=_cmd_boundary)
     return p
 
 
-def _cmd_reverse(args) -> int:
+def _cmd_boundary(args) -> int:
     from bucksim.studies.reverse import reverse_current  # loads the engine (numba)
 
+    if getattr(args, "verb", None) == "reverse":
+        print("bucksim: note: 'bucksim reverse' is now 'bucksim boundary'; the old name "
+              "goes in the next release", file=sys.stderr)
     if args.figure and os.path.exists(args.figure) and not args.force:
         print(f"bucksim: error: {args.figure} exists; pass --force to overwrite it",
               file=sys.stderr)
