@@ -28,7 +28,8 @@ import numpy as np
 STATE_COLOURS = ("#c8553d", "#2e86ab", "#f2a541", "#8e6c8a", "#d9d9d9", "#9bc49b")
 STATE_LABELS = ("high side on", "low side on", "low-side diode", "high-side diode",
                 "idle (both off)", "node open (swing, ring)")
-STRATEGY_STYLE = {"asynchronous": ("#8c5e34", "s", "-"),
+STRATEGY_STYLE = {"pfm": ("#7b5ea7", "D", ":"),
+                  "asynchronous": ("#8c5e34", "s", "-"),
                   "forced-pwm": ("#3b6ea5", "o", "-"),
                   "diode-emulation": ("#4f9d69", "^", "--")}
 #: One colour per loss item (as many as there are items; a neighbour never repeats).
@@ -48,7 +49,7 @@ SIGNAL_NAMES = {"iL": "inductor current iL", "vsw": "switch node vsw", "vo": "ou
                 "low_side_body_diode": "low-side body-diode current",
                 "switch_node": "open switch-node current",
                 "u": "compensator output u", "vref": "reference vref"}
-_SHORT_NAMES = {"asynchronous": "async.\n", "forced-pwm": "forced\nPWM",
+_SHORT_NAMES = {"pfm": "PFM\n", "asynchronous": "async.\n", "forced-pwm": "forced\nPWM",
                 "diode-emulation": "diode\nemulation"}
 _MAX_POINTS = 1_000_000  # per signal
 

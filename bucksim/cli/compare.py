@@ -91,6 +91,12 @@ def register(subparsers):
     p.add_argument("--output-voltage", metavar="V",
                    help="output voltage to hold by trimming the duty (default: the "
                         "scenario's own)")
+    pfm = p.add_mutually_exclusive_group()
+    pfm.add_argument("--pfm-peak-current", metavar="A",
+                     help="add a PFM row: pulses to this peak current on the diode-emulation "
+                          "stage, idle until the output falls to the held voltage")
+    pfm.add_argument("--pfm-on-time", metavar="S",
+                     help="add a PFM row with pulses of this fixed on-time instead")
     p.add_argument("--csv", metavar="OUT.csv", help="write every row to a CSV file")
     p.add_argument("--figure", metavar="PNG", help="draw efficiency vs load")
     p.add_argument("--breakdown", metavar="PNG",
@@ -131,9 +137,11 @@ def _cmd_compare(args) -> int:
             profile = read_profile(args.profile, scenario)
         levels = parse_sweep(args.loads, scenario, args.log)
         diode = parse_diode(args.diode) if args.diode else None
+        pfm = ({"peak_current": args.pfm_peak_current} if args.pfm_peak_current else
+               {"on_time": args.pfm_on_time} if args.pfm_on_time else None)
         result = compare(scenario, levels, diode=diode, profile=profile,
                          output_voltage=args.output_voltage, regulate=not args.fixed_duty,
-                         log=args.log)
+                         log=args.log, pfm=pfm)
     except (ScenarioError, SimulationError) as exc:
         return refuse(exc)
     except OSError as exc:

@@ -18,9 +18,10 @@ from bucksim.model.drive_parts import Controller, GateResistance, check_drive
 from bucksim.model.input_parts import InputCapacitor, InputFilter, check_input_side
 
 STRATEGIES = ("asynchronous", "forced-pwm", "diode-emulation")
-#: Readable name of each strategy, for tables and figures.
+#: Readable name of each strategy, for tables and figures (and of the light-load mode
+#: that ``compare`` evaluates beside them, PFM on the diode-emulation stage).
 STRATEGY_NAMES = {"asynchronous": "asynchronous", "forced-pwm": "forced PWM",
-                  "diode-emulation": "diode emulation"}
+                  "diode-emulation": "diode emulation", "pfm": "PFM"}
 CONTROL_MODES = ("open-loop", "voltage-mode", "peak-current")
 IMPLEMENTATIONS = ("digital", "analog")
 START_MODES = ("rest", "steady-state")

@@ -56,6 +56,7 @@ from bucksim.studies.levels import (
     require_open_loop,
     with_level,
 )
+from bucksim.studies.light_rows import pfm_point, pfm_pulse
 from bucksim.studies.profile import (
     ProfileResult,
     _profile_result,
@@ -125,6 +126,13 @@ class Row:
     losses: dict
     energy_balance_error: float
     error: str | None = None
+    #: Pulses per second [Hz] (the clock for the fixed-frequency strategies) and the
+    #: output's peak-to-peak ripple [V].
+    switching_frequency: float = math.nan
+    output_ripple: float = math.nan
+    #: The PFM row only: ``"pfm"`` (``"pfm-audible"`` below 20 kHz) where PFM ran,
+    #: ``"pwm"`` where the controller ran fixed-frequency diode emulation instead.
+    light_mode: str = ""
 
     @property
     def ok(self) -> bool:
@@ -145,6 +153,8 @@ class Row:
                 "duty": self.duty,
                 "load_current": self.load_current, "output_voltage": self.output_voltage,
                 "conduction_mode": self.conduction_mode, "reverse_current": self.reverse_current,
+                "switching_frequency": self.switching_frequency,
+                "output_voltage_ripple": self.output_ripple, "light_mode": self.light_mode,
                 "efficiency": self.efficiency,
                 "power": {"input": self.input_power, "output": self.output_power,
                           "loss": self.loss},
@@ -158,14 +168,33 @@ def _row(scenario, strategy, level, target, guess):
         _, run = periodic_run(sc)
     else:
         sc, _, run = regulated_point(sc, target, guess)
-    s = run.summary(1)
+    return _row_of(strategy, level, sc.control.duty, run, run.summary(1),
+                   sc.switching.frequency)
+
+
+def _row_of(strategy, level, duty, run, s, frequency):
     p = s.power
-    return Row(strategy=strategy, level=level, duty=sc.control.duty,
+    return Row(strategy=strategy, level=level, duty=duty,
                load_current=cycle_mean(run, "io"), output_voltage=s.output_voltage.mean,
                conduction_mode=s.conduction_mode, reverse_current=s.reverse_current,
                efficiency=s.efficiency, input_power=p.input, output_power=p.output,
                loss=p.input - p.output, losses=loss_items(s, strategy),
-               energy_balance_error=float(s.energy_balance_error))
+               energy_balance_error=float(s.energy_balance_error),
+               switching_frequency=float(frequency), output_ripple=s.output_voltage.ripple)
+
+
+def _light_row(scenario, level, threshold, pulse, fixed_row):
+    """The ``"pfm"`` row: PFM where it runs, else ``fixed_row()``, the fixed-frequency
+    diode-emulation row (:func:`~bucksim.studies.light_rows.pfm_point`);
+    ``light_mode`` says which."""
+    res, fixed = pfm_point(scenario, level, threshold, pulse)
+    if fixed:
+        return dataclasses.replace(fixed_row(), strategy="pfm", light_mode="pwm")
+    if not res.success:
+        return Row.failed("pfm", level, f"PFM at {level}: {res.message}")
+    row = _row_of("pfm", level, res.on_time / res.period, res.run, res.summary,
+                  res.switching_frequency)
+    return dataclasses.replace(row, light_mode="pfm-audible" if res.audible else "pfm")
 
 
 # ----------------------------------------------------------------------------- profile
@@ -243,6 +272,7 @@ class Comparison:
                        "load_current_A": r.load_current, "output_voltage_V": r.output_voltage,
                        "duty": r.duty, "conduction_mode": r.conduction_mode,
                        "reverse_current": r.reverse_current,
+                       "frequency_Hz": r.switching_frequency, "ripple_V": r.output_ripple,
                        "efficiency": r.efficiency, "input_W": r.input_power,
                        "output_W": r.output_power, "loss_W": r.loss}
                 rec.update({f"{it}_W": r.losses.get(it, 0.0 if r.ok else math.nan)
@@ -267,7 +297,8 @@ class Comparison:
         """
         recs = self.records()
         head = ["strategy", "load_key", "load_value", "load_current_A", "output_voltage_V",
-                "duty", "conduction_mode", "reverse_current", "efficiency", "input_W", "output_W",
+                "duty", "conduction_mode", "reverse_current", "frequency_Hz", "ripple_V",
+                "efficiency", "input_W", "output_W",
                 "loss_W"] + [f"{it}_W" for it in self._present_items()] + ["error"]
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
@@ -343,7 +374,7 @@ class Comparison:
 
 @single_blas_thread
 def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
-            regulate=True, strategies=STRATEGIES, log=False) -> Comparison:
+            regulate=True, strategies=STRATEGIES, log=False, pfm=None) -> Comparison:
     """Efficiency and losses of the three strategies across load, on the same parts.
 
     Parameters
@@ -367,6 +398,14 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
     strategies : sequence of str
     log : bool
         Loads meant for a logarithmic axis (figures follow it).
+    pfm : dict, optional
+        Add a ``"pfm"`` row beside the strategies: PFM on the diode-emulation
+        stage (:func:`~bucksim.studies.light_modes.pfm_steady_state`) with
+        ``{"peak_current": A}`` or ``{"on_time": s}``, its threshold the held
+        output voltage (so PFM's mean output sits about half its ripple above
+        the others'). Each row carries its ``switching_frequency`` and
+        ``output_ripple``; a load PFM cannot hold (no idle interval left) is a
+        failed row saying so.
 
     Returns
     -------
@@ -380,6 +419,7 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
         if s not in STRATEGIES:
             raise ScenarioError("strategies", "must name only " + ", ".join(STRATEGIES), s)
     levels = parse_levels(loads, scenario, "loads")
+    pulse = pfm_pulse(pfm)
     variants = {s: strategy_scenario(scenario, s, diode) for s in strategies}
     if "asynchronous" in variants:
         used_diode = variants["asynchronous"].low_side
@@ -397,13 +437,23 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
             target = cycle_mean(run, "vo")
     cache = {}
 
+    def fixed_row(lv):     # the diode-emulation row at lv, computed once
+        key = ("diode-emulation", lv.key, lv.value)
+        if key not in cache:
+            cache[key] = _row(light_base, "diode-emulation", lv, target, None)
+        return cache[key]
+
     def rows_for(strategy, lvls):
         out, guess = [], None
         for lv in lvls:
             key = (strategy, lv.key, lv.value)
             if key not in cache:
                 try:
-                    cache[key] = _row(variants[strategy], strategy, lv, target, guess)
+                    if strategy == "pfm":
+                        cache[key] = _light_row(light_base, lv, threshold, pulse,
+                                                lambda lv=lv: fixed_row(lv))
+                    else:
+                        cache[key] = _row(variants[strategy], strategy, lv, target, guess)
                 except (SimulationError, ScenarioError) as exc:
                     # one point without a steady state (or out of the duty's reach)
                     # must not hide the others: its row carries the reason
@@ -414,6 +464,12 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
                 guess = cache[key].duty
         return tuple(out)
 
+    if pulse is not None:
+        strategies = tuple(strategies) + ("pfm",)
+        light_base = variants.get("diode-emulation") or strategy_scenario(
+            scenario, "diode-emulation", diode)
+        threshold = target if target is not None else cycle_mean(
+            periodic_run(with_level(scenario, _own_level(scenario)))[1], "vo")
     rows = {s: rows_for(s, levels) for s in strategies}
     pres = None
     if profile is not None:
