@@ -10,7 +10,7 @@ from __future__ import annotations
 import os
 import sys
 
-from bucksim.cli.common import emit
+from bucksim.cli.common import emit, print_json
 from bucksim.errors import ScenarioError, SimulationError
 from bucksim.model.scenario import load_scenario
 
@@ -33,6 +33,10 @@ def register(subparsers):
     p.add_argument("--load", metavar="VALUE", nargs="+", action="extend",
                    help="load level(s): '0.3 A', '2 ohm', or a number in the scenario's "
                         "load unit (default: a spread around the boundary)")
+    p.add_argument("--pfm-peak-current", metavar="A",
+                              help="also say up to which load PFM with pulses of this peak current "
+                        "runs below the clock (diode emulation or asynchronous; the "
+                        "threshold is the scenario's own output voltage)")
     p.add_argument("--json", action="store_true", help="print the result as JSON on stdout")
     p.add_argument("--figure", metavar="PNG", help="also draw min iL vs load to this PNG")
     p.add_argument("--force", action="store_true", help="overwrite an existing --figure")
@@ -53,13 +57,45 @@ def _cmd_boundary(args) -> int:
     try:
         scenario = load_scenario(args.file)
         result = reverse_current(scenario, load=args.load)
+        pfm = _pfm_start(scenario, result, args.pfm_peak_current)
     except (ScenarioError, SimulationError, OSError) as exc:
         print(f"bucksim: error: {exc}", file=sys.stderr)
         return 1
-    emit(result, args.json)
+    if pfm is None:
+        emit(result, args.json)
+    elif args.json:
+        print_json({**result.to_dict(), "pfm": pfm})
+    else:   # the PFM line joins the report, above its closing caution
+        *body, caution = result.table().split("\n")
+        print("\n".join(body + [_pfm_text(pfm), "", caution]))
     if args.figure:
         from bucksim.plotting import save_png  # matplotlib, only when drawing
 
         save_png(result.plot(), args.figure)
         print(f"bucksim: wrote {args.figure}", file=sys.stderr)
     return 0
+
+
+def _pfm_start(scenario, result, peak):
+    """Where PFM hands over to the clock (:func:`bucksim.studies.light_rows.pfm_range`),
+    or None without ``--pfm-peak-current``."""
+    if peak is None:
+        return None
+    from bucksim.model.units import parse_quantity
+    from bucksim.studies.light_modes import check_light_strategy, light_threshold
+    from bucksim.studies.light_rows import pfm_range
+
+    check_light_strategy(scenario, "PFM")
+    ipk = parse_quantity(peak, "A", "--pfm-peak-current")
+    out = pfm_range(scenario, ipk, light_threshold(scenario, None))
+    return {"peak_current": ipk, **out}
+
+
+def _pfm_text(pfm) -> str:
+    from bucksim.model.units import format_si
+    line = (f"PFM with {format_si(pfm['peak_current'], 'A')} pulses runs below the clock up "
+            f"to Io = {format_si(pfm['closed_form'], 'A')} (closed form 0.5 Ipk (ton + toff) "
+            "fs, lossless charge balance)")
+    if pfm["frequency"] is None:
+        return line + f"; the exact stage has no PFM state there: {pfm['note']}"
+    return line + f"; the exact stage pulses at {format_si(pfm['frequency'], 'Hz')} there"

@@ -75,3 +75,22 @@ def test_bad_pfm_arguments_are_refused():
                 {"peak_current": "0.4 V"}):
         with pytest.raises(ScenarioError):
             compare(sc, ["5 mA"], pfm=bad)
+
+
+def test_boundary_says_where_pfm_hands_over_to_the_clock(capsys):
+    # PFM's pulses meet the clock at Io = 0.5 Ipk (ton + toff) fs (lossless charge
+    # balance, derived); the exact, lossy stage pulses within 2 % of the clock there
+    import json
+
+    from bucksim.cli.main import main
+    assert main(["boundary", str(RAIL), "--load", "10 mA", "--pfm-peak-current", "0.4 A",
+                 "--json"]) == 0
+    pfm = json.loads(capsys.readouterr().out)["pfm"]
+    sc = load_scenario(RAIL)
+    L, vin, vo, fs = sc.inductor.inductance, sc.supply.voltage, 3.3, sc.switching.frequency
+    expect = 0.5 * 0.4 * (L * 0.4 / (vin - vo) + L * 0.4 / vo) * fs
+    assert pfm["closed_form"] == pytest.approx(expect, rel=1e-3)    # vo: the settled 3.3 V
+    assert pfm["frequency"] == pytest.approx(fs, rel=0.02)
+    assert main(["boundary", str(RAIL.parent / "core_rail_1v0.toml"), "--pfm-peak-current",
+                 "2"]) == 1
+    assert "forced PWM" in capsys.readouterr().err
