@@ -16,8 +16,8 @@ from pathlib import Path
 
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
-from reference_sim import buck_scenario
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+from tests.references.stage_solver import buck_scenario
 
 import bucksim
 from bucksim.steady.solve import steady_state
