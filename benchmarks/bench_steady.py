@@ -17,10 +17,9 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
-from tests.references.stage_solver import buck_scenario
-
 import bucksim
 from bucksim.steady.solve import steady_state
+from tests.references.stage_solver import buck_scenario
 
 
 def brute_force_cycles(sc, target, tol=1e-9, chunk=500, limit=2_000_000):
