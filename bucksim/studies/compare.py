@@ -41,12 +41,12 @@ import math
 from dataclasses import dataclass
 
 from bucksim.analysis.loss_items import LOSS_ITEMS
-from bucksim.analysis.summary import Summary
-from bucksim.errors import ScenarioError, SimulationError
+from bucksim.errors import ScenarioError
 from bucksim.model.capacitance import as_plain
 from bucksim.model.parts import STRATEGIES, STRATEGY_NAMES, Diode, Mosfet
 from bucksim.model.scenario import DIODE_KEYS
 from bucksim.model.units import format_si, parse_quantity
+from bucksim.studies.compare_rows import Row, _RowMaker, loss_items  # noqa: F401 (loss_items: public here)
 from bucksim.studies.levels import (
     LoadLevel,
     load_kind,
@@ -56,13 +56,12 @@ from bucksim.studies.levels import (
     require_open_loop,
     with_level,
 )
-from bucksim.studies.light_rows import pfm_point, pfm_pulse
+from bucksim.studies.light_rows import pfm_pulse
 from bucksim.studies.profile import (
     ProfileResult,
     _profile_result,
     make_profile,
 )
-from bucksim.studies.regulate import regulated_point
 from bucksim.studies.reverse import CAUTION, cycle_mean
 from bucksim.threads import single_blas_thread
 
@@ -93,111 +92,6 @@ def strategy_scenario(scenario, strategy: str, diode: Diode | None = None):
 
 
 # ----------------------------------------------------------------------------- rows
-
-def loss_items(summary, strategy: str) -> dict:
-    """Loss items [W] of a summary (a :class:`~bucksim.analysis.summary.Summary` or its
-    ``to_dict()``), keys of :data:`LOSS_ITEMS`; they add up to ``power.loss``
-    (see :meth:`Summary.loss_items`)."""
-    if not isinstance(summary, Summary):
-        summary = Summary.from_dict(summary, strategy)
-    elif summary.strategy != strategy:
-        summary = dataclasses.replace(summary, strategy=strategy)
-    return summary.loss_items()
-
-
-@dataclass(frozen=True)
-class Row:
-    """One strategy at one load level, in steady state (SI units).
-
-    ``losses`` maps each item of :data:`LOSS_ITEMS` present to its power [W].
-    """
-
-    strategy: str
-    level: LoadLevel
-    duty: float
-    load_current: float
-    output_voltage: float
-    conduction_mode: str
-    reverse_current: bool
-    efficiency: float
-    input_power: float
-    output_power: float
-    loss: float
-    losses: dict
-    energy_balance_error: float
-    error: str | None = None
-    #: Pulses per second [Hz] (the clock for the fixed-frequency strategies) and the
-    #: output's peak-to-peak ripple [V].
-    switching_frequency: float = math.nan
-    output_ripple: float = math.nan
-    #: The PFM row only: ``"pfm"`` (``"pfm-audible"`` below 20 kHz) where PFM ran,
-    #: ``"pwm"`` where the controller ran fixed-frequency diode emulation instead.
-    light_mode: str = ""
-
-    @property
-    def ok(self) -> bool:
-        """True for an evaluated point; False when the point failed (see ``error``)."""
-        return self.error is None
-
-    @classmethod
-    def failed(cls, strategy, level, error: str) -> Row:
-        """A point that could not be evaluated: every metric NaN, ``error`` says why."""
-        nan = math.nan
-        return cls(strategy=strategy, level=level, duty=nan, load_current=nan,
-                   output_voltage=nan, conduction_mode="", reverse_current=False, efficiency=nan,
-                   input_power=nan, output_power=nan, loss=nan, losses={},
-                   energy_balance_error=nan, error=str(error))
-
-    def to_dict(self) -> dict:
-        return {"strategy": self.strategy, "load": self.level.to_dict(), "error": self.error,
-                "duty": self.duty,
-                "load_current": self.load_current, "output_voltage": self.output_voltage,
-                "conduction_mode": self.conduction_mode, "reverse_current": self.reverse_current,
-                "switching_frequency": self.switching_frequency,
-                "output_voltage_ripple": self.output_ripple, "light_mode": self.light_mode,
-                "efficiency": self.efficiency,
-                "power": {"input": self.input_power, "output": self.output_power,
-                          "loss": self.loss},
-                "losses": dict(self.losses),
-                "energy_balance_error": self.energy_balance_error}
-
-
-def _row(scenario, strategy, level, target, guess):
-    sc = with_level(scenario, level)
-    if target is None:
-        _, run = periodic_run(sc)
-    else:
-        sc, _, run = regulated_point(sc, target, guess)
-    return _row_of(strategy, level, sc.control.duty, run, run.summary(1),
-                   sc.switching.frequency)
-
-
-def _row_of(strategy, level, duty, run, s, frequency):
-    p = s.power
-    return Row(strategy=strategy, level=level, duty=duty,
-               load_current=cycle_mean(run, "io"), output_voltage=s.output_voltage.mean,
-               conduction_mode=s.conduction_mode, reverse_current=s.reverse_current,
-               efficiency=s.efficiency, input_power=p.input, output_power=p.output,
-               loss=p.input - p.output, losses=loss_items(s, strategy),
-               energy_balance_error=float(s.energy_balance_error),
-               switching_frequency=float(frequency), output_ripple=s.output_voltage.ripple)
-
-
-def _light_row(scenario, level, threshold, pulse, fixed_row):
-    """The ``"pfm"`` row: PFM where it runs, else ``fixed_row()``, the fixed-frequency
-    diode-emulation row (:func:`~bucksim.studies.light_rows.pfm_point`);
-    ``light_mode`` says which."""
-    res, fixed = pfm_point(scenario, level, threshold, pulse)
-    if fixed:
-        return dataclasses.replace(fixed_row(), strategy="pfm", light_mode="pwm")
-    if not res.success:
-        return Row.failed("pfm", level, f"PFM at {level}: {res.message}")
-    row = _row_of("pfm", level, res.on_time / res.period, res.run, res.summary,
-                  res.switching_frequency)
-    return dataclasses.replace(row, light_mode="pfm-audible" if res.audible else "pfm")
-
-
-# ----------------------------------------------------------------------------- profile
 
 @dataclass(frozen=True)
 class Comparison:
@@ -425,51 +319,16 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
         used_diode = variants["asynchronous"].low_side
     else:
         used_diode = strategy_scenario(scenario, "asynchronous", diode).low_side
-    target = None
-    if regulate:
-        if output_voltage is not None:
-            target = parse_quantity(output_voltage, "V", "output_voltage")
-            if not 0 < target < scenario.supply.voltage:
-                raise ScenarioError("output_voltage", f"must lie between 0 and the supply "
-                                    f"voltage {scenario.supply.voltage:g} V", output_voltage)
-        else:
-            _, run = periodic_run(with_level(scenario, _own_level(scenario)))
-            target = cycle_mean(run, "vo")
-    cache = {}
-
-    def fixed_row(lv):     # the diode-emulation row at lv, computed once
-        key = ("diode-emulation", lv.key, lv.value)
-        if key not in cache:
-            cache[key] = _row(light_base, "diode-emulation", lv, target, None)
-        return cache[key]
-
-    def rows_for(strategy, lvls):
-        out, guess = [], None
-        for lv in lvls:
-            key = (strategy, lv.key, lv.value)
-            if key not in cache:
-                try:
-                    if strategy == "pfm":
-                        cache[key] = _light_row(light_base, lv, threshold, pulse,
-                                                lambda lv=lv: fixed_row(lv))
-                    else:
-                        cache[key] = _row(variants[strategy], strategy, lv, target, guess)
-                except (SimulationError, ScenarioError) as exc:
-                    # one point without a steady state (or out of the duty's reach)
-                    # must not hide the others: its row carries the reason
-                    cache[key] = Row.failed(strategy, lv, f"{STRATEGY_NAMES[strategy]} at "
-                                            f"{lv}: {exc}")
-            out.append(cache[key])
-            if cache[key].ok:
-                guess = cache[key].duty
-        return tuple(out)
-
+    target = _target_voltage(scenario, regulate, output_voltage)
+    light = None
     if pulse is not None:
         strategies = tuple(strategies) + ("pfm",)
         light_base = variants.get("diode-emulation") or strategy_scenario(
             scenario, "diode-emulation", diode)
         threshold = target if target is not None else cycle_mean(
             periodic_run(with_level(scenario, _own_level(scenario)))[1], "vo")
+        light = (light_base, threshold, pulse)
+    rows_for = _RowMaker(variants, target, light)
     rows = {s: rows_for(s, levels) for s in strategies}
     pres = None
     if profile is not None:
@@ -478,6 +337,20 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
     return Comparison(title=scenario.title, strategies=tuple(strategies), levels=tuple(levels),
                       rows=rows, diode=used_diode, target_voltage=target, log=bool(log),
                       profile=pres)
+
+
+def _target_voltage(scenario, regulate, output_voltage):
+    """The output voltage every point holds [V] (None: the duty is kept)."""
+    if not regulate:
+        return None
+    if output_voltage is None:
+        _, run = periodic_run(with_level(scenario, _own_level(scenario)))
+        return cycle_mean(run, "vo")
+    target = parse_quantity(output_voltage, "V", "output_voltage")
+    if not 0 < target < scenario.supply.voltage:
+        raise ScenarioError("output_voltage", f"must lie between 0 and the supply "
+                            f"voltage {scenario.supply.voltage:g} V", output_voltage)
+    return target
 
 
 def _csv_cell(name, value) -> str:
