@@ -91,6 +91,7 @@ LOW_SIDE_DEVICES = ("mosfet", "diode")
 #: ``profile`` (load levels with their share of time) is read by
 #: ``bucksim compare`` from the file itself; it does not change a run.
 LOAD_KEYS = ("resistance", "current", "steps", "profile")
+PROFILE_KEYS = ("level", "share")
 LOAD_STEP_KEYS = ("time", "resistance", "current")
 CONTROL_KEYS = ("mode", "duty", "soft_start", "reference", "compensator", "slope_compensation",
                 "sense_gain", "ramp", "current_sense", "current_limit", "max_duty",
@@ -246,6 +247,9 @@ def _low_side(top):
 
 
 def _load(t):
+    # the profile is read by `bucksim compare`; its entries' keys are checked here, so
+    # a misspelt key is refused where the file is read, with its line
+    t.tables("profile", PROFILE_KEYS)
     steps = tuple(parts.LoadStep(time=s.quantity("time", "s"),
                                  resistance=s.quantity("resistance", "ohm", None),
                                  current=s.quantity("current", "A", None))
