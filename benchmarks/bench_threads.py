@@ -38,10 +38,13 @@ def point(r):
     s = dataclasses.replace(sc, load=dataclasses.replace(sc.load, resistance=r))
     return simulate_settled(s).summary()
 point(5.0)
-t = time.perf_counter()
-for k in range({n}):
-    point(5.0 + 0.01 * k)
-print((time.perf_counter() - t) / {n})
+best = float("inf")
+for rep in range(3):        # best of three passes: a 2-core machine's timing is noisy
+    t = time.perf_counter()
+    for k in range({n}):
+        point(5.0 + 0.01 * k)
+    best = min(best, (time.perf_counter() - t) / {n})
+print(best)
 """
 
 NEIGHBOUR = r"""
