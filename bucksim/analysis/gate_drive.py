@@ -133,7 +133,6 @@ def gate_drive_energy(scenario, stage, turn_ons: dict, t_start: float, t_stop: f
         times = np.asarray(turn_ons.get(name, ()), dtype=float)
         if m.qg == 0 or times.shape[0] == 0:
             continue
-        vin = np.array([stage.levels[stage.level_at(t)].vin for t in times])
         loop = m.qg * m.gate_voltage * times.shape[0]
         drv, ext, internal = loop_shares(m, ctl.driver_resistance)
         out["driver"] += drv * loop
@@ -143,7 +142,7 @@ def gate_drive_energy(scenario, stage, turn_ons: dict, t_start: float, t_stop: f
         if supply == "ideal-rail":
             out["input"] += loop
         elif supply == "input":
-            drawn = m.qg * float(np.sum(vin))
+            drawn = m.qg * float(np.sum(_supply_voltage(stage, times)))
             out["input"] += drawn
             out["regulator"] += drawn - loop
         else:
@@ -156,6 +155,13 @@ def gate_drive_energy(scenario, stage, turn_ons: dict, t_start: float, t_stop: f
         out["quiescent"] = e_q
         out["bias" if supply == "bias" else "input"] += e_q
     return out
+
+
+def _supply_voltage(stage, times: np.ndarray) -> np.ndarray:
+    """The supply's voltage [V] at each of ``times`` [s] (its operating levels)."""
+    starts = np.array([lev.time for lev in stage.levels])
+    volts = np.array([lev.vin for lev in stage.levels])
+    return volts[np.maximum(np.searchsorted(starts, times, side="right") - 1, 0)]
 
 
 def _supply_volt_seconds(stage, t_start: float, t_stop: float) -> float:
