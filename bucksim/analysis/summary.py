@@ -467,11 +467,12 @@ class Summary:
 
 
 def _drive_lines(g: GateDrive, format_si) -> list[str]:
-    w = lambda v: format_si(v, "W")  # noqa: E731
-    return [f"gate drive    driver {w(g.driver)}   gate resistors {w(g.resistors)}   MOSFET "
-            f"gates {w(g.internal)}   regulator {w(g.regulator)}   controller {w(g.quiescent)}",
-            f"              rail: {g.supply}; drawn from the input {w(g.input)}"
-            + (f", from the bias rail {w(g.bias)}" if g.supply == "bias" else "")]
+    w = {k: format_si(getattr(g, k), "W") for k in ("driver", "resistors", "internal",
+                                                     "regulator", "quiescent", "input", "bias")}
+    return [f"gate drive    driver {w['driver']}   gate resistors {w['resistors']}   MOSFET "
+            f"gates {w['internal']}   regulator {w['regulator']}   controller {w['quiescent']}",
+            f"              rail: {g.supply}; drawn from the input {w['input']}"
+            + (f", from the bias rail {w['bias']}" if g.supply == "bias" else "")]
 
 
 def _record(cls, data):

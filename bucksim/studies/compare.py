@@ -46,7 +46,7 @@ from bucksim.model.capacitance import as_plain
 from bucksim.model.parts import STRATEGIES, STRATEGY_NAMES, Diode, Mosfet
 from bucksim.model.scenario import DIODE_KEYS
 from bucksim.model.units import format_si, parse_quantity
-from bucksim.studies.compare_rows import Row, _RowMaker, loss_items  # noqa: F401 (loss_items: public here)
+from bucksim.studies.compare_rows import Row, RowMaker, loss_items  # noqa: F401 (loss_items: public here)
 from bucksim.studies.levels import (
     LoadLevel,
     load_kind,
@@ -328,7 +328,7 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
         threshold = target if target is not None else cycle_mean(
             periodic_run(with_level(scenario, _own_level(scenario)))[1], "vo")
         light = (light_base, threshold, pulse)
-    rows_for = _RowMaker(variants, target, light)
+    rows_for = RowMaker(variants, target, light)
     rows = {s: rows_for(s, levels) for s in strategies}
     pres = None
     if profile is not None:

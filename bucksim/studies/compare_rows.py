@@ -123,7 +123,7 @@ def _light_row(scenario, level, threshold, pulse, fixed_row):
 # ----------------------------------------------------------------------------- profile
 
 
-class _RowMaker:
+class RowMaker:
     """``self(strategy, levels)``: the rows of one strategy (or ``"pfm"``: ``light`` =
     (diode-emulation stage, threshold, pulse)), each point evaluated once and shot from
     the previous level's duty; a point that fails keeps its reason."""

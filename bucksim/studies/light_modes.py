@@ -136,8 +136,27 @@ def steady_base(scenario):
 
 # ----------------------------------------------------------------------------- PFM
 
+class ModeResult:
+    """What the light-load results share: ``success`` (``status == 0``), and the
+    output's ripple [V] and the efficiency read from their ``summary`` (NaN without
+    one)."""
+
+    @property
+    def success(self) -> bool:
+        return self.status == MODE_FOUND
+
+    @property
+    def output_ripple(self) -> float:
+        """Peak-to-peak output voltage over the orbit [V] (NaN without a solution)."""
+        return math.nan if self.summary is None else self.summary.output_voltage.ripple
+
+    @property
+    def efficiency(self) -> float:
+        return math.nan if self.summary is None else self.summary.efficiency
+
+
 @dataclass
-class PfmResult:
+class PfmResult(ModeResult):
     """The periodic steady state of PFM (:func:`pfm_steady_state`), scipy manners.
 
     Attributes
@@ -180,19 +199,6 @@ class PfmResult:
     run: object = None
     summary: object = None
     evaluations: int = 0
-
-    @property
-    def success(self) -> bool:
-        return self.status == MODE_FOUND
-
-    @property
-    def output_ripple(self) -> float:
-        """Peak-to-peak output voltage over the period [V] (NaN without a solution)."""
-        return math.nan if self.summary is None else self.summary.output_voltage.ripple
-
-    @property
-    def efficiency(self) -> float:
-        return math.nan if self.summary is None else self.summary.efficiency
 
 
 class _NoRoot(Exception):

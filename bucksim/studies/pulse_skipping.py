@@ -31,6 +31,7 @@ from bucksim.studies.light_modes import (
     MODE_FOUND,
     MODE_NO_PERIOD,
     MODE_NOT_AN_ORBIT,
+    ModeResult,
     _positive_number,
     _refuse,
     check_light_strategy,
@@ -53,7 +54,7 @@ _MIN_WINDOW = 20
 
 
 @dataclass
-class SkipResult:
+class SkipResult(ModeResult):
     """The periodic orbit of pulse skipping (:func:`pulse_skipping_steady_state`).
 
     Attributes
@@ -98,19 +99,6 @@ class SkipResult:
     periods_run: int = 0
     run: object = None
     summary: object = None
-
-    @property
-    def success(self) -> bool:
-        return self.status == MODE_FOUND
-
-    @property
-    def output_ripple(self) -> float:
-        """Peak-to-peak output voltage over whole patterns [V]."""
-        return math.nan if self.summary is None else self.summary.output_voltage.ripple
-
-    @property
-    def efficiency(self) -> float:
-        return math.nan if self.summary is None else self.summary.efficiency
 
 
 def _min_on_time(scenario, min_on_time):

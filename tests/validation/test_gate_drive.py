@@ -17,6 +17,7 @@ import pytest
 
 from bucksim import load_scenario
 from bucksim.errors import ScenarioError
+from bucksim.model.conduction import HIGH, LOW
 from bucksim.model.drive_parts import Controller, GateResistance
 from bucksim.model.scenario import loads_scenario
 from bucksim.simulation import simulate, simulate_settled
@@ -120,8 +121,8 @@ def test_skipped_pulses_charge_no_gate(core):
     run = simulate(sc)
     s = run.summary()
     w = s.window
-    n_hs = _turn_ons(run, w.start, w.stop, 0)     # HIGH
-    n_ls = _turn_ons(run, w.start, w.stop, 1)     # LOW
+    n_hs = _turn_ons(run, w.start, w.stop, HIGH)
+    n_ls = _turn_ons(run, w.start, w.stop, LOW)
     width = w.stop - w.start
     expected = (core.high_side.qg * n_hs + core.low_side.qg * n_ls) * core.supply.voltage
     assert s.gate_drive.input * width == pytest.approx(expected, rel=1e-12)

@@ -51,9 +51,11 @@ def test_gate_drive_follows_the_pulse_rate(asleep):
         f = row.switching_frequency
         beside = sum(row.losses[k] for k in ("gate_drive.driver", "gate_drive.resistors",
                                               "gate_drive.regulator"))
-        # the MOSFETs' internal gate resistance (1.5 and 1 ohm beside the driver's
-        # 2.5 ohm) takes its share of each loop's Qg Vg inside their switching items
-        inside = (hs.qg * hs.gate_voltage * 1.5 / 4.0 + ls.qg * ls.gate_voltage * 1.0 / 3.5) * f
+        # the MOSFETs' internal gate resistance takes its share of each loop's Qg Vg
+        # (beside the driver's; no external resistor here) inside their switching items
+        rd = sc.controller.driver_resistance
+        inside = sum(m.qg * m.gate_voltage * m.gate_resistance.internal
+                     / (rd + m.gate_resistance.internal) for m in (hs, ls)) * f
         assert beside + inside == pytest.approx((hs.qg + ls.qg) * vin * f, rel=1e-9), name
         assert row.losses["controller.quiescent"] == pytest.approx(120e-6 * vin, rel=1e-12)
 
