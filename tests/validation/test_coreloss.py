@@ -302,28 +302,42 @@ def test_no_core_data_gives_none():
 
 
 class _KnownSlope:
-    """Stands in for the run's slope evaluator with a known function f and f'."""
+    """Stands in for the run's slope evaluator with known derivatives (vectorised):
+    ``derivs[k - 1]`` is the k-th derivative of iL as a function of t."""
 
-    def __init__(self, f, g):
-        self.f, self.g = f, g
+    def __init__(self, *derivs):
+        self.derivs = derivs
 
-    def scalar(self, k, which):
-        return self.f if which == 0 else self.g
+    def derivative(self, seg, tau, order):
+        return np.vectorize(self.derivs[order - 1])(np.asarray(tau, dtype=float))
 
 
 def test_two_zeros_in_one_chunk_are_both_found():
-    # f = cos t - 1/2 on [-1.2, 1.2]: equal (negative) end values, but its
-    # maximum f(0) = 1/2 lies above zero, so it crosses at t = -pi/3 and pi/3
+    # f = cos t + c on [-1.2, 1.2]: equal end values; with c = -1/2 its maximum
+    # f(0) = 1/2 lies above zero, so it crosses at t = -pi/3 and pi/3
     # (cos(pi/3) = 1/2). Only the derivative's sign change reveals the pair.
-    from bucksim.analysis.coreloss import _zeros_in_chunk
+    from bucksim.analysis.coreloss_nodes import _chunk_zeros
 
-    a, b = -1.2, 1.2
-
-    def g(t):
-        return -math.sin(t)
-
+    a, b = np.array([-1.2]), np.array([1.2])
+    seg = np.zeros(1, dtype=np.int64)
     for offset, expected in ((-0.5, [-math.pi / 3, math.pi / 3]), (0.5, [])):
         def f(t, c=offset):
             return math.cos(t) + c
-        roots = _zeros_in_chunk(_KnownSlope(f, g), 0, a, b, f(a), f(b), g(a), g(b))
-        assert roots == pytest.approx(expected, abs=1e-14)
+        slope = _KnownSlope(f, lambda t: -math.sin(t), lambda t: -math.cos(t))
+        chunk, roots = _chunk_zeros(slope, seg, a, b, np.array([f(a[0])]),
+                                    np.array([f(b[0])]), np.array([math.sin(1.2)]),
+                                    np.array([-math.sin(1.2)]))
+        assert list(chunk) == [0] * len(expected)
+        assert list(roots) == pytest.approx(expected, abs=1e-14)
+
+
+def test_bracketed_roots_reach_the_spacing_of_doubles():
+    # Newton's step with bisection as the safeguard: a root of exp(t) - 2 from a
+    # bracket whose far end sends Newton's first step outside it (ln 2, exact
+    # to the last bits: math.log).
+    from bucksim.analysis.coreloss_nodes import _bracketed_roots
+
+    slope = _KnownSlope(lambda t: math.exp(t) - 2.0, math.exp)
+    root = _bracketed_roots(slope, np.zeros(1, dtype=np.int64), np.array([-30.0]),
+                            np.array([5.0]), np.array([math.exp(-30.0) - 2.0]), 1)
+    assert root[0] == pytest.approx(math.log(2.0), rel=4e-16)
