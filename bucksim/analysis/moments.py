@@ -98,6 +98,72 @@ class SegmentMoments:
         out[-1] = d
         return out
 
+    def _blocks(self, s: int, d: float):
+        """``(G, Q)``: the first and second moments' Van Loan blocks of system ``s`` over
+        ``d`` (memoised)."""
+        key = (s, d)
+        G, Q = self._first.get(key), self._second.get(key)
+        if G is None:
+            G = _van_loan(_drift_system(self.matrices[s]), d)[: self.n]
+            self._first[key] = G
+        if Q is None:
+            n, k = self.n, 2 * self.n
+            full = _van_loan(_kron_sum(_drift_system(self.matrices[s])), d)
+            rows = (np.arange(n)[:, None] * k + np.arange(n)[None, :]).ravel()
+            Q = full[rows]
+            self._second[key] = Q
+        return G, Q
+
+    def second_sums(self, systems, z0s, lengths, n_systems: int,
+                    time_scale: float = 0.0) -> np.ndarray:
+        """``sum int z z^T dt`` per system over many segments at once: ``S[s]`` sums
+        :meth:`second` over the segments of system ``s`` (``systems``, start states
+        ``z0s`` as rows, ``lengths`` [s]); shape ``(n_systems, m, m)``.
+
+        Segments of one system and length share their Van Loan blocks, so each such
+        group is one batched product; a periodic window of ``N`` periods has as many
+        groups as one period has segments. Lengths within 4 spacings of doubles at
+        ``time_scale`` [s] (the window's absolute time, whose rounding every
+        segment's length carries) count as one: the blocks are taken at the group's
+        first length, the terms linear in the length at each segment's own.
+        """
+        n, m = self.n, self.m
+        S = np.zeros((n_systems, m, m))
+        systems = np.asarray(systems, dtype=np.int64)
+        lengths = np.asarray(lengths, dtype=float)
+        z0s = np.asarray(z0s, dtype=float)
+        if systems.shape[0] == 0:
+            return S
+        # lengths binned by the tolerance: two in one bin are the same length
+        tol = 4.0 * np.spacing(max(abs(time_scale), float(np.max(np.abs(lengths)))))
+        bins = np.floor(lengths / tol)
+        order = np.lexsort((lengths, bins, systems))
+        s_o, d_o, b_o = systems[order], lengths[order], bins[order]
+        new = np.ones(order.shape[0], dtype=bool)
+        new[1:] = (s_o[1:] != s_o[:-1]) | (b_o[1:] != b_o[:-1])
+        bounds = np.append(np.flatnonzero(new), order.shape[0])
+        for u in range(bounds.shape[0] - 1):
+            sel = order[bounds[u]:bounds[u + 1]]
+            s, d = int(s_o[bounds[u]]), float(d_o[bounds[u]])
+            dd = lengths[sel]
+            G, Q = self._blocks(s, d)
+            z = z0s[sel]
+            x0 = z[:, :-1]
+            v0 = np.zeros((sel.shape[0], 2 * n))
+            v0[:, n:] = z @ self.matrices[s, :-1, :].T
+            y1 = v0 @ G.T
+            vv = (v0[:, :, None] * v0[:, None, :]).reshape(sel.shape[0], -1)
+            y2 = (vv @ Q.T).reshape(-1, n, n).sum(axis=0)
+            xd = x0 * dd[:, None]
+            ix = xd.sum(axis=0) + y1.sum(axis=0)
+            xy = x0.T @ y1
+            out = S[s]
+            out[:-1, :-1] += x0.T @ xd + xy + xy.T + y2
+            out[:-1, -1] += ix
+            out[-1, :-1] += ix
+            out[-1, -1] += dd.sum()
+        return S
+
     def second(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z z^T dt`` over a segment of system ``s`` starting at ``z0``."""
         s, d = int(s), float(d)

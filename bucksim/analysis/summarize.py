@@ -60,7 +60,7 @@ def summarize(run, cycles: int | None = None) -> Summary:
     idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
     ig = WindowIntegrals(run, idx, tau_b - tau_a, z_a, width)
     devices, loss = _conduction(run.stage, ig, width)
-    e_sw, node, drive = _switching(run, devices, t_start, t_stop)
+    e_sw, node, drive, pulses = _switching(run, devices, t_start, t_stop)
     loss += e_sw + node["high_side"] + node["low_side"]
     e_core = _core(run, devices, idx, tau_a, tau_b, width)
     loss += e_core
@@ -108,6 +108,7 @@ def summarize(run, cycles: int | None = None) -> Summary:
         input_voltage=None if side is None else side["voltage"],
         source_current=None if side is None else side["current"],
         gate_drive=gate_drive_record(run.scenario, drive, width),
+        pulse_rate=pulses / width,
         strategy=run.scenario.switching.strategy,
     )
 
@@ -195,12 +196,9 @@ class WindowIntegrals:
         self.run, self.width = run, width
         self.keep = keep = run.stage.plant_index
         mom = SegmentMoments(run.table.matrices[:, keep][:, :, keep])
-        m = keep.shape[0]
-        S = np.zeros((run.table.matrices.shape[0], m, m))
         systems = run.segments.system[idx]
-        for s, z0, d in zip(systems, z_a[:, keep], lengths, strict=True):
-            S[s] += mom.second(s, z0, d)
-        self.S = S
+        self.S = mom.second_sums(systems, z_a[:, keep], lengths, run.table.matrices.shape[0],
+                                 time_scale=float(run.segments.t0[idx[-1]]) if idx.size else 0.0)
         self.used = np.unique(systems)
 
     def integral(self, a: str, b: str | None = None) -> float:
@@ -277,8 +275,9 @@ def _switching(run, devices, t_start, t_stop):
     """Switching energies booked to the two switches: the formula kinds (drawn from
     the supply, dissipated in the switch) and the node's charge transfers (``coss``,
     from :func:`~bucksim.analysis.edges.node_transfers`; none without node capacitance).
-    Returns the formula kinds' total [J], the transfers and the gate drive's energies
-    (:func:`~bucksim.analysis.gate_drive.gate_drive_energy`)."""
+    Returns the formula kinds' total [J], the transfers, the gate drive's energies
+    (:func:`~bucksim.analysis.gate_drive.gate_drive_energy`) and the high side's
+    turn-ons."""
     width = t_stop - t_start
     sw = switching_energy(run, t_start, t_stop)
     drive = gate_drive_energy(run.scenario, run.stage, sw["turn_ons"], t_start, t_stop)
@@ -292,7 +291,7 @@ def _switching(run, devices, t_start, t_stop):
         energy += node[name]
         devices[name]["switching_loss"] = energy / width
         devices[name]["switching"] = {kind: e / width for kind, e in parts.items()}
-    return total, node, drive
+    return total, node, drive, sw["events"]["high_side_on"]
 
 
 def _core(run, devices, idx, tau_a, tau_b, width):

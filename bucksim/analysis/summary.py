@@ -18,25 +18,6 @@ from dataclasses import dataclass, field
 
 from bucksim.analysis.gate_drive import GateDrive
 from bucksim.analysis.loss_items import LOSS_ITEMS, item_label  # noqa: F401 (re-exported)
-from bucksim.model.input_parts import MAX_BANKS
-
-DEVICE_ORDER = ("high_side", "high_side_body_diode", "low_side", "low_side_body_diode",
-                "switch_node", "inductor", "output_capacitor", "supply", "input_capacitor",
-                *(f"input_capacitor_{k}" for k in range(2, MAX_BANKS + 1)), "input_filter",
-                "input_filter_damping")
-
-#: A mean current below this share of the same current's RMS (its natural
-#: scale: RMS >= |mean|) prints as 0. The exact integrals carry rounding of
-#: ~1e-15 of the scale, which a periodic state turns into "9.6 fA" of
-#: capacitor current; 1e-9 is far above that and far below any real offset.
-MEAN_ROUNDING = 1e-9
-
-
-def _mean_text(mean: float, rms: float, unit: str) -> str:
-    """The mean for the table: 0 when it is rounding of its natural scale."""
-    from bucksim.model.units import format_si
-
-    return format_si(0.0 if abs(mean) <= MEAN_ROUNDING * abs(rms) else mean, unit)
 
 
 def _plain(record) -> dict:
@@ -267,6 +248,8 @@ class Summary:
     transients : tuple of Transient
     zero_current_in_dead_time : bool  forced PWM: the current reached zero inside a
         dead time (a body diode stopped conducting); the mode stays ``"ccm"``
+    pulse_rate : float or None    high-side pulses a second over the window [Hz]: the
+        clock in fixed-frequency operation, fewer where pulses are skipped
     switch_node : SwitchNode or None  the node's capacitance, Qoss and Eoss at the
         input voltage (None without node capacitance)
     input_voltage : InputVoltage or None  the switch cell's input voltage (None
@@ -290,6 +273,7 @@ class Summary:
     energy_balance_error: float
     transients: tuple = ()
     zero_current_in_dead_time: bool = False
+    pulse_rate: float | None = field(default=None, metadata=_OPTIONAL)
     switch_node: SwitchNode | None = field(default=None, metadata={"optional": True})
     input_voltage: InputVoltage | None = field(default=None, metadata=_OPTIONAL)
     source_current: SourceCurrent | None = field(default=None, metadata=_OPTIONAL)
@@ -319,7 +303,7 @@ class Summary:
                    input_voltage=_record(InputVoltage, data.get("input_voltage")),
                    source_current=_record(SourceCurrent, data.get("source_current")),
                    gate_drive=_record(GateDrive, data.get("gate_drive")),
-                   strategy=strategy)
+                   pulse_rate=data.get("pulse_rate"), strategy=strategy)
 
     def with_transients(self, events) -> Summary:
         """This summary with its transients replaced by ``events`` (dicts or records)."""
@@ -395,69 +379,10 @@ class Summary:
         return summary_loss_figure(self, title=title, size=size)
 
     def table(self) -> str:
-        """A readable multi-line table with engineering units."""
-        from bucksim.model.units import format_si
-
-        w, vo, il, p = self.window, self.output_voltage, self.inductor_current, self.power
-        lines = [
-            f"window        {format_si(w.start, 's')} .. {format_si(w.stop, 's')} "
-            f"({w.cycles:.4g} cycles)",
-            f"mode          {self.conduction_mode.upper()}"
-            + ("   inductor current reverses" if self.reverse_current else ""),
-            f"output        mean {format_si(vo.mean, 'V')}   ripple {format_si(vo.ripple, 'V')} p-p"
-            f"   [{format_si(vo.min, 'V')}, {format_si(vo.max, 'V')}]",
-            f"inductor      mean {_mean_text(il.mean, il.rms, 'A')}   "
-            f"rms {format_si(il.rms, 'A')}"
-            f"   ripple {format_si(il.ripple, 'A')} p-p   [{format_si(il.min, 'A')}, "
-            f"{format_si(il.max, 'A')}]",
-            "",
-            f"{'device':<22}{'rms':>12}{'mean':>12}{'conduction':>13}{'switching':>13}",
-        ]
-        for name in DEVICE_ORDER:
-            if name not in self.devices:
-                continue
-            v = self.devices[name]
-            lines.append(f"{name:<22}{format_si(v.rms, 'A'):>12}"
-                         f"{_mean_text(v.mean, v.rms, 'A'):>12}"
-                         f"{format_si(v.conduction_loss, 'W'):>13}"
-                         f"{format_si(v.switching_loss, 'W'):>13}")
-        if self.switch_node is not None:
-            sn = self.switch_node
-            lines += [f"switch node   Cn {format_si(sn.capacitance, 'F')} (charge-equivalent,"
-                      f" 0 .. {format_si(sn.input_voltage, 'V')})",
-                      f"              high side Qoss {format_si(sn.high_side_qoss, 'C')}, Eoss "
-                      f"{format_si(sn.high_side_eoss, 'J')}   low side Qoss "
-                      f"{format_si(sn.low_side_qoss, 'C')}, Eoss "
-                      f"{format_si(sn.low_side_eoss, 'J')}"]
-            for side, v in (("high", sn.high_side_turn_on), ("low", sn.low_side_turn_on)):
-                if v is not None:
-                    lines.append(f"              {side} side turns on at node "
-                                 f"{format_si(v[1], 'V')} (min {format_si(v[0], 'V')}, "
-                                 f"max {format_si(v[2], 'V')})")
-        inductor = self.devices.get("inductor")
-        if inductor is not None and inductor.core_loss is not None:
-            lines.append(f"{'inductor core (iGSE)':<22}{'':>24}"
-                         f"{format_si(inductor.core_loss, 'W'):>13}")
-        if self.input_voltage is not None:
-            v, src = self.input_voltage, self.source_current
-            lines += [f"input         cell mean {format_si(v.mean, 'V')}   ripple "
-                      f"{format_si(v.ripple, 'V')} p-p   source current mean "
-                      f"{format_si(src.mean, 'A')}, rms {format_si(src.rms, 'A')}"]
-        if self.gate_drive is not None:
-            lines += _drive_lines(self.gate_drive, format_si)
-        lines += [
-            "",
-            f"power         in {format_si(p.input, 'W')}   out {format_si(p.output, 'W')}"
-            f"   loss {format_si(p.loss, 'W')}"
-            + ("" if p.source_loss is None else
-               f"   (source resistance {format_si(p.source_loss, 'W')}, outside)")
-            + ("" if p.bias is None else f"   bias rail {format_si(p.bias, 'W')} (in)"),
-            f"efficiency    {100 * self.efficiency:.3f} %",
-            f"energy balance error {self.energy_balance_error:.2e} (relative)",
-        ]
-        if self.transients:
-            lines += ["", _transient_table(self.transients)]
-        return "\n".join(lines)
+        """A readable multi-line table with engineering units
+        (:func:`bucksim.analysis.summary_table.summary_table`)."""
+        from bucksim.analysis.summary_table import summary_table
+        return summary_table(self)
 
     def __str__(self):
         return self.table()
@@ -466,30 +391,5 @@ class Summary:
         return f"<Summary efficiency={self.efficiency:.5f} {self.conduction_mode}>"
 
 
-def _drive_lines(g: GateDrive, format_si) -> list[str]:
-    w = {k: format_si(getattr(g, k), "W") for k in ("driver", "resistors", "internal",
-                                                     "regulator", "quiescent", "input", "bias")}
-    return [f"gate drive    driver {w['driver']}   gate resistors {w['resistors']}   MOSFET "
-            f"gates {w['internal']}   regulator {w['regulator']}   controller {w['quiescent']}",
-            f"              rail: {g.supply}; drawn from the input {w['input']}"
-            + (f", from the bias rail {w['bias']}" if g.supply == "bias" else "")]
-
-
 def _record(cls, data):
     return None if data is None else cls(**data)
-
-
-def _transient_table(events) -> str:
-    from bucksim.model.units import format_si
-
-    lines = [f"{'event':<13}{'at':>10}{'vo max':>11}{'vo min':>11}{'over':>8}"
-             f"{'under':>8}{'settles in':>12}{'iL peak':>10}"]
-    for e in events:
-        st = e.settling_time
-        st = "not yet" if not e.settled else ("in band" if st == 0.0 else format_si(st, "s"))
-        under = "" if e.event == "start-up" else f"{e.undershoot_percent:.2f}%"
-        lines.append(f"{e.event:<13}{format_si(e.time, 's'):>10}"
-                     f"{format_si(e.vo_max, 'V'):>11}{format_si(e.vo_min, 'V'):>11}"
-                     f"{e.overshoot_percent:>7.2f}%{under:>8}{st:>12}"
-                     f"{format_si(e.il_peak, 'A'):>10}")
-    return "\n".join(lines)
