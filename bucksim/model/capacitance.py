@@ -72,10 +72,11 @@ def parse_capacitance(value, key: str):
                                 '(numbers in V and F, or strings such as "1.2 nF")', pair)
         v = parse_quantity(pair[0], "V", f"{key}[{i}][0]")
         c = parse_quantity(pair[1], "F", f"{key}[{i}][1]")
-        if not (math.isfinite(v) and math.isfinite(c)):
-            raise ScenarioError(f"{key}[{i}]", "must be finite", pair)
+        for j, (x, unit) in enumerate(((v, "V"), (c, "F"))):
+            if not math.isfinite(x):      # the element itself is named, as for a unit
+                raise ScenarioError(f"{key}[{i}][{j}]", f"must be finite [{unit}]", pair[j])
         if c < 0:
-            raise ScenarioError(f"{key}[{i}]", "capacitance must be >= 0 F", pair)
+            raise ScenarioError(f"{key}[{i}][1]", "capacitance must be >= 0 F", pair[1])
         if vs and v <= vs[-1]:
             raise ScenarioError(f"{key}[{i}]", f"voltages must increase strictly (after "
                                 f"{vs[-1]:g} V)", pair)

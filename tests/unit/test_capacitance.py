@@ -31,12 +31,13 @@ def test_a_table_is_read_and_written_back(tmp_path):
 
 @pytest.mark.parametrize("value, key, words", [
     ("[[0, 1e-9], [0, 2e-9]]", "high_side.coss[1]", "increase strictly"),
-    ("[[0, -1e-9]]", "high_side.coss[0]", ">= 0 F"),
+    ("[[0, -1e-9]]", "high_side.coss[0][1]", ">= 0 F"),
     ("[[0, 1e-9, 3]]", "high_side.coss[0]", "pair"),
     ('[[0, "1 nH"]]', "high_side.coss[0][1]", "F"),
     ("[]", "high_side.coss", "at least one"),
     ('[[0, 1e-9], "x"]', "high_side.coss[1]", "pair"),
-    ("[[0, inf]]", "high_side.coss[0]", "finite"),
+    ("[[0, inf]]", "high_side.coss[0][1]", "finite"),
+    ("[[nan, 1e-9]]", "high_side.coss[0][0]", "finite"),
 ])
 def test_bad_tables_are_refused_with_file_line_and_key(tmp_path, value, key, words):
     text = edit('coss = "200 pF"', f"coss = {value}")
