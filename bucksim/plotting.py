@@ -28,7 +28,7 @@ import numpy as np
 STATE_COLOURS = ("#c8553d", "#2e86ab", "#f2a541", "#8e6c8a", "#d9d9d9", "#9bc49b")
 STATE_LABELS = ("high side on", "low side on", "low-side diode", "high-side diode",
                 "idle (both off)", "node open (swing, ring)")
-STRATEGY_STYLE = {"pfm": ("#7b5ea7", "D", ":"),
+STRATEGY_STYLE = {"pfm": ("#7b5ea7", "D", ":"), "pulse-skipping": ("#b5651d", "v", "-."),
                   "asynchronous": ("#8c5e34", "s", "-"),
                   "forced-pwm": ("#3b6ea5", "o", "-"),
                   "diode-emulation": ("#4f9d69", "^", "--")}

@@ -63,8 +63,12 @@ def efficiency_figure(comparison, log=None, *, size=(8.0, 5.0)):
 
 def _operating_word(row) -> str:
     """What a compare row's operating mode is called on the efficiency figure."""
+    if row.light_mode.startswith("pfm"):
+        return "PFM"
+    if row.light_mode.startswith("skip"):
+        return "pulse skipping"
     if row.light_mode:
-        return "PFM" if row.light_mode.startswith("pfm") else "fixed-frequency"
+        return "fixed-frequency"
     if row.conduction_mode == "dcm":
         return "DCM"
     return "CCM, current reverses" if row.reverse_current else "CCM"

@@ -30,6 +30,7 @@ from bucksim.analysis.budget_ring import lc_dead_time_integral, node_parts, slew
 from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.analysis.gate_drive import closed_form as gate_drive_closed_form
 from bucksim.model.parts import Mosfet
+from bucksim.model.pulse_limits import open_loop_on_time
 from bucksim.model.stage import node_capacitance
 from bucksim.threads import single_blas_thread
 
@@ -125,7 +126,8 @@ def _at_duty(scenario, point) -> dict:
     """``point(scenario, D)`` at the open-loop duty, or in closed loop at the duty that
     puts ``Vo`` on ``control.reference`` (bisection: ``Vo`` rises with ``D``)."""
     if scenario.control.duty is not None:
-        return point(scenario, scenario.control.duty)
+        ctl, T = scenario.control, scenario.period
+        return point(scenario, float(open_loop_on_time(ctl, ctl.duty * T)) / T)
     target = scenario.control.reference
     lo, hi = 0.0, scenario.control.max_duty
     for _ in range(80):

@@ -34,9 +34,12 @@ def register(subparsers):
                    help="load level(s): '0.3 A', '2 ohm', or a number in the scenario's "
                         "load unit (default: a spread around the boundary)")
     p.add_argument("--pfm-peak-current", metavar="A",
-                              help="also say up to which load PFM with pulses of this peak current "
+                   help="also say up to which load PFM with pulses of this peak current "
                         "runs below the clock (diode emulation or asynchronous; the "
                         "threshold is the scenario's own output voltage)")
+    p.add_argument("--skip-min-on-time", metavar="S",
+                   help="also say up to which load pulse skipping with pulses of this "
+                        "on-time skips clock edges (same stages and threshold)")
     p.add_argument("--json", action="store_true", help="print the result as JSON on stdout")
     p.add_argument("--figure", metavar="PNG", help="also draw min iL vs load to this PNG")
     p.add_argument("--force", action="store_true", help="overwrite an existing --figure")
@@ -57,17 +60,19 @@ def _cmd_boundary(args) -> int:
     try:
         scenario = load_scenario(args.file)
         result = reverse_current(scenario, load=args.load)
-        pfm = _pfm_start(scenario, result, args.pfm_peak_current)
+        modes = _light_starts(scenario, args.pfm_peak_current, args.skip_min_on_time)
     except (ScenarioError, SimulationError, OSError) as exc:
         print(f"bucksim: error: {exc}", file=sys.stderr)
         return 1
-    if pfm is None:
+    if not modes:
         emit(result, args.json)
     elif args.json:
-        print_json({**result.to_dict(), "pfm": pfm})
-    else:   # the PFM line joins the report, above its closing caution
+        print_json({**result.to_dict(), **modes})
+    else:   # the light-load lines join the report, above its closing caution
         *body, caution = result.table().split("\n")
-        print("\n".join(body + [_pfm_text(pfm), "", caution]))
+        lines = [_pfm_text(modes["pfm"])] if "pfm" in modes else []
+        lines += [_skip_text(modes["pulse_skipping"])] if "pulse_skipping" in modes else []
+        print("\n".join(body + lines + ["", caution]))
     if args.figure:
         from bucksim.plotting import save_png  # matplotlib, only when drawing
 
@@ -76,19 +81,36 @@ def _cmd_boundary(args) -> int:
     return 0
 
 
-def _pfm_start(scenario, result, peak):
-    """Where PFM hands over to the clock (:func:`bucksim.studies.light_rows.pfm_range`),
-    or None without ``--pfm-peak-current``."""
-    if peak is None:
-        return None
+def _light_starts(scenario, peak, min_on) -> dict:
+    """Where PFM hands over to the clock (:func:`bucksim.studies.light_rows.pfm_range`)
+    and where pulse skipping stops skipping (:func:`~bucksim.studies.light_rows.skip_range`),
+    for the options given: ``{"pfm": ..., "pulse_skipping": ...}``."""
     from bucksim.model.units import parse_quantity
     from bucksim.studies.light_modes import check_light_strategy, light_threshold
-    from bucksim.studies.light_rows import pfm_range
+    from bucksim.studies.light_rows import pfm_range, skip_range
 
-    check_light_strategy(scenario, "PFM")
-    ipk = parse_quantity(peak, "A", "--pfm-peak-current")
-    out = pfm_range(scenario, ipk, light_threshold(scenario, None))
-    return {"peak_current": ipk, **out}
+    out = {}
+    if peak is not None:
+        check_light_strategy(scenario, "PFM")
+        ipk = parse_quantity(peak, "A", "--pfm-peak-current")
+        out["pfm"] = {"peak_current": ipk,
+                      **pfm_range(scenario, ipk, light_threshold(scenario, None))}
+    if min_on is not None:
+        check_light_strategy(scenario, "pulse skipping")
+        t_min = parse_quantity(min_on, "s", "--skip-min-on-time")
+        out["pulse_skipping"] = {"min_on_time": t_min,
+                                 **skip_range(scenario, t_min, light_threshold(scenario, None))}
+    return out
+
+
+def _skip_text(skip) -> str:
+    from bucksim.model.units import format_si
+    line = (f"pulse skipping with {format_si(skip['min_on_time'], 's')} pulses skips clock "
+            f"edges up to Io = {format_si(skip['closed_form'], 'A')} (closed form 0.5 Ip "
+            "(t_min + L Ip / Vo) fs, lossless charge balance)")
+    if skip["exact"] is None:
+        return line + f"; on the exact stage: {skip['note']}"
+    return line + f"; on the exact stage up to {format_si(skip['exact'], 'A')}"
 
 
 def _pfm_text(pfm) -> str:

@@ -97,6 +97,9 @@ def register(subparsers):
                           "stage, idle until the output falls to the held voltage")
     pfm.add_argument("--pfm-on-time", metavar="S",
                      help="add a PFM row with pulses of this fixed on-time instead")
+    p.add_argument("--skip-min-on-time", metavar="S",
+                   help="add a pulse-skipping row: pulses of this on-time at the clock edges "
+                        "where the output is below the held voltage (diode-emulation stage)")
     p.add_argument("--csv", metavar="OUT.csv", help="write every row to a CSV file")
     p.add_argument("--figure", metavar="PNG", help="draw efficiency vs load")
     p.add_argument("--breakdown", metavar="PNG",
@@ -141,7 +144,9 @@ def _cmd_compare(args) -> int:
                {"on_time": args.pfm_on_time} if args.pfm_on_time else None)
         result = compare(scenario, levels, diode=diode, profile=profile,
                          output_voltage=args.output_voltage, regulate=not args.fixed_duty,
-                         log=args.log, pfm=pfm)
+                         log=args.log, pfm=pfm,
+                         pulse_skipping=({"min_on_time": args.skip_min_on_time}
+                                         if args.skip_min_on_time else None))
     except (ScenarioError, SimulationError) as exc:
         return refuse(exc)
     except OSError as exc:

@@ -71,7 +71,7 @@ def integrate_closed_loop(stage, compensator, x0=None, state: ControllerState | 
     common = dict(peak=peak, ramp_v=float(ctl.ramp), se=float(ctl.slope_compensation),
                   i_limit=np.inf if ctl.current_limit is None else float(ctl.current_limit),
                   max_duty=float(ctl.max_duty), min_on=float(ctl.min_on_time),
-                  skip=bool(ctl.pulse_skipping))
+                  skip=bool(ctl.pulse_skipping), pfm_peak=float(ctl.pfm_peak_current))
     if stage.analog:
         Cu = np.array([stage.control_output(lv) for lv in range(len(stage.levels))])
         Cthr = -Cu

@@ -71,6 +71,7 @@ from bucksim.engine.period import (
     open_segment,
     phase_span,
     segment_stop,
+    skipped_low_gate,
     start_or_end_hold,
     system_index,
 )
@@ -134,6 +135,7 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                 p += 1
                 continue
             t = t_ph
+            gate = skipped_low_gate(gate, p, t_on_max, strategy, tab.Cls[level], z, node)
             cond = conduction_for(gate, strategy, z[0], node)
             whole_ok = nominal[p] > 0.0 and abs(t_ph_end - t_ph - nominal[p]) <= tol
             while t < t_ph_end:

@@ -28,6 +28,7 @@ from bucksim.engine.tables import (
     phase_exponentials,
     system_guards,
 )
+from bucksim.model.pulse_limits import open_loop_on_time
 
 __all__ = ["EngineResult", "integrate", "build_table", "TransitionTable", "duty_schedule"]
 
@@ -91,15 +92,18 @@ def duty_schedule(scenario, n_cycles: int) -> np.ndarray:
 
     A constant duty gives a one-element array. With ``control.soft_start``
     the duty rises linearly from 0 at t = 0 to ``control.duty`` at
-    ``soft_start``, evaluated at the start of each cycle.
+    ``soft_start``, evaluated at the start of each cycle. An on-time below
+    ``control.min_on_time`` is raised to it, or skipped with
+    ``control.pulse_skipping`` (:func:`~bucksim.model.pulse_limits.open_loop_on_time`).
     """
     T = scenario.period
-    duty = scenario.control.duty
-    ss = scenario.control.soft_start
+    ctl = scenario.control
+    duty = ctl.duty
+    ss = ctl.soft_start
     if ss <= 0:
-        return np.array([duty * T])
+        return np.atleast_1d(open_loop_on_time(ctl, duty * T))
     start = np.arange(n_cycles) * T
-    return duty * T * np.minimum(1.0, start / ss)
+    return open_loop_on_time(ctl, duty * T * np.minimum(1.0, start / ss))
 
 
 def phase_durations(scenario, on_time: float) -> list[float]:
@@ -221,6 +225,7 @@ class LoopArgs:
     max_duty: float = 1.0
     min_on: float = 0.0
     skip: bool = False
+    pfm_peak: float = 0.0
     n_modes: int = 1
     i_w: int = -1
     w_lo: float = -np.inf
@@ -248,7 +253,8 @@ class LoopArgs:
             int(self.control), bool(self.peak), float(self.reference), float(self.soft_start),
             float(self.sense_gain), float(self.Dd), int(self.duty_bits), float(self.thr_ramp),
             float(self.ramp_v), float(self.ri), float(self.se), float(self.i_limit),
-            float(self.max_duty), float(self.min_on), bool(self.skip), int(self.n_modes),
+            float(self.max_duty), float(self.min_on), bool(self.skip), float(self.pfm_peak),
+            int(self.n_modes),
             int(self.i_w), float(self.w_lo), float(self.w_hi), e_band)
         e_w1 = e_w.reshape(1, m)
         params = ControllerParams(

@@ -65,7 +65,9 @@ def _digital_decision(cs, ctl, cst, tc, T, z, level, wnew):
         return dty * T, 0.0, False, 0.0, 0.0, u
     u = _compensate(ctl.Ad, ctl.Bd, ctl.Cd, cs.Dd, cst.w, e, 0.0, np.inf, wnew)
     t_on_max = cs.max_duty * T
-    if cs.skip and u / cs.ri <= z[0]:
+    # pulse skipping: no pulse the current would not need; PFM at the clock: none
+    # while the loop asks for a smaller peak than the PFM pulse's
+    if (cs.skip and u / cs.ri <= z[0]) or u / cs.ri < cs.pfm_peak:
         t_on_max = 0.0
     return t_on_max, min(cs.min_on, t_on_max), True, u / cs.ri, cs.se / cs.ri, u
 
@@ -131,6 +133,27 @@ def phase_span(p, tc, t_next, blank, t_on_max, tripped, t_off, prog, e2, e3, cmp
     if p == 3:
         return GATE_LOW, e2, e3, False, np.inf, t_off, e2, e3
     return GATE_OFF, e3, t_next, False, np.inf, t_off, e2, e3
+
+
+@njit(inline="always")
+def skipped_low_gate(gate, p, t_on_max, strategy, cls, z, node):
+    """The gate of phase ``p`` in a period without a pulse (``t_on_max`` 0: skipped).
+
+    In diode emulation the low side only carries on a freewheeling current: after
+    a skipped clock edge it turns on again where its diode conducts (``iL > 0``,
+    and with node capacitance the node at the diode's clamp, row ``cls``), never
+    onto an idle or ringing node, where a controller that fired no high-side pulse
+    fires no low-side one (common practice). Read from the state, not from the
+    previous segment, so that a run cut into chunks decides alike. Forced PWM
+    keeps its low side on whenever the high side is off.
+    """
+    if p != 3 or t_on_max > 0.0 or strategy != EMULATION:
+        return gate
+    freewheeling = z[0] > 0.0
+    if node:
+        m = z.shape[0]
+        freewheeling = freewheeling and _dot(cls, z) <= 1e-12 * (abs(cls[m - 1]) + 1.0)
+    return gate if freewheeling else GATE_OFF
 
 
 @njit(inline="always")

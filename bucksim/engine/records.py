@@ -124,6 +124,7 @@ class ControllerSettings(NamedTuple):
     max_duty: float
     min_on: float           #: minimum on-time, also the blanking time [s]
     skip: bool              #: pulse skipping
+    pfm_peak: float         #: digital peak-current mode: no pulse below this demand [A]
     n_modes: int            #: 2 with an analog integrator's anti-windup, else 1
     i_w: int                #: index of the analog integrator state (-1: none)
     w_lo: float             #: integrator limits [V]

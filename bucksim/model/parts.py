@@ -16,12 +16,14 @@ from bucksim.model.capacitance import CapacitanceTable, is_positive
 from bucksim.model.checks import finite, non_negative, positive
 from bucksim.model.drive_parts import Controller, GateResistance, check_drive
 from bucksim.model.input_parts import InputCapacitor, InputFilter, check_input_side
+from bucksim.model.pulse_limits import check_pfm, fitted_on_time
 
 STRATEGIES = ("asynchronous", "forced-pwm", "diode-emulation")
 #: Readable name of each strategy, for tables and figures (and of the light-load mode
 #: that ``compare`` evaluates beside them, PFM on the diode-emulation stage).
 STRATEGY_NAMES = {"asynchronous": "asynchronous", "forced-pwm": "forced PWM",
-                  "diode-emulation": "diode emulation", "pfm": "PFM"}
+                  "diode-emulation": "diode emulation", "pfm": "PFM",
+                  "pulse-skipping": "pulse skipping"}
 CONTROL_MODES = ("open-loop", "voltage-mode", "peak-current")
 IMPLEMENTATIONS = ("digital", "analog")
 START_MODES = ("rest", "steady-state")
@@ -315,8 +317,9 @@ class Control:
     ``ramp`` (PWM ramp peak-to-peak [V], voltage mode), ``current_sense`` (Ri
     [V/A]) and ``slope_compensation`` [V/s] (peak-current mode),
     ``current_limit`` [A] (cycle by cycle), ``max_duty``, ``min_on_time`` [s],
-    ``pulse_skipping``, ``delay`` (computation delay, periods) and
-    ``duty_bits`` (duty resolution; 0 = exact).
+    ``pulse_skipping``, ``pfm_peak_current`` [A] (PFM at the clock:
+    :mod:`bucksim.model.pulse_limits`), ``delay`` (computation delay, periods)
+    and ``duty_bits`` (duty resolution; 0 = exact).
 
     ``implementation`` is ``"digital"`` (the compensator sampled once per
     period, Tustin-discretised) or ``"analog"`` (the compensator as extra
@@ -337,6 +340,7 @@ class Control:
     max_duty: float = 0.95
     min_on_time: float = 0.0
     pulse_skipping: bool = False
+    pfm_peak_current: float = 0.0
     delay: int = 0
     duty_bits: int = 0
     implementation: str = "digital"
@@ -379,6 +383,7 @@ class Control:
         if self.reference is not None:
             _positive("control.reference", self.reference, "V")
         _non_negative("control.slope_compensation", self.slope_compensation, "V/s")
+        check_pfm(self)
         if self.mode == "peak-current" and self.current_sense <= 0:
             raise ScenarioError("control.current_sense", "is required in peak-current mode "
                                 "(current-sense gain Ri > 0 V/A)", self.current_sense)
@@ -468,7 +473,7 @@ class Scenario:
             raise ScenarioError("switching.dead_time", f"must fit in the period: falling + "
                                 f"rising < T = {T:.6g} s", list(self.switching.dead_time))
         if self.control.mode == "open-loop" and sync:
-            on = self.control.duty * T
+            on = fitted_on_time(self.control, T, tf + tr)
             if on + tf + tr >= T:
                 raise ScenarioError("switching.dead_time",
                                     f"must fit in the off-time: falling + rising < (1 - duty) T "

@@ -95,7 +95,8 @@ PROFILE_KEYS = ("level", "share")
 LOAD_STEP_KEYS = ("time", "resistance", "current")
 CONTROL_KEYS = ("mode", "duty", "soft_start", "reference", "compensator", "slope_compensation",
                 "sense_gain", "ramp", "current_sense", "current_limit", "max_duty",
-                "min_on_time", "pulse_skipping", "delay", "duty_bits", "implementation")
+                "min_on_time", "pulse_skipping", "pfm_peak_current", "delay", "duty_bits",
+                "implementation")
 RUN_KEYS = ("duration", "cycles", "start", "summary_cycles", "initial_current",
             "initial_voltage")
 
@@ -274,6 +275,7 @@ def _control(t):
                          max_duty=t.quantity("max_duty", "", 0.95),
                          min_on_time=t.quantity("min_on_time", "s", 0.0),
                          pulse_skipping=t._get("pulse_skipping", False, "true or false"),
+                         pfm_peak_current=t.quantity("pfm_peak_current", "A", 0.0),
                          delay=t.integer("delay", 0),
                          duty_bits=t.integer("duty_bits", 0),
                          implementation=t.string("implementation", "digital"))
@@ -338,12 +340,18 @@ def scenario_to_dict(scenario):
                           "reference": ctl.reference,
                           "compensator": copy.deepcopy(ctl.compensator),
                           "slope_compensation": ctl.slope_compensation,
-                          **({} if ctl.mode == "open-loop" else {
+                          # an open loop's pulse limits, where set (they shape its pulses)
+                          **({k: v for k, v in (("min_on_time", ctl.min_on_time),
+                                                ("pulse_skipping", ctl.pulse_skipping))
+                              if v} if ctl.mode == "open-loop" else {
                               "sense_gain": ctl.sense_gain, "ramp": ctl.ramp,
                               "current_sense": ctl.current_sense,
                               "current_limit": ctl.current_limit, "max_duty": ctl.max_duty,
                               "min_on_time": ctl.min_on_time,
-                              "pulse_skipping": ctl.pulse_skipping, "delay": ctl.delay,
+                              "pulse_skipping": ctl.pulse_skipping,
+                              **({"pfm_peak_current": ctl.pfm_peak_current}
+                                 if ctl.pfm_peak_current else {}),
+                              "delay": ctl.delay,
                               "duty_bits": ctl.duty_bits,
                               "implementation": ctl.implementation})})
     r = s.run

@@ -34,6 +34,7 @@ from scipy.linalg import expm
 
 from bucksim.engine.driver import build_table, integrate, phase_durations
 from bucksim.model.input_network import input_network
+from bucksim.model.pulse_limits import open_loop_on_time
 from bucksim.model.stage import (
     HIGH_DIODE,
     IDLE,
@@ -57,8 +58,9 @@ class PeriodMap:
         self._phases = {}
         self.evaluations = 0
         T = self.scenario.period
-        bounds = np.cumsum([0.0] + phase_durations(self.scenario,
-                                                   self.scenario.control.duty * T))
+        self.on_time = float(open_loop_on_time(self.scenario.control,
+                                               self.scenario.control.duty * T))
+        bounds = np.cumsum([0.0] + phase_durations(self.scenario, self.on_time))
         self._edges = bounds
         self._evented = zero_current_states(self.scenario.switching.strategy)
 
@@ -168,9 +170,10 @@ def initial_guess(scenario) -> np.ndarray:
     if r in (None, np.inf) and scenario.load.current > 0 and op["vo"] > 0:
         r = op["vo"] / scenario.load.current    # a current sink: its resistance at Vo
     if scenario.switching.strategy != "forced-pwm" and r not in (None, np.inf) and r > 0:
-        D = scenario.control.duty
+        D = float(open_loop_on_time(scenario.control, scenario.control.duty * scenario.period)
+                  ) / scenario.period
         K = 2.0 * scenario.inductor.inductance * scenario.switching.frequency / r
-        if K < 1.0 - D:
+        if 0.0 < D and K < 1.0 - D:     # (D = 0: every pulse skipped, nothing to guess)
             M = 2.0 / (1.0 + np.sqrt(1.0 + 4.0 * K / D ** 2))
             # the node rings about the output in the idle interval
             vo = M * scenario.supply.voltage
@@ -211,7 +214,7 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
     # a period that starts with the high side on never reads the node's start value
     # (the channel sets the node): shoot on [iL, vC] and carry vn along, so that
     # Newton's damping is not judged on a state the map does not depend on
-    reduced = pmap.stage.node and pmap.scenario.control.duty > 0
+    reduced = pmap.stage.node and pmap.on_time > 0
     iv, node = pmap.stage.i_node, {"vn": x[pmap.stage.i_node]}
 
     def full(xr):

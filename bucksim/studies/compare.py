@@ -56,7 +56,7 @@ from bucksim.studies.levels import (
     require_open_loop,
     with_level,
 )
-from bucksim.studies.light_rows import pfm_pulse
+from bucksim.studies.light_rows import pfm_pulse, skip_pulse
 from bucksim.studies.profile import (
     ProfileResult,
     _profile_result,
@@ -268,7 +268,8 @@ class Comparison:
 
 @single_blas_thread
 def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
-            regulate=True, strategies=STRATEGIES, log=False, pfm=None) -> Comparison:
+            regulate=True, strategies=STRATEGIES, log=False, pfm=None,
+            pulse_skipping=None) -> Comparison:
     """Efficiency and losses of the three strategies across load, on the same parts.
 
     Parameters
@@ -300,6 +301,15 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
         the others'). Each row carries its ``switching_frequency`` and
         ``output_ripple``; a load PFM cannot hold (no idle interval left) is a
         failed row saying so.
+    pulse_skipping : dict, optional
+        Add a ``"pulse-skipping"`` row: ``{"min_on_time": s}``, pulses of that
+        on-time at the clock edges where the output is below the held voltage,
+        on the diode-emulation stage
+        (:func:`~bucksim.studies.pulse_skipping.pulse_skipping_steady_state`,
+        at most 20000 clock periods a point: a pattern that has not repeated by
+        then is reported by its averages); fixed-frequency diode emulation where
+        a pulse at every clock edge leaves the output low (``light_mode``
+        ``"pwm"``).
 
     Returns
     -------
@@ -320,14 +330,9 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
     else:
         used_diode = strategy_scenario(scenario, "asynchronous", diode).low_side
     target = _target_voltage(scenario, regulate, output_voltage)
-    light = None
-    if pulse is not None:
-        strategies = tuple(strategies) + ("pfm",)
-        light_base = variants.get("diode-emulation") or strategy_scenario(
-            scenario, "diode-emulation", diode)
-        threshold = target if target is not None else cycle_mean(
-            periodic_run(with_level(scenario, _own_level(scenario)))[1], "vo")
-        light = (light_base, threshold, pulse)
+    light = _light_modes(scenario, variants, diode, target, pulse,
+                         skip_pulse(pulse_skipping))
+    strategies = tuple(strategies) + tuple(light)
     rows_for = RowMaker(variants, target, light)
     rows = {s: rows_for(s, levels) for s in strategies}
     pres = None
@@ -337,6 +342,22 @@ def compare(scenario, loads, *, diode=None, profile=None, output_voltage=None,
     return Comparison(title=scenario.title, strategies=tuple(strategies), levels=tuple(levels),
                       rows=rows, diode=used_diode, target_voltage=target, log=bool(log),
                       profile=pres)
+
+
+def _light_modes(scenario, variants, diode, target, pulse, t_min):
+    """``{mode: (diode-emulation stage, threshold [V], setting)}`` of the light-load rows
+    asked for (PFM's pulse, pulse skipping's minimum on-time); the threshold is the held
+    output voltage, else the scenario's own."""
+    light = {}
+    for mode, setting in (("pfm", pulse), ("pulse-skipping", t_min)):
+        if setting is None:
+            continue
+        base = variants.get("diode-emulation") or strategy_scenario(scenario,
+                                                                    "diode-emulation", diode)
+        threshold = target if target is not None else cycle_mean(
+            periodic_run(with_level(scenario, _own_level(scenario)))[1], "vo")
+        light[mode] = (base, threshold, setting)
+    return light
 
 
 def _target_voltage(scenario, regulate, output_voltage):

@@ -12,7 +12,7 @@ from bucksim.analysis.summary import Summary
 from bucksim.errors import ScenarioError, SimulationError
 from bucksim.model.parts import STRATEGY_NAMES
 from bucksim.studies.levels import LoadLevel, periodic_run, with_level
-from bucksim.studies.light_rows import pfm_point
+from bucksim.studies.light_rows import pfm_point, skip_point
 from bucksim.studies.regulate import regulated_point
 from bucksim.studies.reverse import cycle_mean
 
@@ -53,8 +53,9 @@ class Row:
     #: output's peak-to-peak ripple [V].
     switching_frequency: float = math.nan
     output_ripple: float = math.nan
-    #: The PFM row only: ``"pfm"`` (``"pfm-audible"`` below 20 kHz) where PFM ran,
-    #: ``"pwm"`` where the controller ran fixed-frequency diode emulation instead.
+    #: The light-load rows only: ``"pfm"`` or ``"skip"`` (``"pfm-audible"``,
+    #: ``"skip-audible"`` below 20 kHz) where the light-load mode ran, ``"pwm"`` where
+    #: the controller ran fixed-frequency diode emulation instead.
     light_mode: str = ""
 
     @property
@@ -106,27 +107,41 @@ def _row_of(strategy, level, duty, run, s, frequency):
                switching_frequency=float(frequency), output_ripple=s.output_voltage.ripple)
 
 
-def _light_row(scenario, level, threshold, pulse, fixed_row):
-    """The ``"pfm"`` row: PFM where it runs, else ``fixed_row()``, the fixed-frequency
-    diode-emulation row (:func:`~bucksim.studies.light_rows.pfm_point`);
-    ``light_mode`` says which."""
-    res, fixed = pfm_point(scenario, level, threshold, pulse)
+#: The light-load rows: their mode word in ``light_mode`` and how a point is found.
+LIGHT_MODES = {"pfm": "pfm", "pulse-skipping": "skip"}
+
+
+def _light_row(mode, scenario, level, threshold, setting, fixed_row):
+    """The ``mode`` row (``"pfm"``, ``"pulse-skipping"``): the light-load mode where it
+    runs, else ``fixed_row()``, the fixed-frequency diode-emulation row
+    (:func:`~bucksim.studies.light_rows.pfm_point`,
+    :func:`~bucksim.studies.light_rows.skip_point`); ``light_mode`` says which."""
+    if mode == "pfm":
+        res, fixed = pfm_point(scenario, level, threshold, setting)
+    else:
+        res, fixed = skip_point(scenario, level, threshold, setting)
     if fixed:
-        return dataclasses.replace(fixed_row(), strategy="pfm", light_mode="pwm")
-    if not res.success:
-        return Row.failed("pfm", level, f"PFM at {level}: {res.message}")
-    row = _row_of("pfm", level, res.on_time / res.period, res.run, res.summary,
-                  res.switching_frequency)
-    return dataclasses.replace(row, light_mode="pfm-audible" if res.audible else "pfm")
+        return dataclasses.replace(fixed_row(), strategy=mode, light_mode="pwm")
+    # pulse skipping whose pattern did not repeat in the budget keeps its averages
+    if not (res.success or (mode == "pulse-skipping" and res.summary is not None)):
+        return Row.failed(mode, level, f"{STRATEGY_NAMES[mode]} at {level}: {res.message}")
+    if mode == "pfm":
+        duty = res.on_time / res.period
+    else:   # the pulses' share of the clock periods, each min_on_time long
+        duty = res.switching_frequency * res.min_on_time
+    row = _row_of(mode, level, duty, res.run, res.summary, res.switching_frequency)
+    word = LIGHT_MODES[mode]
+    return dataclasses.replace(row, light_mode=f"{word}-audible" if res.audible else word)
 
 
 # ----------------------------------------------------------------------------- profile
 
 
 class RowMaker:
-    """``self(strategy, levels)``: the rows of one strategy (or ``"pfm"``: ``light`` =
-    (diode-emulation stage, threshold, pulse)), each point evaluated once and shot from
-    the previous level's duty; a point that fails keeps its reason."""
+    """``self(strategy, levels)``: the rows of one strategy or light-load mode
+    (``light``: ``{mode: (diode-emulation stage, threshold, setting)}``), each point
+    evaluated once and shot from the previous level's duty; a point that fails keeps
+    its reason."""
 
     def __init__(self, variants, target, light):
         self.variants, self.target, self.light, self.cache = variants, target, light, {}
@@ -135,13 +150,15 @@ class RowMaker:
         """The diode-emulation row at ``lv``, computed once (the light row's fallback)."""
         key = ("diode-emulation", lv.key, lv.value)
         if key not in self.cache:
-            self.cache[key] = _row(self.light[0], "diode-emulation", lv, self.target, None)
+            base = next(iter(self.light.values()))[0]
+            self.cache[key] = _row(base, "diode-emulation", lv, self.target, None)
         return self.cache[key]
 
     def _one(self, strategy, lv, guess):
-        if strategy == "pfm":
-            base, threshold, pulse = self.light
-            return _light_row(base, lv, threshold, pulse, lambda: self.fixed_row(lv))
+        if strategy in LIGHT_MODES:
+            base, threshold, setting = self.light[strategy]
+            return _light_row(strategy, base, lv, threshold, setting,
+                              lambda: self.fixed_row(lv))
         return _row(self.variants[strategy], strategy, lv, self.target, guess)
 
     def __call__(self, strategy, lvls):

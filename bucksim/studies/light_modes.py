@@ -178,6 +178,9 @@ class PfmResult(ModeResult):
         Start of the idle interval [s] from the pulse's start (NaN: none).
     audible : bool
         The frequency is below 20 kHz (a warning was issued).
+    too_heavy : bool
+        The load is above what these pulses carry (no period closes, or no idle
+        interval is left): a controller hands over to fixed-frequency PWM there.
     run : Run or None
         One exact period from the periodic state (``run.steady_state`` holds it).
     summary : Summary or None
@@ -196,6 +199,7 @@ class PfmResult(ModeResult):
     threshold: float = math.nan
     idle_start: float = math.nan
     audible: bool = False
+    too_heavy: bool = False
     run: object = None
     summary: object = None
     evaluations: int = 0
@@ -404,7 +408,7 @@ def _no_period(result, side, count, io):
         why = ("even back-to-back pulses leave the output below the threshold: the load "
                f"({io:.4g} A) is above what PFM with these pulses can carry")
     return dataclasses.replace(result, status=MODE_NO_PERIOD, evaluations=count,
-                               message=f"no PFM period closes: {why}")
+                               too_heavy=side != "light", message=f"no PFM period closes: {why}")
 
 
 def _checked(result, run, period, t_on, count):
@@ -417,7 +421,7 @@ def _checked(result, run, period, t_on, count):
                               on_time=t_on, peak_current=peak, run=run, evaluations=count,
                               summary=run.summary(cycles=1))
     if idle.size == 0:
-        return dataclasses.replace(out, status=MODE_NOT_AN_ORBIT, message=(
+        return dataclasses.replace(out, status=MODE_NOT_AN_ORBIT, too_heavy=True, message=(
             "no idle interval: the current does not return to zero before the next pulse "
             "(continuous conduction); the load is too heavy for PFM with these pulses"))
     from bucksim.analysis.extrema import extrema

@@ -1,5 +1,6 @@
-"""The light-load controller's row of :func:`bucksim.compare`: PFM below the clock's rate,
-fixed-frequency diode emulation above it.
+"""The light-load controllers' rows of :func:`bucksim.compare`: PFM below the clock's rate,
+pulse skipping while minimum on-time pulses carry more than the load, fixed-frequency
+diode emulation above either.
 """
 
 from __future__ import annotations
@@ -29,19 +30,58 @@ def pfm_point(scenario, level, threshold, pulse):
     Returns ``(result, fixed)``: the :class:`~bucksim.studies.light_modes.PfmResult`,
     and True where the controller runs fixed-frequency diode emulation instead:
     PFM's pulse rate would reach the PWM clock, or no PFM period closes for a heavy
-    load (a controller leaves PFM where its pulse rate reaches the clock: common
-    practice). The audible-band warning is left to the row (``light_mode``).
+    load, or no idle interval is left between the pulses (a controller leaves PFM
+    where its pulse rate reaches the clock: common practice). The audible-band
+    warning is left to the row (``light_mode``).
     """
     import warnings
 
-    from bucksim.studies.light_modes import MODE_NO_PERIOD, pfm_steady_state
+    from bucksim.studies.light_modes import pfm_steady_state
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", UserWarning)
         res = pfm_steady_state(with_level(scenario, level), threshold=threshold, **pulse)
-    heavy = res.status == MODE_NO_PERIOD and "above what PFM" in res.message
     fast = res.success and res.switching_frequency >= scenario.switching.frequency
-    return res, heavy or fast
+    return res, res.too_heavy or fast
+
+
+def skip_pulse(pulse_skipping):
+    """The ``pulse_skipping`` argument of :func:`compare` (``{"min_on_time": s}``) as the
+    minimum on-time [s], or None."""
+    if pulse_skipping is None:
+        return None
+    if not isinstance(pulse_skipping, dict) or set(pulse_skipping) != {"min_on_time"}:
+        raise ScenarioError("pulse_skipping", "must be {'min_on_time': s}", pulse_skipping)
+    return parse_quantity(pulse_skipping["min_on_time"], "s", "pulse_skipping.min_on_time")
+
+
+#: Clock periods a compare point of pulse skipping simulates at most, and per block:
+#: a pattern that has not repeated by then is reported by its averages over the last
+#: half block (a light load's pattern can be quasi-periodic).
+SKIP_PERIODS, SKIP_BLOCK = 20_000, 5_000
+
+
+def skip_point(scenario, level, threshold, min_on_time):
+    """Pulse skipping at ``level`` on the diode-emulation stage ``scenario``: pulses of
+    ``min_on_time`` [s] at the clock edges where the output is below ``threshold`` [V]
+    (:func:`~bucksim.studies.pulse_skipping.pulse_skipping_steady_state`).
+
+    Returns ``(result, fixed)``: the :class:`~bucksim.studies.pulse_skipping.SkipResult`,
+    and True where the controller runs fixed-frequency diode emulation instead: a pulse
+    at every clock edge leaves the output below the threshold (the load needs more than
+    minimum on-time pulses; the loop then sets the duty, common practice).
+    """
+    import warnings
+
+    from bucksim.studies.light_modes import MODE_NOT_AN_ORBIT
+    from bucksim.studies.pulse_skipping import pulse_skipping_steady_state
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)
+        res = pulse_skipping_steady_state(with_level(scenario, level), min_on_time=min_on_time,
+                                          threshold=threshold, max_periods=SKIP_PERIODS,
+                                          block=SKIP_BLOCK)
+    return res, res.status == MODE_NOT_AN_ORBIT
 
 
 def pfm_range(scenario, peak_current: float, threshold: float) -> dict:
@@ -88,3 +128,55 @@ def pfm_range(scenario, peak_current: float, threshold: float) -> dict:
 
     rate, why = rate_at(closed)
     return {"closed_form": closed, "frequency": rate, "note": why if rate is None else ""}
+
+
+def skip_range(scenario, min_on_time: float, threshold: float) -> dict:
+    """The heaviest load [A] at which pulse skipping with pulses of ``min_on_time`` [s]
+    still skips clock edges: in closed form, and on the exact stage.
+
+    Parameters
+    ----------
+    scenario : Scenario
+        A diode-emulation or asynchronous stage (its clock: ``switching.frequency``).
+    min_on_time : float
+        The pulse [s].
+    threshold : float
+        The output threshold (the regulated voltage) [V].
+
+    Returns
+    -------
+    dict
+        ``closed_form`` [A]: ``Io = 0.5 Ip (t_min + L Ip / Vo) fs`` with ``Ip = (Vin -
+        Vo) t_min / L`` (a pulse at every edge, charge balance of the lossless stage,
+        derived); ``exact`` [A]: the load current at which the stage with a pulse at
+        every clock edge (open loop, duty ``t_min / T``) sits at the threshold at the
+        edge, where the comparator samples it (above it every edge pulses); found by
+        Brent's method on the periodic steady state, to 1e-6 of the load (None when no
+        bracket is found within 1/8 .. 8 times the closed form; ``note`` says why).
+    """
+    import dataclasses
+
+    from scipy.optimize import brentq
+
+    from bucksim.model.parts import Control
+    from bucksim.simulation import simulate_settled
+    from bucksim.studies.levels import LoadLevel
+
+    L = scenario.inductor.inductance
+    vin, vo, fs = scenario.supply.voltage, threshold, scenario.switching.frequency
+    ip = (vin - vo) * min_on_time / L
+    closed = 0.5 * ip * (min_on_time + L * ip / vo) * fs
+    every = dataclasses.replace(scenario, control=Control(mode="open-loop",
+                                                          duty=min_on_time * fs))
+
+    def margin(io):
+        run = simulate_settled(with_level(every, LoadLevel("current", io)), cycles=1)
+        return float(run.at(0.0, "vo")[0]) - threshold
+
+    lo, hi = closed / 8.0, closed * 8.0
+    if not margin(lo) > 0.0 > margin(hi):
+        return {"closed_form": closed, "exact": None,
+                "note": "no load between 1/8 and 8 times the closed form puts the output at "
+                        "the threshold with a pulse at every clock edge"}
+    exact = brentq(margin, lo, hi, xtol=1e-9 * closed, rtol=1e-6)
+    return {"closed_form": closed, "exact": float(exact), "note": ""}

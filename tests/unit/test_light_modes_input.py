@@ -90,9 +90,12 @@ def test_min_on_time_is_needed_and_must_fit_the_clock_period():
 
 def test_min_on_time_defaults_to_the_scenario_control():
     sc = stage()
-    sc = dataclasses.replace(sc, control=p.Control(mode="open-loop", duty=0.3,
-                                                   min_on_time=2e-6))
+    # without a minimum on-time in the scenario or the call there is no pulse to skip with
     refused(pulse_skipping_steady_state, "control.min_on_time", sc, threshold=3.3)
+    # one that does not fit the period is refused where the scenario is built
+    with pytest.raises(ScenarioError, match="control.min_on_time"):
+        dataclasses.replace(sc, control=p.Control(mode="open-loop", duty=0.3,
+                                                  min_on_time=2e-6))
 
 
 @pytest.mark.parametrize("key, value", [("max_periods", 0), ("block", 2.5),

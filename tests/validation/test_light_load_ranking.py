@@ -9,7 +9,13 @@ Facts checked (each with its source):
   which beats forced PWM (the ranking the issue asks bucksim to show, explained in
   docs/light-load-modes.md);
 * above its range a controller leaves PFM for fixed-frequency operation (common
-  practice): the PFM row there is the diode-emulation row, marked ``"pwm"``.
+  practice): the PFM row there is the diode-emulation row, marked ``"pwm"``;
+* pulse skipping at the clock pulses at ``Io / q``, ``q = 0.5 Ip (t + L Ip / Vo)``,
+  ``Ip = (Vin - Vo) t / L`` (charge balance of the lossless stage, derived), with ``t``
+  between ``t_min`` and ``t_min`` plus the falling dead time: the node capacitance
+  holds the node above the output for part of the dead time after the high side
+  opens, and the current goes on rising meanwhile; where a pulse at every clock edge
+  is not enough the row is diode emulation's.
 """
 
 from __future__ import annotations
@@ -28,7 +34,7 @@ RAIL = Path(__file__).resolve().parents[2] / "scenarios" / "radio_rail_3v3_contr
 def asleep():
     sc = load_scenario(RAIL)
     return sc, compare(sc, ["5 mA", "1 A"], output_voltage=3.3, pfm={"peak_current": 0.4},
-                       log=True)
+                       pulse_skipping={"min_on_time": "80 ns"}, log=True)
 
 
 def test_light_load_mode_wins_asleep_and_forced_pwm_loses(asleep):
@@ -70,6 +76,31 @@ def test_above_its_range_the_light_load_row_is_fixed_frequency(asleep):
     assert rec["output_voltage_ripple"] == pytest.approx(de.output_ripple)
 
 
+def test_pulse_skipping_row_pulses_at_the_charge_balance_rate(asleep):
+    sc, cmp = asleep
+    skip, de, pfm = (cmp.row(s, "5 mA") for s in ("pulse-skipping", "diode-emulation", "pfm"))
+    assert skip.ok and skip.light_mode == "skip"
+    L, vin, vo, t_min = sc.inductor.inductance, sc.supply.voltage, 3.3, 80e-9
+
+    def rate(t):
+        ip = (vin - vo) * t / L
+        return skip.load_current / (0.5 * ip * (t + L * ip / vo))
+
+    # 163 kHz at t_min, 129 kHz with the 10 ns dead time added (152 kHz measured)
+    assert rate(t_min + sc.switching.dead_time[0]) < skip.switching_frequency < rate(t_min)
+    assert skip.duty == pytest.approx(skip.switching_frequency * t_min, rel=1e-12)
+    # fewer gate charges than the clock: it beats fixed-frequency diode emulation, and
+    # PFM's larger, rarer pulses beat it in turn (docs/light-load-modes.md)
+    assert pfm.efficiency > skip.efficiency > de.efficiency
+    assert skip.output_ripple > de.output_ripple
+    heavy = cmp.row("pulse-skipping", "1 A")
+    assert heavy.light_mode == "pwm" and heavy.losses == cmp.row("diode-emulation",
+                                                                 "1 A").losses
+    rec = cmp.to_dict()["rows"]["pulse-skipping"][0]
+    assert rec["switching_frequency"] == skip.switching_frequency
+    assert rec["output_voltage_ripple"] == skip.output_ripple
+
+
 def test_bad_pfm_arguments_are_refused():
     from bucksim.errors import ScenarioError
     sc = load_scenario(RAIL)
@@ -77,6 +108,9 @@ def test_bad_pfm_arguments_are_refused():
                 {"peak_current": "0.4 V"}):
         with pytest.raises(ScenarioError):
             compare(sc, ["5 mA"], pfm=bad)
+    for bad in ({"min_on": 8e-8}, 8e-8, {"min_on_time": "80 nA"}):
+        with pytest.raises(ScenarioError):
+            compare(sc, ["5 mA"], pulse_skipping=bad)
 
 
 def test_boundary_says_where_pfm_hands_over_to_the_clock(capsys):
@@ -96,3 +130,25 @@ def test_boundary_says_where_pfm_hands_over_to_the_clock(capsys):
     assert main(["boundary", str(RAIL.parent / "core_rail_1v0.toml"), "--pfm-peak-current",
                  "2"]) == 1
     assert "forced PWM" in capsys.readouterr().err
+
+
+def test_boundary_says_where_pulse_skipping_stops_skipping(capsys):
+    # a pulse at every clock edge carries Io = 0.5 Ip (t + L Ip / Vo) fs, Ip = (Vin - Vo)
+    # t / L (lossless charge balance, derived); on the exact stage the node holds the
+    # node up for part of the dead time after each pulse, so t lies between t_min and
+    # t_min plus the falling dead time
+    import json
+
+    from bucksim.cli.main import main
+    assert main(["boundary", str(RAIL), "--load", "10 mA", "--skip-min-on-time", "80 ns",
+                 "--json"]) == 0
+    skip = json.loads(capsys.readouterr().out)["pulse_skipping"]
+    sc = load_scenario(RAIL)
+    L, vin, vo, fs = sc.inductor.inductance, sc.supply.voltage, 3.3, sc.switching.frequency
+
+    def carried(t):
+        ip = (vin - vo) * t / L
+        return 0.5 * ip * (t + L * ip / vo) * fs
+
+    assert skip["closed_form"] == pytest.approx(carried(80e-9), rel=1e-3)  # vo: settled
+    assert carried(80e-9) < skip["exact"] < carried(80e-9 + sc.switching.dead_time[0])
