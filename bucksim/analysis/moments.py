@@ -38,7 +38,8 @@ References
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import expm
+
+from bucksim.engine.small_expm import expm_many
 
 
 def _van_loan(A: np.ndarray, d: float) -> np.ndarray:
@@ -47,7 +48,7 @@ def _van_loan(A: np.ndarray, d: float) -> np.ndarray:
     big = np.zeros((2 * k, 2 * k))
     big[:k, :k] = A
     big[:k, k:] = np.eye(k)
-    return expm(big * d)[:k, k:]
+    return expm_many(big[None], d)[0, :k, k:]
 
 
 def _kron_sum(A: np.ndarray) -> np.ndarray:

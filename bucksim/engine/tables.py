@@ -9,7 +9,8 @@ product of table entries (its binary digits) and a remainder shorter than
 there (its first omitted term is below ``0.05**9 / 9! ~ 5e-18`` relative)
 and an interval costs about ``K / 2`` table products plus the series instead
 of one product per binary digit down to ``T 2**-47``. The table entries
-themselves come from scipy's scaling-and-squaring ``expm`` [1]_.
+themselves come from a scaling-and-squaring exponential [1]_
+(:func:`bucksim.engine.small_expm.expm_many`, one compiled call for the whole table).
 
 References
 ----------
@@ -26,7 +27,8 @@ from collections import OrderedDict
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.linalg import expm
+
+from bucksim.engine.small_expm import expm_many
 
 #: Deepest table: h = T 2**-47 ~ 7e-15 T (used only when ||A|| T is enormous).
 TABLE_DEPTH = 48
@@ -121,12 +123,10 @@ def _build_table(matrices: np.ndarray, period: float, depth: int) -> TransitionT
     exps = np.empty((n_sys, levels, m, m))
     rho = _spectral_radii(matrices)
     first = _first_copies(matrices)
-    for s in range(n_sys):
-        if first[s] < s:
-            exps[s] = exps[first[s]]    # a copy (e.g. a conduction state in another band)
-            continue
-        for k, hk in enumerate(steps):
-            exps[s, k] = expm(matrices[s] * hk)
+    unique = np.flatnonzero(first == np.arange(n_sys))
+    exps[unique] = expm_many(np.repeat(matrices[unique], levels, axis=0),
+                             np.tile(steps, unique.size)).reshape(unique.size, levels, m, m)
+    exps[:] = exps[first]    # a copy (e.g. a conduction state in another band)
     _exact_constant_row(exps)
     top = float(np.max(rho)) if n_sys else 0.0
     guard = float(min(0.25 / top if top > 0 else np.inf, 1e300))
@@ -169,12 +169,13 @@ def _phase_exponentials(matrices: np.ndarray, durations) -> np.ndarray:
     n_sys, m, _ = matrices.shape
     out = np.empty((n_sys, len(durations), m, m))
     first = _first_copies(matrices)
-    for s in range(n_sys):
-        if first[s] < s:
-            out[s] = out[first[s]]
-            continue
-        for p, d in enumerate(durations):
-            out[s, p] = expm(matrices[s] * d) if d > 0 else np.eye(m)
+    unique = np.flatnonzero(first == np.arange(n_sys))
+    d = np.array([float(x) for x in durations])
+    n_p = d.size
+    exps = expm_many(np.repeat(matrices[unique], n_p, axis=0),
+                     np.tile(np.maximum(d, 0.0), unique.size))
+    out[unique] = exps.reshape(unique.size, n_p, m, m)
+    out[:] = out[first]
     _exact_constant_row(out)
     return out
 
