@@ -154,6 +154,10 @@ def main(argv=None):
     ap.add_argument("--json", help="write the figures to this JSON file")
     a = ap.parse_args(argv)
 
+    # a throwaway first measurement: the first few runs of a process allocate their
+    # segment buffers (tens of MB) by fresh mmaps, until glibc's malloc raises its mmap
+    # threshold, and ran at about 60 % of the speed of the later ones
+    engine_rate(rail("forced-pwm", 0.66, a.cycles))
     fpwm, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles))
     de, _ = engine_rate(rail("diode-emulation", 30.0, a.cycles))
     # the switch node as a state (400 pF + 1.2 nF, invented): swings in both dead
