@@ -83,6 +83,10 @@ def sqrt_law(k: float, volts=(0.0, 0.5, 1.5, 3.0, 6.0, 12.0)) -> CapacitanceTabl
 
 
 def engine_rate(scenario: Scenario, repeats: int = 3) -> tuple[float, object]:
+    """Cycles a second, best of ``repeats`` after a warm-up run. The first call of a
+    process is thrown away by :func:`main`: its runs allocate their segment buffers
+    (tens of MB) by fresh mmaps until glibc's malloc raises its mmap threshold, and ran
+    at about 60 % of the speed of the later ones."""
     stage = Stage(scenario)
     table = build_table(stage.matrices, scenario.period)
     cache = {}
@@ -154,10 +158,7 @@ def main(argv=None):
     ap.add_argument("--json", help="write the figures to this JSON file")
     a = ap.parse_args(argv)
 
-    # a throwaway first measurement: the first few runs of a process allocate their
-    # segment buffers (tens of MB) by fresh mmaps, until glibc's malloc raises its mmap
-    # threshold, and ran at about 60 % of the speed of the later ones
-    engine_rate(rail("forced-pwm", 0.66, a.cycles))
+    engine_rate(rail("forced-pwm", 0.66, a.cycles))     # thrown away: see engine_rate
     fpwm, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles))
     de, _ = engine_rate(rail("diode-emulation", 30.0, a.cycles))
     # the switch node as a state (400 pF + 1.2 nF, invented): swings in both dead

@@ -30,9 +30,9 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
-from scipy.linalg import expm
 
 from bucksim.engine.driver import build_table, integrate, phase_durations
+from bucksim.engine.small_expm import expm_many
 from bucksim.model.input_network import input_network
 from bucksim.model.pulse_limits import open_loop_on_time
 from bucksim.model.stage import (
@@ -84,9 +84,10 @@ class PeriodMap:
         J = np.eye(n)
         count = res.t0.shape[0]
         T = self.scenario.period
+        phi = expm_many(Ms[res.system], res.dt)      # every segment's, in one call
         for j in range(count):
             s = res.system[j]
-            J = expm(Ms[s] * res.dt[j])[:n, :n] @ J
+            J = phi[j, :n, :n] @ J
             at_edge = j + 1 >= count or np.min(np.abs(self._edges - res.t0[j + 1])) <= 1e-12 * T
             nxt = -1 if j + 1 >= count else res.conduction[j + 1]
             S = jump_matrix(self.stage, s, res.conduction[j], nxt, at_edge, self._evented,

@@ -23,13 +23,34 @@ def _duty_limits(scenario):
     return 1e-5, 1.0 - (tf + tr) / T - 1e-6
 
 
-def _secant(at, a, fa, lo, hi, vin):
+def _lossless_duty(scenario, target: float) -> tuple[float, float]:
+    """The lossless stage's duty for the output ``target`` [V] and ``dVo/dD`` there [V]:
+    ``D = M`` in CCM (Erickson & Maksimovic, 3rd ed., ch. 2), ``D = M sqrt(K / (1 -
+    M))`` in DCM, the inverse of ``M = 2 / (1 + sqrt(1 + 4 K / D^2))``, ``K = 2 L fs /
+    R`` (ch. 5; derived by solving it for D), where the stage blocks reversal and
+    ``K < 1 - D``. The load at ``target`` as a resistance ``R = Vo / Io``."""
+    vin = scenario.supply.voltage
+    m = min(max(target / vin, 1e-9), 1.0 - 1e-9)
+    load = scenario.load
+    r = load.resistance if load.resistance is not None else math.inf
+    io = target / r + load.current
+    if scenario.switching.strategy == "forced-pwm" or not io > 0:
+        return m, vin
+    k = 2.0 * scenario.inductor.inductance * scenario.switching.frequency * io / target
+    d = m * math.sqrt(k / (1.0 - m))
+    if not k < 1.0 - d:
+        return m, vin
+    # dM/dD of the DCM ratio at d: M = 2 / (1 + s), s = sqrt(1 + 4K/D^2)
+    s = math.sqrt(1.0 + 4.0 * k / d ** 2)
+    return d, vin * (2.0 / (1.0 + s) ** 2) * (4.0 * k / d ** 3) / s
+
+
+def _secant(at, a, fa, lo, hi, slope, vin):
     """Secant steps on ``at(d) = Vo(d) - target`` from ``(a, fa)``, the first with the
-    slope ``vin``: the duty where ``|at| <= 1e-12 vin`` or the step is below 1e-12,
-    or None when a step leaves ``[lo, hi]``, the slope is not positive or eight
-    steps do not reach it (the caller brackets the root instead)."""
-    slope = vin
-    for _ in range(8):
+    slope ``slope`` [V per unit duty]: the duty where ``|at| <= 1e-12 vin`` or the
+    step is below 1e-12, or None when a step leaves ``[lo, hi]``, the slope is not
+    positive or twelve steps do not reach it (the caller brackets the root instead)."""
+    for _ in range(12):
         b = a - fa / slope
         if not lo <= b <= hi:
             return None
@@ -52,8 +73,9 @@ def regulated_point(scenario, target: float, guess: float | None = None):
     -----
     The mean output voltage rises monotonically with the duty (CCM: about
     ``Vin`` per unit duty, Erickson ch. 2; DCM: ch. 5) and nearly linearly, so
-    secant steps from the slope ``Vin`` reach the duty to 1e-12 in three or four
-    steady states (:func:`_secant`); where they do not (a kink at the CCM
+    secant steps from the lossless stage's duty and slope (:func:`_lossless_duty`;
+    or from ``guess``, a neighbouring point's duty) reach the duty to 1e-12 in
+    three or four steady states (:func:`_secant`); where they do not (a kink at the CCM
     boundary, a slope of the wrong sign), the root is bracketed from a step of
     ``(target - Vo) / Vin`` and found by ``brentq`` to 1e-12 in duty. Each
     steady state is shot from the periodic state of the nearest duty tried.
@@ -73,9 +95,14 @@ def regulated_point(scenario, target: float, guess: float | None = None):
             memo[d] = (cycle_mean(run, "vo") - target, sc, ss, run)
         return memo[d][0]
 
-    a = min(max(scenario.control.duty if guess is None else guess, lo), hi)
+    vin = scenario.supply.voltage
+    if guess is None:
+        guess, slope = _lossless_duty(scenario, target)
+    else:
+        slope = _lossless_duty(scenario, target)[1]
+    a = min(max(guess, lo), hi)
     fa = at(a)
-    d = _secant(at, a, fa, lo, hi, scenario.supply.voltage)
+    d = _secant(at, a, fa, lo, hi, slope, vin)
     if d is not None:
         _, sc, ss, run = memo[d]
         return sc, ss, run
