@@ -23,12 +23,19 @@ def _duty_limits(scenario):
     return 1e-5, 1.0 - (tf + tr) / T - 1e-6
 
 
+#: Below this share of ``M`` the lossless DCM duty is not a start: the load is so light
+#: (a microampere on an ampere rail) that losses and the node's charge set the output,
+#: and a duty of ~1e-5 settles over seconds before its steady state says so.
+LIGHTEST = 0.05
+
+
 def _lossless_duty(scenario, target: float) -> tuple[float, float]:
     """The lossless stage's duty for the output ``target`` [V] and ``dVo/dD`` there [V]:
     ``D = M`` in CCM (Erickson & Maksimovic, 3rd ed., ch. 2), ``D = M sqrt(K / (1 -
     M))`` in DCM, the inverse of ``M = 2 / (1 + sqrt(1 + 4 K / D^2))``, ``K = 2 L fs /
-    R`` (ch. 5; derived by solving it for D), where the stage blocks reversal and
-    ``K < 1 - D``. The load at ``target`` as a resistance ``R = Vo / Io``."""
+    R`` (ch. 5; derived by solving it for D), where the stage blocks reversal,
+    ``K < 1 - D`` and ``D >= LIGHTEST M``. The load at ``target`` as a resistance
+    ``R = Vo / Io``."""
     vin = scenario.supply.voltage
     m = min(max(target / vin, 1e-9), 1.0 - 1e-9)
     load = scenario.load
@@ -38,7 +45,7 @@ def _lossless_duty(scenario, target: float) -> tuple[float, float]:
         return m, vin
     k = 2.0 * scenario.inductor.inductance * scenario.switching.frequency * io / target
     d = m * math.sqrt(k / (1.0 - m))
-    if not k < 1.0 - d:
+    if not k < 1.0 - d or d < LIGHTEST * m:
         return m, vin
     # dM/dD of the DCM ratio at d: M = 2 / (1 + s), s = sqrt(1 + 4K/D^2)
     s = math.sqrt(1.0 + 4.0 * k / d ** 2)

@@ -42,6 +42,9 @@ def test_ccm_and_forced_pwm_take_the_ratio_itself():
     assert _lossless_duty(heavy, 3.3) == (pytest.approx(3.3 / 12.0), 12.0)
     light_fpwm = _stage("forced-pwm", 100.0)          # forced PWM never enters DCM
     assert _lossless_duty(light_fpwm, 3.3) == (pytest.approx(3.3 / 12.0), 12.0)
+    # a microampere: the DCM duty would be 1e-4 of M, below LIGHTEST M
+    faint = _stage("diode-emulation", 3.3e6)
+    assert _lossless_duty(faint, 3.3) == (pytest.approx(3.3 / 12.0), 12.0)
     sink = dataclasses.replace(heavy, load=dataclasses.replace(heavy.load, resistance=None,
                                                                current=0.0))
     assert _lossless_duty(sink, 3.3) == (pytest.approx(3.3 / 12.0), 12.0)   # no load
