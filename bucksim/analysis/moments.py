@@ -82,38 +82,35 @@ class SegmentMoments:
         v0[n:] = self.matrices[s, :-1, :] @ z0
         return z0[:-1], v0
 
-    def _y1(self, s, d, v0):
+    def _g(self, s: int, d: float) -> np.ndarray:
+        """The first moment's Van Loan block of system ``s`` over ``d`` (memoised)."""
         key = (s, d)
         G = self._first.get(key)
         if G is None:
             G = _van_loan(_drift_system(self.matrices[s]), d)[: self.n]
             self._first[key] = G
-        return G @ v0
+        return G
+
+    def _q(self, s: int, d: float) -> np.ndarray:
+        """The second moment's Van Loan block of system ``s`` over ``d`` (memoised): the
+        rows of ``y (x) y`` only, the rest is never read."""
+        key = (s, d)
+        Q = self._second.get(key)
+        if Q is None:
+            n, k = self.n, 2 * self.n
+            full = _van_loan(_kron_sum(_drift_system(self.matrices[s])), d)
+            Q = full[(np.arange(n)[:, None] * k + np.arange(n)[None, :]).ravel()]
+            self._second[key] = Q
+        return Q
 
     def first(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z dt`` over a segment of system ``s`` starting at ``z0`` (ends in 1)."""
         s, d = int(s), float(d)
         x0, v0 = self._start(s, z0)
         out = np.empty(self.m)
-        out[:-1] = x0 * d + self._y1(s, d, v0)
+        out[:-1] = x0 * d + self._g(s, d) @ v0
         out[-1] = d
         return out
-
-    def _blocks(self, s: int, d: float):
-        """``(G, Q)``: the first and second moments' Van Loan blocks of system ``s`` over
-        ``d`` (memoised)."""
-        key = (s, d)
-        G, Q = self._first.get(key), self._second.get(key)
-        if G is None:
-            G = _van_loan(_drift_system(self.matrices[s]), d)[: self.n]
-            self._first[key] = G
-        if Q is None:
-            n, k = self.n, 2 * self.n
-            full = _van_loan(_kron_sum(_drift_system(self.matrices[s])), d)
-            rows = (np.arange(n)[:, None] * k + np.arange(n)[None, :]).ravel()
-            Q = full[rows]
-            self._second[key] = Q
-        return G, Q
 
     def second_sums(self, systems, z0s, lengths, n_systems: int,
                     time_scale: float = 0.0) -> np.ndarray:
@@ -147,7 +144,7 @@ class SegmentMoments:
             sel = order[bounds[u]:bounds[u + 1]]
             s, d = int(s_o[bounds[u]]), float(d_o[bounds[u]])
             dd = lengths[sel]
-            G, Q = self._blocks(s, d)
+            G, Q = self._g(s, d), self._q(s, d)
             z = z0s[sel]
             x0 = z[:, :-1]
             v0 = np.zeros((sel.shape[0], 2 * n))
@@ -170,17 +167,8 @@ class SegmentMoments:
         s, d = int(s), float(d)
         n, m = self.n, self.m
         x0, v0 = self._start(s, z0)
-        key = (s, d)
-        Q = self._second.get(key)
-        if Q is None:
-            k = 2 * n
-            full = _van_loan(_kron_sum(_drift_system(self.matrices[s])), d)
-            # keep the rows of y (x) y only: the rest is never read
-            rows = (np.arange(n)[:, None] * k + np.arange(n)[None, :]).ravel()
-            Q = full[rows]
-            self._second[key] = Q
-        y1 = self._y1(s, d, v0)
-        y2 = (Q @ np.kron(v0, v0)).reshape(n, n)
+        y1 = self._g(s, d) @ v0
+        y2 = (self._q(s, d) @ np.kron(v0, v0)).reshape(n, n)
         ix = x0 * d + y1
         out = np.empty((m, m))
         out[:-1, :-1] = d * np.outer(x0, x0) + np.outer(x0, y1) + np.outer(y1, x0) + y2

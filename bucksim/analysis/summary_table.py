@@ -17,17 +17,18 @@ DEVICE_ORDER = ("high_side", "high_side_body_diode", "low_side", "low_side_body_
 MEAN_ROUNDING = 1e-9
 
 
-def summary_table(self) -> str:
-    """A readable multi-line table of ``self`` (a Summary) with engineering units."""
+def summary_table(summary) -> str:
+    """A readable multi-line table of ``summary`` (a
+    :class:`~bucksim.analysis.summary.Summary`) with engineering units."""
     from bucksim.model.units import format_si
 
-    w, vo, il, p = self.window, self.output_voltage, self.inductor_current, self.power
+    w, vo, il, p = summary.window, summary.output_voltage, summary.inductor_current, summary.power
     lines = [
         f"window        {format_si(w.start, 's')} .. {format_si(w.stop, 's')} "
         f"({w.cycles:.4g} cycles)",
-        f"mode          {self.conduction_mode.upper()}"
-        + ("   inductor current reverses" if self.reverse_current else "")
-        + _pulse_text(self.pulse_rate),
+        f"mode          {summary.conduction_mode.upper()}"
+        + ("   inductor current reverses" if summary.reverse_current else "")
+        + _pulse_text(summary.pulse_rate),
         f"output        mean {format_si(vo.mean, 'V')}   ripple {format_si(vo.ripple, 'V')} p-p"
         f"   [{format_si(vo.min, 'V')}, {format_si(vo.max, 'V')}]",
         f"inductor      mean {_mean_text(il.mean, il.rms, 'A')}   "
@@ -38,15 +39,15 @@ def summary_table(self) -> str:
         f"{'device':<22}{'rms':>12}{'mean':>12}{'conduction':>13}{'switching':>13}",
     ]
     for name in DEVICE_ORDER:
-        if name not in self.devices:
+        if name not in summary.devices:
             continue
-        v = self.devices[name]
+        v = summary.devices[name]
         lines.append(f"{name:<22}{format_si(v.rms, 'A'):>12}"
                      f"{_mean_text(v.mean, v.rms, 'A'):>12}"
                      f"{format_si(v.conduction_loss, 'W'):>13}"
                      f"{format_si(v.switching_loss, 'W'):>13}")
-    if self.switch_node is not None:
-        sn = self.switch_node
+    if summary.switch_node is not None:
+        sn = summary.switch_node
         lines += [f"switch node   Cn {format_si(sn.capacitance, 'F')} (charge-equivalent,"
                   f" 0 .. {format_si(sn.input_voltage, 'V')})",
                   f"              high side Qoss {format_si(sn.high_side_qoss, 'C')}, Eoss "
@@ -58,17 +59,17 @@ def summary_table(self) -> str:
                 lines.append(f"              {side} side turns on at node "
                              f"{format_si(v[1], 'V')} (min {format_si(v[0], 'V')}, "
                              f"max {format_si(v[2], 'V')})")
-    inductor = self.devices.get("inductor")
+    inductor = summary.devices.get("inductor")
     if inductor is not None and inductor.core_loss is not None:
         lines.append(f"{'inductor core (iGSE)':<22}{'':>24}"
                      f"{format_si(inductor.core_loss, 'W'):>13}")
-    if self.input_voltage is not None:
-        v, src = self.input_voltage, self.source_current
+    if summary.input_voltage is not None:
+        v, src = summary.input_voltage, summary.source_current
         lines += [f"input         cell mean {format_si(v.mean, 'V')}   ripple "
                   f"{format_si(v.ripple, 'V')} p-p   source current mean "
                   f"{format_si(src.mean, 'A')}, rms {format_si(src.rms, 'A')}"]
-    if self.gate_drive is not None:
-        lines += _drive_lines(self.gate_drive, format_si)
+    if summary.gate_drive is not None:
+        lines += _drive_lines(summary.gate_drive, format_si)
     lines += [
         "",
         f"power         in {format_si(p.input, 'W')}   out {format_si(p.output, 'W')}"
@@ -76,11 +77,11 @@ def summary_table(self) -> str:
         + ("" if p.source_loss is None else
            f"   (source resistance {format_si(p.source_loss, 'W')}, outside)")
         + ("" if p.bias is None else f"   bias rail {format_si(p.bias, 'W')} (in)"),
-        f"efficiency    {100 * self.efficiency:.3f} %",
-        f"energy balance error {self.energy_balance_error:.2e} (relative)",
+        f"efficiency    {100 * summary.efficiency:.3f} %",
+        f"energy balance error {summary.energy_balance_error:.2e} (relative)",
     ]
-    if self.transients:
-        lines += ["", _transient_table(self.transients)]
+    if summary.transients:
+        lines += ["", _transient_table(summary.transients)]
     return "\n".join(lines)
 
 

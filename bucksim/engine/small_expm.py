@@ -91,6 +91,17 @@ def _solve_in_place(a, b):
 
 
 @njit(cache=True)
+def _powers(out, base, keep, a6, a4, a2, c6, c4, c2, c0):
+    """``out <- c6 a6 + c4 a4 + c2 a2 + c0 I``, plus ``base`` where ``keep`` (``out`` may be
+    ``base``; without ``keep`` it is not read: work space holds anything)."""
+    n = out.shape[0]
+    for i in range(n):
+        for j in range(n):
+            x = c6 * a6[i, j] + c4 * a4[i, j] + c2 * a2[i, j] + (c0 if i == j else 0.0)
+            out[i, j] = base[i, j] + x if keep else x
+
+
+@njit(cache=True)
 def _expm_one(A, coef, out, w):
     """``out <- expm(A)``; ``w``: work space of shape ``(8, n, n)``."""
     n = A.shape[0]
@@ -114,23 +125,13 @@ def _expm_one(A, coef, out, w):
     b = coef
     # U = A [A6 (b13 A6 + b11 A4 + b9 A2) + b7 A6 + b5 A4 + b3 A2 + b1 I]
     # V = A6 (b12 A6 + b10 A4 + b8 A2) + b6 A6 + b4 A4 + b2 A2 + b0 I
-    for i in range(n):
-        for j in range(n):
-            t[i, j] = b[13] * a6[i, j] + b[11] * a4[i, j] + b[9] * a2[i, j]
+    _powers(t, t, False, a6, a4, a2, b[13], b[11], b[9], 0.0)
     _matmul(a6, t, u)
-    for i in range(n):
-        for j in range(n):
-            t[i, j] = (u[i, j] + b[7] * a6[i, j] + b[5] * a4[i, j] + b[3] * a2[i, j]
-                       + (b[1] if i == j else 0.0))
+    _powers(t, u, True, a6, a4, a2, b[7], b[5], b[3], b[1])
     _matmul(a, t, u)
-    for i in range(n):
-        for j in range(n):
-            t[i, j] = b[12] * a6[i, j] + b[10] * a4[i, j] + b[8] * a2[i, j]
+    _powers(t, t, False, a6, a4, a2, b[12], b[10], b[8], 0.0)
     _matmul(a6, t, v)
-    for i in range(n):
-        for j in range(n):
-            v[i, j] += b[6] * a6[i, j] + b[4] * a4[i, j] + b[2] * a2[i, j] + (
-                b[0] if i == j else 0.0)
+    _powers(v, v, True, a6, a4, a2, b[6], b[4], b[2], b[0])
     # (V - U) X = V + U
     for i in range(n):
         for j in range(n):

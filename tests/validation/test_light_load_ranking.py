@@ -20,14 +20,34 @@ Facts checked (each with its source):
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import pytest
 
 from bucksim import load_scenario
+from bucksim.model.conduction import node_capacitance
 from bucksim.studies.compare import compare
 
 RAIL = Path(__file__).resolve().parents[2] / "scenarios" / "radio_rail_3v3_controller_supply.toml"
+
+
+def min_on_charge(sc, t, vo=3.3):
+    """The charge [C] of one pulse of on-time ``t`` [s] from zero current on the lossless
+    stage: ``0.5 Ip (t + L Ip / Vo)``, ``Ip = (Vin - Vo) t / L`` (charge balance of the
+    triangle, derived)."""
+    L, vin = sc.inductor.inductance, sc.supply.voltage
+    ip = (vin - vo) * t / L
+    return 0.5 * ip * (t + L * ip / vo)
+
+
+def boundary_json(capsys, *options):
+    """``bucksim boundary RAIL --load 10 mA OPTIONS --json`` as a dict."""
+    import json
+
+    from bucksim.cli.main import main
+    assert main(["boundary", str(RAIL), "--load", "10 mA", *options, "--json"]) == 0
+    return json.loads(capsys.readouterr().out)
 
 
 @pytest.fixture(scope="module")
@@ -80,11 +100,10 @@ def test_pulse_skipping_row_pulses_at_the_charge_balance_rate(asleep):
     sc, cmp = asleep
     skip, de, pfm = (cmp.row(s, "5 mA") for s in ("pulse-skipping", "diode-emulation", "pfm"))
     assert skip.ok and skip.light_mode == "skip"
-    L, vin, vo, t_min = sc.inductor.inductance, sc.supply.voltage, 3.3, 80e-9
+    t_min = 80e-9
 
     def rate(t):
-        ip = (vin - vo) * t / L
-        return skip.load_current / (0.5 * ip * (t + L * ip / vo))
+        return skip.load_current / min_on_charge(sc, t)
 
     # 163 kHz at t_min, 129 kHz with the 10 ns dead time added (152 kHz measured)
     assert rate(t_min + sc.switching.dead_time[0]) < skip.switching_frequency < rate(t_min)
@@ -120,19 +139,12 @@ def test_boundary_says_where_pfm_hands_over_to_the_clock(capsys):
     # within one ring period 2 pi sqrt(L Cn) of the clock's (derived: lobes are a ring
     # period apart; at 0.1 % less load the orbit moves by one lobe, 1.002 MHz -> 912 kHz,
     # so no tighter bound holds whatever the rounding)
-    import json
-
     from bucksim.cli.main import main
-    assert main(["boundary", str(RAIL), "--load", "10 mA", "--pfm-peak-current", "0.4 A",
-                 "--json"]) == 0
-    pfm = json.loads(capsys.readouterr().out)["pfm"]
+    pfm = boundary_json(capsys, "--pfm-peak-current", "0.4 A")["pfm"]
     sc = load_scenario(RAIL)
     L, vin, vo, fs = sc.inductor.inductance, sc.supply.voltage, 3.3, sc.switching.frequency
     expect = 0.5 * 0.4 * (L * 0.4 / (vin - vo) + L * 0.4 / vo) * fs
     assert pfm["closed_form"] == pytest.approx(expect, rel=1e-3)    # vo: the settled 3.3 V
-    import math
-
-    from bucksim.model.conduction import node_capacitance
     ring = 2 * math.pi * math.sqrt(L * node_capacitance(sc))
     assert abs(1 / pfm["frequency"] - 1 / fs) <= ring
     assert main(["boundary", str(RAIL.parent / "core_rail_1v0.toml"), "--pfm-peak-current",
@@ -142,21 +154,14 @@ def test_boundary_says_where_pfm_hands_over_to_the_clock(capsys):
 
 def test_boundary_says_where_pulse_skipping_stops_skipping(capsys):
     # a pulse at every clock edge carries Io = 0.5 Ip (t + L Ip / Vo) fs, Ip = (Vin - Vo)
-    # t / L (lossless charge balance, derived); on the exact stage the node holds the
-    # node up for part of the dead time after each pulse, so t lies between t_min and
-    # t_min plus the falling dead time
-    import json
-
-    from bucksim.cli.main import main
-    assert main(["boundary", str(RAIL), "--load", "10 mA", "--skip-min-on-time", "80 ns",
-                 "--json"]) == 0
-    skip = json.loads(capsys.readouterr().out)["pulse_skipping"]
+    # t / L (lossless charge balance, derived); on the exact stage the node capacitance
+    # holds the node up for part of the dead time after each pulse, so t lies between
+    # t_min and t_min plus the falling dead time
+    skip = boundary_json(capsys, "--skip-min-on-time", "80 ns")["pulse_skipping"]
     sc = load_scenario(RAIL)
-    L, vin, vo, fs = sc.inductor.inductance, sc.supply.voltage, 3.3, sc.switching.frequency
 
     def carried(t):
-        ip = (vin - vo) * t / L
-        return 0.5 * ip * (t + L * ip / vo) * fs
+        return min_on_charge(sc, t) * sc.switching.frequency
 
     assert skip["closed_form"] == pytest.approx(carried(80e-9), rel=1e-3)  # vo: settled
     assert carried(80e-9) < skip["exact"] < carried(80e-9 + sc.switching.dead_time[0])
