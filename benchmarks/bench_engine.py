@@ -52,10 +52,11 @@ from bucksim.model.stage import Stage
 
 
 def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9),
-         coss=(0.0, 0.0), network=False) -> Scenario:
+         coss=(0.0, 0.0), network=False, edges=(0.0, 0.0)) -> Scenario:
     """A 12 V -> 3.3 V, 500 kHz bench rail (invented demo values); ``coss`` (high, low)
     [F] above 0 makes the switch node a state; ``network``: a 22 uF / 3 mohm input
-    capacitor behind 10 mohm and 1 uH (two more states)."""
+    capacitor behind 10 mohm and 1 uH (two more states); ``edges``: the MOSFETs'
+    (rise, fall) times [s] (with node capacitance, current ramps: two states each)."""
     net = {"input_capacitor": InputCapacitor((CapacitorBank(22e-6, 3e-3),))} if network else {}
     return Scenario(
         title=f"bench {strategy}",
@@ -64,9 +65,11 @@ def rail(strategy: str, load_ohm: float, cycles: int, dead=(20e-9, 25e-9),
         inductor=Inductor(4.7e-6, 0.012),
         output_capacitor=Capacitor(47e-6, 0.004),
         high_side=Mosfet(0.012, Diode(0.75, 0.02, section="high_side.body_diode"),
-                         coss=coss[0], section="high_side"),
+                         coss=coss[0], rise_time=edges[0], fall_time=edges[1],
+                         section="high_side"),
         low_side=Mosfet(0.006, Diode(0.75, 0.02, section="low_side.body_diode"),
-                        coss=coss[1], section="low_side"),
+                        coss=coss[1], rise_time=edges[0], fall_time=edges[1],
+                        section="low_side"),
         load=Load(load_ohm),
         control=Control(duty=0.285),
         run=RunSettings(cycles=cycles),
@@ -151,6 +154,32 @@ def ode_reference(scenario: Scenario, cycles: int):
     return z[:2], n_rhs
 
 
+def node_rates(cycles: int) -> dict:
+    """Engine rates [cycles/s] and segments a cycle of the stages with more states:
+    the node, the channels' ramps, coss tables, the input network."""
+    out = {}
+    # the switch node as a state (400 pF + 1.2 nF, invented): swings in both dead
+    # times and, in DCM, the node's ring in the idle interval
+    node = (400e-12, 1.2e-9)
+    out["fpwm"], res_node = engine_rate(rail("forced-pwm", 0.66, cycles, coss=node))
+    out["de"], _ = engine_rate(rail("diode-emulation", 30.0, cycles, coss=node))
+    out["seg"] = len(res_node.t0) / cycles
+    # the channels' current ramps (5 ns each, invented): two states per MOSFET, and
+    # the ramps' own segments and events
+    out["ramps"], res = engine_rate(rail("forced-pwm", 0.66, cycles, coss=node,
+                                         edges=(5e-9, 5e-9)))
+    out["seg_ramps"] = len(res.t0) / cycles
+    # coss as tables (C ~ v^-1/2, 6 points each, invented): every band edge the
+    # swing crosses is one more event
+    curve = [sqrt_law(c * 5.0 ** 0.5) for c in node]     # the same C at 5 V
+    out["table"], res_tab = engine_rate(rail("forced-pwm", 0.66, cycles, coss=curve))
+    out["seg_table"] = len(res_tab.t0) / cycles
+    # the input side as states (a bank and the source's inductance: two more)
+    out["net"], _ = engine_rate(rail("forced-pwm", 0.66, cycles, network=True))
+    out["node_net"], _ = engine_rate(rail("forced-pwm", 0.66, cycles, coss=node, network=True))
+    return out
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--cycles", type=int, default=200_000)
@@ -161,20 +190,11 @@ def main(argv=None):
     engine_rate(rail("forced-pwm", 0.66, a.cycles))     # thrown away: see engine_rate
     fpwm, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles))
     de, _ = engine_rate(rail("diode-emulation", 30.0, a.cycles))
-    # the switch node as a state (400 pF + 1.2 nF, invented): swings in both dead
-    # times and, in DCM, the node's ring in the idle interval
-    node = (400e-12, 1.2e-9)
-    fpwm_node, res_node = engine_rate(rail("forced-pwm", 0.66, a.cycles, coss=node))
-    de_node, _ = engine_rate(rail("diode-emulation", 30.0, a.cycles, coss=node))
-    seg_node = len(res_node.t0) / a.cycles
-    # coss as tables (C ~ v^-1/2, 6 points each, invented): every band edge the
-    # swing crosses is one more event
-    curve = [sqrt_law(c * 5.0 ** 0.5) for c in node]     # the same C at 5 V
-    fpwm_tab, res_tab = engine_rate(rail("forced-pwm", 0.66, a.cycles, coss=curve))
-    seg_tab = len(res_tab.t0) / a.cycles
-    # the input side as states (a bank and the source's inductance: two more)
-    fpwm_net, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles, network=True))
-    fpwm_node_net, _ = engine_rate(rail("forced-pwm", 0.66, a.cycles, coss=node, network=True))
+    nodes = node_rates(a.cycles)
+    fpwm_node, seg_node, de_node = nodes["fpwm"], nodes["seg"], nodes["de"]
+    fpwm_ramps, seg_ramps = nodes["ramps"], nodes["seg_ramps"]
+    fpwm_tab, seg_tab = nodes["table"], nodes["seg_table"]
+    fpwm_net, fpwm_node_net = nodes["net"], nodes["node_net"]
 
     closed = closed_loop_rate(a.cycles)
     analog = closed_loop_rate(a.cycles, implementation="analog")
@@ -195,6 +215,8 @@ def main(argv=None):
         "diode_emulation_dcm_cycles_per_s": de,
         "forced_pwm_node_cycles_per_s": fpwm_node,
         "forced_pwm_node_segments_per_cycle": seg_node,
+        "forced_pwm_node_ramps_cycles_per_s": fpwm_ramps,
+        "forced_pwm_node_ramps_segments_per_cycle": seg_ramps,
         "diode_emulation_dcm_node_cycles_per_s": de_node,
         "forced_pwm_coss_table_cycles_per_s": fpwm_tab,
         "forced_pwm_coss_table_segments_per_cycle": seg_tab,
@@ -214,6 +236,9 @@ def main(argv=None):
           f"a cycle) | {fpwm_node:.3g} cycles/s |")
     print(f"| engine, forced PWM with coss tables (C ~ v^-1/2, 6 points each; {seg_tab:.0f} "
           f"segments a cycle) | {fpwm_tab:.3g} cycles/s |")
+    print(f"| engine, forced PWM with node capacitance and both channels' current ramps "
+          f"(5 ns; 4 more states, "
+          f"{seg_ramps:.0f} segments a cycle) | {fpwm_ramps:.3g} cycles/s |")
     print(f"| engine, diode emulation in DCM with node capacitance (node ring) "
           f"| {de_node:.3g} cycles/s |")
     print(f"| engine, forced PWM with an input capacitor and source inductance (+2 states) "

@@ -149,13 +149,18 @@ class Run:
     def signals(self) -> tuple:
         """Names this run can evaluate: :data:`SIGNALS`, plus ``u`` and ``vref`` in an
         analog loop, and the input side's (``vs``, ``vterm``, ``isrc``, ``icin``,
-        ``icin1`` .., ``ilf``, ``idamp``, ``irp``) with an input capacitor."""
+        ``icin1`` .., ``ilf``, ``idamp``, ``irp``) with an input capacitor, and each
+        ramping switch's ``high_side_ramp`` / ``low_side_ramp`` [A] and the voltage
+        across it, ``..._ramp_voltage`` [V] (:mod:`bucksim.model.stage_ramps`)."""
         net = self.stage.net
         extra = () if net is None else (("vs", "vterm", "isrc", "icin")
                                          + tuple(k for k in net.rows if k[:4] == "icin"
                                                  and k != "icin")
                                          + ("ilf", "idamp", "irp"))
-        return SIGNALS + (LOOP_SIGNALS if self.stage.analog else ()) + extra
+        ramps = tuple(f"{dev}_ramp{kind}" for dev, i in (("high_side", self.stage.i_hs),
+                                                         ("low_side", self.stage.i_ls))
+                      if i >= 0 for kind in ("", "_voltage"))
+        return SIGNALS + (LOOP_SIGNALS if self.stage.analog else ()) + extra + ramps
 
     @property
     def period(self) -> float:

@@ -26,6 +26,13 @@ from dataclasses import dataclass, field
 from bucksim.analysis.budget_dcm import dcm_conduction, dcm_core, dcm_point, dcm_switching
 from bucksim.analysis.budget_edges import async_edges, dead_times, node_charge, recovered_ccm
 from bucksim.analysis.budget_input import input_items
+from bucksim.analysis.budget_ramps import (
+    fall_diode_times,
+    fall_excess,
+    ramps_in_circuit,
+    rise_delay,
+    rise_share,
+)
 from bucksim.analysis.budget_ring import lc_dead_time_integral, node_parts, slew_excess
 from bucksim.analysis.edges import snubbed_turn_off
 from bucksim.analysis.gate_drive import closed_form as gate_drive_closed_form
@@ -156,6 +163,7 @@ def _operating_point(scenario, D: float) -> dict:
     d_diode = 0.0 if sync else 1.0 - D
     node = node_parts(scenario)
     cn = node.cn
+    ramp_off = ramps_in_circuit(scenario)[0] and hs.fall_time > 0.0
 
     vo, io, ripple = D * vin, D * vin * g + icc, 0.0
     for _ in range(50):
@@ -164,6 +172,12 @@ def _operating_point(scenario, D: float) -> dict:
         a0 = D * vin  # constant part
         a1 = D * (rs + hs.rds_on) + d_ls * (ls.rds_on if sync else 0.0) + d_diode * r_l + dcr
         a0 -= d_diode * vf_l
+        t_rise = rise_share(scenario, valley)
+        if t_rise > 0.0:
+            # the high side's current ramps for t_rise while the low-side diode holds the
+            # node at -Vf - r (I - i_hs) (budget_ramps, derived)
+            a0 -= t_rise * fs * (vin + vf_l)
+            a1 += t_rise * fs * (0.5 * r_l - rs - hs.rds_on)
         for td, i_edge, rising in ((tf, peak, False), (tr, valley, True)):
             de = td * fs
             if i_edge >= 0:
@@ -181,18 +195,20 @@ def _operating_point(scenario, D: float) -> dict:
             # the node's swing at the peak current after the high side opens, from
             # v_a to the diode's clamp v_c (in vn: the terminal is vn - Rn I): it
             # takes Q / I and holds the node above v_c by int (v - v_c) Cn dv / I
-            # (derived; Cn (Vin + Vf)^2 / 2I linear without drops)
-            a0 += fs * slew_excess(node, v_a, v_c, peak)
+            # (derived; Cn (Vin + Vf)^2 / 2I linear without drops); slower behind a ramp
+            a0 += fs * (fall_excess(cn, v_a - v_c, peak, hs.fall_time) if ramp_off
+                        else slew_excess(node, v_a, v_c, peak))
         vo_new = (a0 - a1 * icc) / (1.0 + a1 * g)
         io = g * vo_new + icc
-        ripple = (vin - (rs + hs.rds_on + dcr) * io - vo_new) * D / (L * fs)
+        ripple = (vin - (rs + hs.rds_on + dcr) * io - vo_new) * (D - t_rise * fs) / (L * fs)
         if abs(vo_new - vo) <= 1e-13 * max(1.0, abs(vo)):
             vo = vo_new
             break
         vo = vo_new
     return {"duty": D, "vin": vin, "vo": vo, "io": io, "ripple": ripple,
             "peak": io + ripple / 2, "valley": io - ripple / 2,
-            "dead_time_share": (tf + tr) * fs, "frequency": fs, "conduction_mode": "ccm"}
+            "dead_time_share": (tf + tr) * fs, "frequency": fs, "conduction_mode": "ccm",
+            "rise_ramp": t_rise}
 
 
 @single_blas_thread
@@ -290,8 +306,11 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
     tf, tr = scenario.switching.dead_time if sync else (0.0, 0.0)
     ms = io * io + dI * dI / 12.0  # mean square of the triangle around Io
     EM, CP = _EM, _CP
+    # the high side is fully on for D T less its turn-on ramp, where circuit (budget_ramps)
+    d_on = D - rise_delay(scenario) * fs
     items = [BudgetItem("high_side.conduction", "high_side", "conduction",
-                        hs.rds_on * D * ms, "Rds_hs D (Io^2 + dI^2/12)", EM, _RAMP)]
+                        hs.rds_on * d_on * ms, "Rds_hs (D - t_rise fs)(Io^2 + dI^2/12)"
+                        if d_on < D else "Rds_hs D (Io^2 + dI^2/12)", EM, _RAMP)]
     if sync:
         d_ls = 1.0 - D - (tf + tr) * fs
         items.append(BudgetItem("low_side.conduction", "low_side", "conduction",
@@ -301,6 +320,18 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
         e = dead_times(scenario, op)
         p_l = sum((bd_l.vf * i + bd_l.r * i * i) * t * fs
                   for t, i in (e["falling"] or (0.0, 0.0), e["rising"] or (0.0, 0.0)))
+        if e["falling"] and ramps_in_circuit(scenario)[0] and hs.fall_time > 0.0:
+            # behind the turn-off ramp the diode takes the current as the channel lets go
+            t_e, i_e = e["falling"]
+            pk = op["peak"]
+            delta = (scenario.supply.voltage - (scenario.supply.resistance + hs.rds_on) * pk
+                     + bd_l.vf - (node_parts(scenario).rn - bd_l.r) * pk)
+            t1, t2 = fall_diode_times(node_parts(scenario).cn, delta, pk, hs.fall_time, tf)
+            p_l += ((bd_l.vf * i_e * t1 + bd_l.r * i_e * i_e * t2)
+                    - (bd_l.vf * i_e + bd_l.r * i_e * i_e) * t_e) * fs
+        # and the triangle it carries while the high side's current ramps up (derived)
+        i_v, t_r = op["valley"], op.get("rise_ramp", 0.0)
+        p_l += (bd_l.vf * i_v / 2.0 + bd_l.r * i_v * i_v / 3.0) * t_r * fs
         t_h, i_h = e["high_side"] or (0.0, 0.0)
         p_h = (bd_h.vf * -i_h + bd_h.r * i_h * i_h) * t_h * fs
         items.append(BudgetItem("low_side_body_diode.conduction", "low_side_body_diode",
@@ -335,8 +366,10 @@ def _conduction_items(scenario, op) -> list[BudgetItem]:
                             "the ripple current's share in the load (all of it taken into C)"))
     if scenario.supply.resistance > 0 and scenario.input_capacitor is None:
         items.append(BudgetItem("supply.conduction", "supply", "conduction",
-                                scenario.supply.resistance * D * ms, "Rs D (Io^2 + dI^2/12)", EM,
-                                _RAMP))
+                                scenario.supply.resistance * (d_on * ms + (D - d_on)
+                                                              * max(op["valley"], 0.0) ** 2
+                                                              / 3.0),
+                                "Rs D (Io^2 + dI^2/12)", EM, _RAMP))
     items += [BudgetItem(*row) for row in input_items(scenario, op["valley"], op["peak"], D, fs)]
     return items
 
@@ -351,8 +384,24 @@ def _switching_items(scenario, op) -> list[BudgetItem]:
     # the node is at ground when the high side turns on unless a negative
     # current has already carried it to Vin during the rising dead time
     hard_on = vl > 0 or (sync and tr == 0)
-    e_off = float(snubbed_turn_off(vin, pk, hs.fall_time, node_capacitance(scenario)))
-    overlap = (0.5 * vin * max(vl, 0.0) * hs.rise_time + e_off) * fs
+    d_ls = ls.body_diode if sync else ls
+    # in the circuit the ramp's node swings on to the diode's clamp, -Vf (budget_ramps)
+    swing = vin + d_ls.vf if ramps_in_circuit(scenario)[0] else vin
+    e_off = float(snubbed_turn_off(swing, pk, hs.fall_time, node_capacitance(scenario),
+                                   node_parts(scenario).rn))
+    e_on = 0.5 * vin * max(vl, 0.0) * hs.rise_time
+    t_r = op.get("rise_ramp", 0.0)
+    if t_r > 0.0:
+        # the ramp against the low-side diode's clamp, with its drops (budget_ramps, derived)
+        vf_l, r_l = ((ls.body_diode.vf, ls.body_diode.r) if sync else (ls.vf, ls.r))
+        rs = scenario.supply.resistance
+        e_on = (0.5 * (vin + vf_l) * vl + (r_l / 6.0 - rs / 3.0) * vl * vl) * t_r
+    if vl < 0 and ramps_in_circuit(scenario)[1] and ls.fall_time > 0.0:
+        # forced PWM: the low side's negative current ramps down against the node as
+        # the high side's positive one does (the same derived closed form)
+        e_off += float(snubbed_turn_off(vin + scenario.high_side.body_diode.vf, -vl,
+                                        ls.fall_time, node_capacitance(scenario)))
+    overlap = (e_on + e_off) * fs
     items = [BudgetItem("switching.overlap", "high_side", "switching", overlap,
                         "(0.5 Vin I_valley t_rise + E_off(I_peak)) fs, E_off = 0.5 Vin I t_fall "
                         "snubbed by Cn at low current (edges.snubbed_turn_off, derived)", CP,
@@ -383,6 +432,8 @@ def _core_item(scenario, op) -> BudgetItem | None:
         return None
     from bucksim.analysis.coreloss import igse_coefficient
     D, fs, dI = op["duty"], op["frequency"], op["ripple"]
+    # the flux rises while the node is high: D less the turn-on ramp (budget_ramps)
+    D -= op.get("rise_ramp", 0.0) * fs
     ki = igse_coefficient(core.k, core.alpha, core.beta)
     dB = scenario.inductor.inductance * dI / (core.turns * core.area)
     pv = ki * dB ** core.beta * fs ** core.alpha * (D ** (1 - core.alpha)

@@ -33,6 +33,14 @@ from __future__ import annotations
 import math
 
 from bucksim.analysis.budget_input import input_items
+from bucksim.analysis.budget_ramps import (
+    fall_ramp,
+    ramped_charge_time,
+    ramped_square,
+    ramped_time,
+    ramps_in_circuit,
+    rise_delay,
+)
 from bucksim.analysis.budget_ring import (
     idle_ring,
     node_parts,
@@ -93,7 +101,12 @@ def _parts(scenario) -> dict:
             "tf": sw.dead_time[0] if sync else 0.0, "node": node_parts(scenario),
             "g": 0.0 if load.resistance in (None, math.inf) else 1.0 / load.resistance,
             "icc": load.current, "ring": True,
-            "vc": scenario.supply.voltage + hs.body_diode.vf, "r_h": rs + hs.body_diode.r}
+            "vc": scenario.supply.voltage + hs.body_diode.vf, "r_h": rs + hs.body_diode.r,
+            "t_ramp": fall_ramp(scenario),
+            "t_rise": rise_delay(scenario)}
+
+
+RISE_GAIN = 1.0
 
 
 def _swing(p: dict, vo: float, ipk: float) -> dict:
@@ -108,15 +121,24 @@ def _swing(p: dict, vo: float, ipk: float) -> dict:
            "swing_charge": 0.0, "swing_step": 0.0, "clamped": True}
     if cn <= 0:
         return out
-    t_max = p["tf"] if p["sync"] else math.inf
+    # behind the channel's turn-off ramp the swing runs late by t_f / 2, on the
+    # constant-current clock of budget_ramps (first order in the ramp)
+    t_r = p.get("t_ramp", 0.0)
+    t_max = ramped_charge_time(p["tf"], t_r) if p["sync"] else math.inf
     t_s = rlc_time_to(L, R, cn, vo, v0, ipk, -vf, node.rn - p["rd"], t_max)
     if not math.isfinite(t_s):
         if not p["sync"]:   # a current too small to reach the clamp: left as a jump (rare)
             return out
         t_s, out["clamped"] = t_max, False
     v_s, i_s = rlc_swing(L, R, cn, vo, v0, ipk, t_s)
-    out.update(t_swing=t_s, v_swing=v_s, i_swing=i_s, swing_charge=cn * (v0 - v_s),
-               swing_square=rlc_square(L, R, cn, vo, v0, ipk, t_s))
+    t_real = ramped_time(t_s, t_r)
+    # int i_C^2: the ramp's share replaces the constant current's over the same charge
+    square = rlc_square(L, R, cn, vo, v0, ipk, t_s) + (
+        ramped_square(ipk, t_real, t_r) - ipk * ipk * t_s)
+    # the ramp holds the node near v0 for the delay: the current rises on meanwhile
+    i_s += RISE_GAIN * (v0 - vo) * (t_real - t_s) / L
+    out.update(t_swing=t_real, v_swing=v_s, i_swing=i_s, swing_charge=cn * (v0 - v_s),
+               swing_square=square)
     if out["clamped"]:
         out["swing_step"] = transfer(node, 0.0, v_s, -vf - p["rd"] * i_s)
     return out
@@ -133,7 +155,9 @@ def _period(p: dict, D: float, vo: float, i0: float = 0.0) -> dict | None:
     :func:`~bucksim.analysis.budget_ring.idle_ring`'s.
     """
     T, L, vin, vf = p["T"], p["L"], p["vin"], p["vf"]
-    t_on = D * T
+    # the channel closes fully its rise time after the clock where the ramps are circuit
+    # (budget_ramps.rise_delay): the ring goes on meanwhile (first order)
+    t_on = D * T - p["t_rise"]
     h = 0.5 * p["r_on"] * t_on
     ipk = (i0 * (L - h) + (vin - vo) * t_on) / (L + h)
     if ipk <= 0.0 or vo <= 0.0:
@@ -351,9 +375,14 @@ def dcm_switching(scenario, op: dict) -> list[tuple]:
     hs, ls = scenario.high_side, scenario.low_side
     sync = isinstance(ls, Mosfet)
     node = node_parts(scenario)
-    e_off = float(snubbed_turn_off(vin, pk, hs.fall_time, node.cn))
+    d_ls = ls.body_diode if sync else ls
+    # in the circuit the ramp's node swings on to the diode's clamp, -Vf (budget_ramps)
+    swing = vin + d_ls.vf if ramps_in_circuit(scenario)[0] else vin
+    e_off = float(snubbed_turn_off(swing, pk, hs.fall_time, node.cn, node.rn))
+    # a ramp in the circuit turns on against the node where the ring left it (derived)
+    v_ds = vin - op["v_on"] if fall_ramp(scenario) or ramps_in_circuit(scenario)[0] else vin
     items = [("switching.overlap", "high_side", "switching",
-              (0.5 * vin * max(i0, 0.0) * hs.rise_time + e_off) * fs,
+              (0.5 * v_ds * max(i0, 0.0) * hs.rise_time + e_off) * fs,
               "(0.5 Vin max(i0, 0) t_rise + E_off(Ipk)) fs, E_off = 0.5 Vin I t_fall "
               "snubbed by Cn at low current (edges.snubbed_turn_off, derived); i0 = 0 "
               "without node capacitance (turn-on at zero current)", _CP,

@@ -24,6 +24,13 @@ References
 from __future__ import annotations
 
 from bucksim.analysis.budget_dcm import stored_charge
+from bucksim.analysis.budget_ramps import (
+    fall_ramp,
+    ramped_charge_time,
+    ramped_square,
+    ramped_time,
+    rise_delay,
+)
 from bucksim.analysis.budget_ring import (
     node_parts,
     rlc_square,
@@ -37,20 +44,25 @@ from bucksim.analysis.recovery import recovery_parameters
 from bucksim.model.parts import Mosfet
 
 
-def _slew(node, v_a: float, v_c: float, i: float, td: float) -> dict:
-    """A swing down at the constant current ``i > 0`` [A] from ``v_a`` toward the clamp
-    ``v_c`` [V] within ``td`` [s]: its time, ``int i^2``, and the node where it stops."""
+def _slew(node, v_a: float, v_c: float, i: float, td: float, t_ramp: float = 0.0) -> dict:
+    """A swing down at the current ``i > 0`` [A] from ``v_a`` toward the clamp ``v_c``
+    [V] within ``td`` [s]: its time, ``int i^2``, and the node where it stops; behind
+    a turn-off ramp of ``t_ramp`` [s] the node takes ``I t / t_ramp`` first
+    (:mod:`bucksim.analysis.budget_ramps`)."""
     t = slew_charge(node, v_c, v_a) / i if v_a > v_c and node.cn > 0 else 0.0
+    t = ramped_time(t, t_ramp)
     if t <= td:
-        return {"t": t, "square": i * i * t, "v": min(v_c, v_a), "clamped": True}
-    return {"t": td, "square": i * i * td, "v": slew_to(node, v_a, i * td), "clamped": False}
+        return {"t": t, "square": ramped_square(i, t, t_ramp), "v": min(v_c, v_a),
+                "clamped": True}
+    return {"t": td, "square": ramped_square(i, td, t_ramp),
+            "v": slew_to(node, v_a, i * ramped_charge_time(td, t_ramp)), "clamped": False}
 
 
 def _falling(scenario, node, pk: float, tf: float) -> dict:
     hs, ls = scenario.high_side, scenario.low_side
     d = ls.body_diode if isinstance(ls, Mosfet) else ls
     v_a = scenario.supply.voltage - (scenario.supply.resistance + hs.rds_on) * pk
-    s = _slew(node, v_a, -d.vf + (node.rn - d.r) * pk, pk, tf)
+    s = _slew(node, v_a, -d.vf + (node.rn - d.r) * pk, pk, tf, fall_ramp(scenario))
     s["v_diode"] = -(d.vf + d.r * pk)
     return s
 
@@ -103,6 +115,9 @@ def dead_times(scenario, op) -> dict:
             out["high_side"] = (tr, vl)
             return out
         L, R, cn = node.L, node.R, node.cn
+        # the high side closes its rise time after its edge where the ramps are circuit
+        # (budget_ramps.rise_delay): the swing goes on meanwhile
+        tr = tr + rise_delay(scenario)
         t_c = rlc_time_to(L, R, cn, vo, v0, vl, clamp, node.rn - r_h, tr)
         t_open = min(t_c, tr)
         v1, i1 = rlc_swing(L, R, cn, vo, v0, vl, t_open)
@@ -171,6 +186,10 @@ def node_charge(scenario, op, hard_on: bool) -> tuple[float, str]:
         v_before = -ls.rds_on * vl if (sync and tr == 0) else -(vf + r_d * vl)
         if sync and e["v_hs"] is not None:
             v_before = e["v_hs"]
+        if op.get("rise_ramp", 0.0) > 0.0 and v_before == -(vf + r_d * vl):
+            # the channel's ramp has taken the diode's current by the time it closes
+            # (analysis.budget_ramps): the clamp at -Vf
+            v_before = -vf
         formula = ("integral (V_p - v) Cn(v) dv fs per closing switch (Cn (v_b - v_a)"
                    "(V_p - (v_a + v_b)/2) linear): ~0.5 Cn (Vin + Vf)^2 at high-side "
                    "turn-on from the diode (~Vin^2 without rising dead time), ~0.5 Cn "

@@ -14,6 +14,7 @@ import json
 from dataclasses import dataclass
 
 from bucksim.analysis.budget import estimate
+from bucksim.analysis.budget_ramps import ramps_in_circuit
 from bucksim.analysis.gate_drive import SHARES as GATE_SHARES
 from bucksim.threads import single_blas_thread
 
@@ -39,6 +40,22 @@ TOLERANCES = {
                 "recovery": 0.2, "gate": 1e-9, "core": 0.2, "total": 0.02, "output": 0.02,
             "switch_node": 0.3},
 }
+
+#: Where the channels' current ramps are circuit (node capacitance and a rise or fall
+#: time, :mod:`bucksim.model.stage_ramps`), the closed form takes them to first order
+#: (:mod:`bucksim.analysis.budget_ramps`): these kinds widen to about twice what was
+#: measured on the bundled rails and the test rails (largest |diff| in brackets): DCM
+#: conduction 5 % (2.6 %), overlap 12 % (6.3 %), coss 35 % (18 %, sensor_rail: the low
+#: side closes on a snubbed swing that the ramp has delayed); CCM core 10 % (4.5 %, the
+#: ramp bends the flux's rise); reverse current overlap 30 % (14 %, io_rail: the
+#: inductor current moves during the edge) and total 5 % (2.6 %: the items' reverse-current
+#: errors, no longer offset by the node charge the delayed closing saves).
+RAMP_TOLERANCES = {"ccm": {"core": 0.1}, "dcm": {"conduction": 0.05, "overlap": 0.12,
+                                                 "coss": 0.35},
+                   "reverse": {"overlap": 0.3, "total": 0.05}}
+_RAMPS = ("the channels' current ramps are circuit; the closed form takes them to first order "
+          "at the ripple formula's currents (a fixed current over each edge, the swing late "
+          "by t_fall / 2)")
 
 #: A disagreement below this share of the simulated total loss is agreement whatever the
 #: item's own size (a 1e-28 W recovery is not worth a flag).
@@ -168,12 +185,15 @@ def _kind(key: str) -> str:
             "gate_drive": "gate"}[key]
 
 
-def _tolerance(regime: str, key: str, op: dict) -> float:
-    """The row's tolerance [-] (:data:`TOLERANCES`). In DCM the low-side diode's
+def _tolerance(regime: str, key: str, op: dict, ramps: bool = False) -> float:
+    """The row's tolerance [-] (:data:`TOLERANCES`, widened by :data:`RAMP_TOLERANCES`
+    where the ramps are circuit). In DCM the low-side diode's
     share of the falling dead time is what is left after the node's swing,
     ``t_diode = t_dead - t_swing``: a 2 % error in the swing's duration moves it by
     ``0.02 t_swing / t_diode`` (derived), which widens that row."""
     tol = TOLERANCES[regime][_kind(key)]
+    if ramps:
+        tol = max(tol, RAMP_TOLERANCES[regime].get(_kind(key), 0.0))
     if regime == "dcm" and key == "low_side_body_diode.conduction" and op["t_diode"] > 0:
         tol += 0.02 * op["t_swing"] / op["t_diode"]
     return tol
@@ -206,10 +226,13 @@ def _has_curve(scenario) -> bool:
     return any(isinstance(c, CapacitanceTable) for c in parts)
 
 
-def _reason(item_reason: str, regime: str, key: str, summary: dict, curve: bool) -> str:
+def _reason(item_reason: str, regime: str, key: str, summary: dict, curve: bool,
+            ramps: bool = False) -> str:
     why = [item_reason] if item_reason else []
     if REGIME_REASONS[regime].get(_kind(key)):
         why.append(REGIME_REASONS[regime][_kind(key)])
+    if ramps and _kind(key) in RAMP_TOLERANCES[regime]:
+        why.append(_RAMPS)
     if curve and (_kind(key) in _CURVE_KINDS or "body_diode" in key):
         why.append(_CURVE)
     sim_dcm = summary["conduction_mode"] == "dcm"
@@ -270,17 +293,18 @@ def crosscheck(scenario, run=None, cycles=None) -> CrossCheck:
     regime = _regime(op, scenario)
     floor = FLOOR * abs(summary["power"]["loss"])
     curve = _has_curve(scenario)
+    ramps = any(ramps_in_circuit(scenario))
     rows = []
 
     def add(item, closed, sim, key, neglects):
         diff = None if sim is None else sim - closed
         ref = max(abs(closed), abs(sim or 0.0))
         pct = None if sim is None or ref == 0 else 100.0 * diff / closed if closed else None
-        tol = _tolerance(regime, key, op)
+        tol = _tolerance(regime, key, op, ramps)
         flag = sim is not None and abs(diff) > max(tol * ref, floor)
         rows.append({"item": item, "closed_form": closed, "simulated": sim,
                      "difference": diff, "percent": pct, "tolerance": tol,
-                     "reason": _reason(neglects, regime, key, summary, curve),
+                     "reason": _reason(neglects, regime, key, summary, curve, ramps),
                      "flagged": bool(flag)})
 
     for it in budget.items:

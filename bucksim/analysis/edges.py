@@ -175,7 +175,7 @@ def supply_energy(run, t_start: float, t_stop: float | None = None) -> float:
     return total + float(np.sum(node_transfers(run, t_start, t_stop)["supply"]))
 
 
-def snubbed_turn_off(v, i, t_fall: float, cn: float):
+def snubbed_turn_off(v, i, t_fall: float, cn: float, rn: float = 0.0):
     """Turn-off energy [J] of a channel whose current falls linearly over ``t_fall`` [s]
     while the node capacitance ``cn`` [F] takes the rest, up to the swing ``v`` [V].
 
@@ -187,6 +187,9 @@ def snubbed_turn_off(v, i, t_fall: float, cn: float):
         Current at the instant the channel starts to turn off [A] (``<= 0``: no loss).
     t_fall, cn : float
         The channel's fall time [s] and the node capacitance [F] (0: ``0.5 v i t_fall``).
+    rn : float, optional
+        The node capacitance's series resistance [ohm]: the capacitance's current
+        ``I t / t_f`` drops ``rn I t / t_f`` across it, which the channel holds too.
 
     Notes
     -----
@@ -200,11 +203,13 @@ def snubbed_turn_off(v, i, t_fall: float, cn: float):
         E = \\frac{I^2}{2 C_n t_f}\\left(\\frac{t_1^3}{3} - \\frac{t_1^4}{4 t_f}\\right)
             + \\frac{V I (t_f - t_1)^2}{2 t_f}, \\qquad t_1 = \\min(t_v, t_f),
 
-    which is ``I^2 t_f^2 / (24 C_n)`` below ``I = 2 C_n V / t_f`` (the node does not
+    plus ``rn I^2 (t_1^2 / (2 t_f) - t_1^3 / (3 t_f^2))`` from the series resistance
+    (``rn I^2 t_f / 6`` when the swing outlasts the ramp; derived alike). That
+    is ``I^2 t_f^2 / (24 C_n)`` below ``I = 2 C_n V / t_f`` (the node does not
     finish its swing within ``t_f``: the capacitance snubs the edge) and tends to
-    ``0.5 V I t_f`` far above it. The channel's ramp is not yet part of the
-    circuit (the engine opens it at once): this energy is a formula at the exact
-    edge current, like the other switching kinds.
+    ``0.5 V I t_f`` far above it. It is the closed form of the circuit's own ramp
+    (:mod:`bucksim.model.stage_ramps`) with ``iL`` held over the edge; the loss
+    budget and the crosscheck's closed-form side use it.
     """
     v = np.asarray(v, dtype=float)
     i = np.maximum(np.asarray(i, dtype=float), 0.0)
@@ -217,4 +222,5 @@ def snubbed_turn_off(v, i, t_fall: float, cn: float):
     t1 = np.where(i > 0, np.minimum(tv, t_fall), t_fall)
     e1 = i * i / (2.0 * cn * t_fall) * (t1 ** 3 / 3.0 - t1 ** 4 / (4.0 * t_fall))
     e2 = v * i * (t_fall - t1) ** 2 / (2.0 * t_fall)
-    return np.where(i > 0, e1 + e2, 0.0)
+    e3 = rn * i * i * (t1 * t1 / (2.0 * t_fall) - t1 ** 3 / (3.0 * t_fall * t_fall))
+    return np.where(i > 0, e1 + e2 + e3, 0.0)

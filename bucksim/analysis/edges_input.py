@@ -47,7 +47,7 @@ def jump_energies(run, idx, tau_a, z_a, cond) -> dict:
     z_j = z_a[jump]
     v_b = _node_after(run, idx[jump], z_j)
     v_a = z_j[:, stage.i_node]
-    net, lo, hi = stage.net, stage.i_in, stage.i_ctl
+    net, lo, hi = stage.net, stage.i_in, stage.i_in + stage.n_in
     caps = np.array([name.startswith("vc") for name in net.names])
     loss, supply = np.zeros(len(v_b)), np.zeros(len(v_b))
     for j, (k, va, vb) in enumerate(zip(idx[jump], v_a, v_b, strict=True)):
@@ -86,5 +86,5 @@ def network_state_before(run, t: float, x: np.ndarray) -> np.ndarray:
     v_b = _node_after(run, np.array([k]), z[None, :])[0]
     q = float(stage.curves[level].charge(z[stage.i_node], v_b))
     x = np.array(x, dtype=float, copy=True)
-    x[stage.i_in:stage.i_ctl] -= stage.net.b_d * q
+    x[stage.i_in:stage.i_in + stage.n_in] -= stage.net.b_d * q
     return x

@@ -46,7 +46,7 @@ def _reads_jumping_states(run, c) -> bool:
     stage = run.stage
     cols = [stage.i_node] if stage.node else []
     if stage.net is not None and stage.node:
-        cols += list(range(stage.i_in, stage.i_ctl))
+        cols += list(range(stage.i_in, stage.i_in + stage.n_in))
     return bool(cols) and bool(np.any(c[:, cols] != 0.0))
 
 

@@ -203,7 +203,11 @@ class ChargeGains:
         self.tau = float(tau)
         self.conducts = role.conducts
         self.matrices = run.stage.matrices
+        # the forward current: iL less what a ramping channel carries (model.stage_ramps)
+        ramp = "high_side_ramp" if role.conducts == LOW_DIODE else "low_side_ramp"
         self.rows = role.sign * run.signal_table("iL")
+        if ramp in run.signals:
+            self.rows = self.rows - role.sign * run.signal_table(ramp)
         self._cache: dict[tuple[int, float], np.ndarray] = {}
 
     def gain(self, system: int, d: float) -> np.ndarray:
@@ -352,6 +356,19 @@ def _charge_control(run, role, tau, forced, in_window, t_stop):
     return index[pick], before[pick], q_start, q_stop
 
 
+def _ramped_off(run, role: DiodeRole, prev: np.ndarray) -> np.ndarray:
+    """Per segment: it starts where the opposite channel's rising ramp has taken all
+    of the diode's current (:mod:`bucksim.model.stage_ramps`): the diode stops there
+    because the channel turns on, a forced recovery like an entry into the channel."""
+    seg = run.segments
+    stage = run.stage
+    i = stage.i_hs if role.conducts == LOW_DIODE else stage.i_ls
+    if i < 0:
+        return np.zeros(seg.conduction.shape[0], dtype=bool)
+    rising = seg.x0[:, i + 1] * (1.0 if role.conducts == LOW_DIODE else -1.0) > 0.0
+    return (prev == role.conducts) & (seg.conduction != role.conducts) & rising
+
+
 def recovered_charges(run, t_start: float | None = None, t_stop: float | None = None) -> dict:
     r"""Forced recoveries of both diodes over ``[t_start, t_stop)`` and their charges.
 
@@ -388,7 +405,8 @@ def recovered_charges(run, t_start: float | None = None, t_stop: float | None = 
 
     Fixed mode (``tau = 0``): ``Q_rr = qrr`` at each entry into the opposite
     channel straight from the diode's own conduction (``LOW_DIODE -> HIGH``,
-    ``HIGH_DIODE -> LOW``); the state before t = 0 is
+    ``HIGH_DIODE -> LOW``), or where the opposite channel's rising current ramp
+    takes all of the diode's current; the state before t = 0 is
     :func:`previous_conduction`'s.
     """
     seg = run.segments
@@ -403,7 +421,8 @@ def recovered_charges(run, t_start: float | None = None, t_stop: float | None = 
         tau, k = recovery_parameters(diode)
         forced = (seg.conduction == role.forced_by) & (prev != role.forced_by)
         if tau == 0:
-            idx = np.flatnonzero(forced & in_window & (prev == role.conducts))
+            idx = np.flatnonzero((forced & (prev == role.conducts) | _ramped_off(run, role, prev))
+                                 & in_window)
             charges = np.full(idx.shape[0], float(diode.qrr))
             start = stored = 0.0
         else:

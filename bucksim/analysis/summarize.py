@@ -60,15 +60,15 @@ def summarize(run, cycles: int | None = None) -> Summary:
     idx, tau_a, tau_b, z_a = window_pieces(run, t_start)
     ig = WindowIntegrals(run, idx, tau_b - tau_a, z_a, width)
     devices, loss = _conduction(run.stage, ig, width)
-    e_sw, node, drive, pulses = _switching(run, devices, t_start, t_stop)
-    loss += e_sw + node["high_side"] + node["low_side"]
+    e_sw, e_ramps, node, drive, pulses = _switching(run, ig, devices, t_start, t_stop)
+    loss += e_sw + e_ramps + node["high_side"] + node["low_side"]
     e_core = _core(run, devices, idx, tau_a, tau_b, width)
     loss += e_core
     # the gate drive beyond the MOSFETs' own share (in e_sw), and the controller
     loss += drive["driver"] + drive["resistors"] + drive["regulator"] + drive["quiescent"]
-    # formula energies (overlap, recovery, core, what the gate drive draws from the
-    # input) are added to both sides; the node's charge transfers are circuit: their
-    # source energy is the supply's own
+    # formula energies (overlap without ramps, recovery, core, what the gate drive
+    # draws from the input) are added to both sides; the node's charge transfers and
+    # the channels' ramps are circuit: their source energy is the supply's own
     e_formula = (float(np.sum(node["supply"])) + e_sw - drive["internal"] + e_core
                  + drive["input"])
     e_bias = drive["bias"]
@@ -271,27 +271,34 @@ def _input_side(run, ig, devices, pieces):
 
 
 
-def _switching(run, devices, t_start, t_stop):
+def _switching(run, ig, devices, t_start, t_stop):
     """Switching energies booked to the two switches: the formula kinds (drawn from
-    the supply, dissipated in the switch) and the node's charge transfers (``coss``,
-    from :func:`~bucksim.analysis.edges.node_transfers`; none without node capacitance).
-    Returns the formula kinds' total [J], the transfers, the gate drive's energies
-    (:func:`~bucksim.analysis.gate_drive.gate_drive_energy`) and the high side's
-    turn-ons."""
+    the supply, dissipated in the switch), the channels' current ramps (``overlap``,
+    circuit: ``int v_ds i_ch dt`` over the ramps, :mod:`bucksim.model.stage_ramps`)
+    and the node's charge transfers (``coss``, from
+    :func:`~bucksim.analysis.edges.node_transfers`; none without node capacitance).
+    Returns the formula kinds' total [J], the ramps' [J], the transfers, the gate
+    drive's energies (:func:`~bucksim.analysis.gate_drive.gate_drive_energy`) and the
+    high side's turn-ons."""
     width = t_stop - t_start
     sw = switching_energy(run, t_start, t_stop)
     drive = gate_drive_energy(run.scenario, run.stage, sw["turn_ons"], t_start, t_stop)
     node = node_transfers(run, t_start)
-    total = 0.0
-    for name in ("high_side", "low_side"):
+    total = ramps = 0.0
+    for name, index in (("high_side", run.stage.i_hs), ("low_side", run.stage.i_ls)):
         parts = sw[name]
         energy = sum(parts.values())
         total += energy
+        if index >= 0:      # (switching_energy books no overlap formula for it)
+            ramp = ig.integral(f"{name}_ramp_voltage", f"{name}_ramp")
+            parts["overlap"] += ramp
+            energy += ramp
+            ramps += ramp
         parts["coss"] = node[name]      # 0 without node capacitance
         energy += node[name]
         devices[name]["switching_loss"] = energy / width
         devices[name]["switching"] = {kind: e / width for kind, e in parts.items()}
-    return total, node, drive, sw["events"]["high_side_on"]
+    return total, ramps, node, drive, sw["events"]["high_side_on"]
 
 
 def _core(run, devices, idx, tau_a, tau_b, width):

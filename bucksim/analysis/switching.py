@@ -98,15 +98,21 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
     # the gate loop's share in the MOSFET's own gate resistance (analysis.gate_drive)
     r_drv = sc.controller.driver_resistance
     h["gate"] += hs.qg * hs.gate_voltage * np.count_nonzero(hs_on) * loop_shares(hs, r_drv)[2]
-    h["overlap"] += np.sum(0.5 * vin[hard_on] * np.maximum(i[hard_on], 0.0)) * hs.rise_time
+    # a switch whose ramps are circuit states (model.stage_ramps) has its overlap from
+    # the waveforms (analysis.summarize), not from these formulas
+    hs_formula = run.stage.i_hs < 0
+    ls_formula = run.stage.i_ls < 0
+    if hs_formula:
+        h["overlap"] += np.sum(0.5 * vin[hard_on] * np.maximum(i[hard_on], 0.0)) * hs.rise_time
     recover = hs_on & (prev == LOW_DIODE)
     rec = recovered_charges(run, t_start, t_stop)
     h["recovery"] += float(np.sum(rec["low_side"]["charges"] * rec["low_side"]["vin"]))
 
     hs_off = (prev == HIGH) & (cur != HIGH) & (i > 0)
     # the node capacitance snubs a turn-off at low current (edges.snubbed_turn_off)
-    h["overlap"] += float(np.sum(snubbed_turn_off(vin[hs_off], i[hs_off], hs.fall_time,
-                                                  run.stage.cn)))
+    if hs_formula:
+        h["overlap"] += float(np.sum(snubbed_turn_off(vin[hs_off], i[hs_off], hs.fall_time,
+                                                      run.stage.cn)))
 
     n_ls_on = 0
     t_on = seg.t0[k]
@@ -117,7 +123,8 @@ def switching_energy(run, t_start: float, t_stop: float) -> dict:
         n_ls_on = np.count_nonzero(ls_on)
         lo["gate"] += ls.qg * ls.gate_voltage * n_ls_on * loop_shares(ls, r_drv)[2]
         hard = ls_on & ((prev == HIGH_DIODE) | ((prev == HIGH) & (i < 0)))
-        lo["overlap"] += np.sum(0.5 * vin[hard] * np.abs(i[hard])) * ls.rise_time
+        if ls_formula:
+            lo["overlap"] += np.sum(0.5 * vin[hard] * np.abs(i[hard])) * ls.rise_time
         lo["recovery"] += float(np.sum(rec["high_side"]["charges"] * rec["high_side"]["vin"]))
         out["events"]["low_side_hard_on"] = int(np.count_nonzero(hard))
     out["events"].update({

@@ -46,10 +46,9 @@ from bucksim.engine.kernels import (
     CONTROL_ANALOG,
     CONTROL_DIGITAL,
     CONTROL_OPEN,
+    GATE_OFF,
     HIGH,
-    HIGH_DIODE,
     IDLE,
-    LOW_DIODE,
     OPEN,
     TAYLOR_ORDER,
     advance,
@@ -74,6 +73,20 @@ from bucksim.engine.period import (
     skipped_low_gate,
     start_or_end_hold,
     system_index,
+)
+from bucksim.engine.ramps import (
+    HS_RAMP,
+    NO_RAMP,
+    clamp_reached,
+    is_diode,
+    ramp_clear,
+    ramp_done,
+    ramp_edge,
+    ramp_takeover,
+    ramp_trip,
+    ramp_zero_event,
+    trip_came_first,
+    trip_ends_ramp_segment,
 )
 from bucksim.engine.records import Scratch
 from bucksim.engine.segment_events import (
@@ -120,6 +133,9 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
     control, n_modes = ctl.settings.control, ctl.settings.n_modes
     zs, zst, cap, node = sc.zs, sc.zst, buf.t0.shape[0], i_vn >= 0
     band, band_known, e2, e3, held, nseg, t = 0, False, 0.0, 0.0, 0, 0, c_start * T
+    # the switches' current ramps (engine/ramps): its end [s], which switch, a turn-on?
+    ramps, cond, gate_prev = tab.i_hs >= 0 or tab.i_ls >= 0, IDLE, GATE_OFF
+    r_end, r_dev, r_on = -1.0, NO_RAMP, False
     for c in range(c_start, c_stop):
         tc, t_next = c * T, (c + 1) * T
         tol = _NOMINAL_ULPS * 2.220446049250313e-16 * t_next
@@ -136,14 +152,24 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                 continue
             t = t_ph
             gate = skipped_low_gate(gate, p, t_on_max, strategy, tab.Cls[level], z, node)
-            cond = conduction_for(gate, strategy, z[0], node)
+            cond_prev, cond = cond, conduction_for(gate, strategy, z[0], node)
+            if ramps:
+                cond, r_end, r_dev, r_on = ramp_edge(tab, gate, gate_prev, cond_prev, cond, z,
+                                                     t, r_end, r_dev, r_on)
+            gate_prev = gate
             whole_ok = nominal[p] > 0.0 and abs(t_ph_end - t_ph - nominal[p]) <= tol
             while t < t_ph_end:
+                if r_dev != NO_RAMP and t >= r_end:
+                    cond, r_dev = ramp_done(tab, z, cond, r_dev, r_on), NO_RAMP
                 level = level_at(level_times, level, t)
                 t_stop = segment_stop(level_times, level, t_ph_end, t_end)
+                if r_dev != NO_RAMP and r_end < t_stop:
+                    t_stop = r_end
                 search_ls = search_hs = False
                 if cond == OPEN:
-                    cond, search_ls, search_hs = open_clamps(tab.Cls[level], tab.Chs[level], z)
+                    cond, search_ls, search_hs, at_ls, at_hs = open_clamps(
+                        tab, tab.Cls[level], tab.Chs[level], z)
+                    cond, r_dev = ramp_takeover(tab, z, at_ls, at_hs, cond, r_dev, r_on)
                 if n_modes == 2:
                     held = hold_rule(ctl.settings, ctl.Ce[level], z, held)
                 if cond == OPEN and not band_known:
@@ -165,7 +191,7 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                     node_jump(tab, level, z)    # the node's charge from the input network
                 open_segment(buf, nseg, t, cond, s, z, zs, zst)
                 d = t_stop - t
-                if cond == OPEN and d > gs and (search_ls or search_hs):
+                if cond == OPEN and d > gs and (search_ls or search_hs) and r_dev == NO_RAMP:
                     # a ring of many lobes: the energy bound clears it at once; a long
                     # stretch it cannot clear is cut at half a ring (engine/open_node)
                     dn, lo_ok, hi_ok = open_stretch(tab.open_coef[level * n_bands + band], zs,
@@ -178,16 +204,22 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                     apply(prog.P, s, p, z, sc.tmp)
                 else:
                     advance(tab.Ms, tab.E, tab.h, s, z, d, sc.tmp)
-                tz, kind, hold = -1.0, OPEN, 0
+                tz, kind, hold, trip_at = -1.0, OPEN, 0, -1.0
+                t_stop, d, trip_at = ramp_trip(tab, ctl, s, level, row, zs, zst, z, t, t_stop,
+                                               d, tc, gs, ph_cmp, ph_lim, cmp_level,
+                                               cmp_ramp, sc, r_dev)
                 evented = ends_at_zero_current(cond, strategy)
-                if evented:
+                if evented and r_dev != NO_RAMP and is_diode(cond):
+                    tz = ramp_zero_event(tab, s, cond, zs, z, t, t_stop, d, gs, sc)
+                elif evented:
                     tz = zero_current_event(tab, s, cond, zs, z, t, t_stop, d, gs, sc)
                 elif cond == OPEN:
                     tz, kind = open_node_event(tab, s, level, band, zs, z, t, t_stop, d, gs,
                                                search_ls, search_hs, sc)
-                elif ph_cmp or np.isfinite(ph_lim):
+                elif (ph_cmp or np.isfinite(ph_lim)) and r_dev != HS_RAMP:
                     tz = trip_event(tab, ctl, s, level, row, zs, z, t, t_stop, d, tc, gs,
                                     ph_cmp, ph_lim, cmp_level, cmp_ramp, sc)
+                tz = trip_came_first(z, zs, tz, trip_at)
                 if n_modes == 2:
                     tz, hold = hold_event(tab, ctl, s, level, held, tz, zs, z, t, t_stop, gs, sc)
                 if tz >= 0.0:
@@ -198,6 +230,9 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                         buf.dt[nseg] = tz - t
                         nseg += 1
                     t = tz
+                    if tz == trip_at and hold == 0:     # during the ramp: the on-time ends
+                        tripped = trip_ends_ramp_segment(tab, level, cond, z, node)
+                        break
                     if hold > 0:
                         # the integrator starts or stops holding; the gate phase goes on
                         held = start_or_end_hold(ctl.settings, z, hold)
@@ -208,10 +243,9 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                         z[i_vn] = edges[level, band if kind == BAND_DOWN else band + 1]
                         band, band_known = step_band(edges, level, band, kind), True
                     elif cond == OPEN:
-                        # a clamp: its diode conducts (unless the node only touched it)
-                        if (kind == LOW_DIODE and z[0] > 0.0) or (
-                                kind == HIGH_DIODE and z[0] < 0.0):
-                            cond = kind
+                        # a clamp: its diode conducts (unless the node only touched it),
+                        # or a turning-on channel's own clamp closes it (engine/ramps)
+                        cond, r_dev = clamp_reached(tab, z, kind, cond, r_dev, r_on)
                     else:
                         if node:        # the node opens at its clamped voltage
                             node_held(tab, level, cond, z)
@@ -236,5 +270,8 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                 t_off, p = t, 2
                 continue
             p += 1
+        if r_dev != NO_RAMP:
+            ramp_clear(tab, z)      # a ramp never outlives its period (engine/ramps)
+            r_dev = NO_RAMP
         buf.duty[c - c_start] = (t_off - tc) / T
     return nseg, level, STATUS_OK, t

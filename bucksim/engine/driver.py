@@ -318,7 +318,22 @@ def _stage_tables(stage, table: TransitionTable) -> StageTables:
                        row_norms(Ms, bnd, Chs), third_norms(Ms, bnd, Chs), open_coef,
                        np.ascontiguousarray(edges, dtype=float), e_vn,
                        row_norms(Ms, bnd, e_vn.reshape(1, m)),
-                       third_norms(Ms, bnd, e_vn.reshape(1, m)), _jumps(stage, m))
+                       third_norms(Ms, bnd, e_vn.reshape(1, m)), _jumps(stage, m),
+                       *_ramp_fields(stage, Ms, bnd, e_il))
+
+
+def _ramp_fields(stage, Ms, bnd, e_il):
+    """The ramps' positions, durations and diode-current rows (:mod:`bucksim.engine.ramps`)."""
+    hs, ls = stage.scenario.high_side, stage.scenario.low_side
+    times = np.array([hs.rise_time, hs.fall_time, getattr(ls, "rise_time", 0.0),
+                      getattr(ls, "fall_time", 0.0)], dtype=float)
+    Zd = np.array([e_il, -e_il])
+    if stage.i_hs >= 0:
+        Zd[0, stage.i_hs] = -1.0
+    if stage.i_ls >= 0:
+        Zd[1, stage.i_ls] = 1.0
+    return (int(stage.i_hs), int(stage.i_ls), times, Zd, row_norms(Ms, bnd, Zd),
+            third_norms(Ms, bnd, Zd))
 
 
 def _jumps(stage, m):
@@ -328,7 +343,7 @@ def _jumps(stage, m):
     if stage.net is None or not stage.node:
         return np.zeros((0, m))
     col = np.zeros((1, m))
-    col[0, stage.i_in:stage.i_ctl] = stage.net.b_d
+    col[0, stage.i_in:stage.i_in + stage.n_in] = stage.net.b_d
     return col
 
 

@@ -31,6 +31,7 @@ from bucksim.engine.kernels import (
     OPEN,
 )
 from bucksim.engine.loop_parts import _compensate, _dot
+from bucksim.engine.ramps import diode_currents
 
 #: A state beyond sqrt(max float) has diverged (mirrors simulation.STATE_RANGE).
 STATE_RANGE = 1.3407807929942596e154
@@ -175,19 +176,23 @@ def segment_stop(level_times, level, t_ph_end, t_end):
 
 
 @njit(inline="always")
-def open_clamps(cls, chs, z):
-    """The open node at a clamp: its diode conducts now (current toward it), or
-    the clamp is left unsearched (current away). Returns ``(cond, search_ls,
-    search_hs)``."""
+def open_clamps(tab, cls, chs, z):
+    """The open node at a clamp: its diode conducts now (current toward it: ``iL``
+    less a ramping channel's, :func:`~bucksim.engine.ramps.diode_currents`), or the
+    clamp is left unsearched (current away). Returns ``(cond, search_ls, search_hs,
+    at_ls, at_hs)``; ``at_ls``, ``at_hs``: the node sits on that clamp (a turning-on
+    channel's ramp ends at its own, :func:`~bucksim.engine.ramps.ramp_takeover`)."""
     m = z.shape[0]
     f_ls = _dot(cls, z)
     f_hs = _dot(chs, z)
     clamp_tol = 1e-12 * (abs(cls[m - 1]) + abs(chs[m - 1]) + 1.0)
-    if f_ls <= clamp_tol and z[0] > 0.0:
-        return LOW_DIODE, False, False
-    if f_hs <= clamp_tol and z[0] < 0.0:
-        return HIGH_DIODE, False, False
-    return OPEN, f_ls > clamp_tol, f_hs > clamp_tol
+    d_ls, d_hs = diode_currents(tab, z)
+    at_ls, at_hs = f_ls <= clamp_tol, f_hs <= clamp_tol
+    if at_ls and d_ls > 0.0:
+        return LOW_DIODE, False, False, at_ls, at_hs
+    if at_hs and d_hs > 0.0:
+        return HIGH_DIODE, False, False, at_ls, at_hs
+    return OPEN, not at_ls, not at_hs, at_ls, at_hs
 
 
 @njit(inline="always")

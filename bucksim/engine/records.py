@@ -86,6 +86,18 @@ class StageTables(NamedTuple):
     #: drawn at once from the switch cell (the network's column of the drawn current):
     #: the high side closing on the node takes the node's charge from there; (0, m) else.
     jumps: np.ndarray
+    #: Positions of the switches' ramp currents ``ihs`` and ``ils`` in ``z`` (each
+    #: followed by its slope; -1: that switch does not ramp, :mod:`bucksim.engine.ramps`).
+    i_hs: int
+    i_ls: int
+    #: (4,) ``[rise_hs, fall_hs, rise_ls, fall_ls]`` [s]: the ramps' durations.
+    ramp_times: np.ndarray
+    #: (2, m) the diodes' currents while a channel ramps, ``iL - ihs`` (low-side diode)
+    #: and ``ils - iL`` (high-side body diode), with their curvature and
+    #: third-derivative constants, (2, n_sys).
+    Zd: np.ndarray
+    kzd: np.ndarray
+    k3zd: np.ndarray
 
 
 class PhaseProgram(NamedTuple):

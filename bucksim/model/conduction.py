@@ -120,4 +120,7 @@ UNITS = {"iL": "A", "vC": "V", "vo": "V", "io": "A", "ic": "A", "iin": "A", "vsw
 UNITS.update({"vs": "V", "vterm": "V", "isrc": "A", "icin": "A", "ilf": "A", "idamp": "A",
               "irp": "A", "vcin": "V", "vcd": "V"})
 UNITS.update({f"icin{k}": "A" for k in range(1, MAX_BANKS + 1)})
+# the switches' current ramps (stage_ramps): currents, slopes (times 1 ns), channel voltages
+UNITS.update({"ihs": "A", "khs": "A", "ils": "A", "kls": "A", "high_side_ramp": "A",
+              "low_side_ramp": "A", "high_side_ramp_voltage": "V", "low_side_ramp_voltage": "V"})
 UNITS.update({f"vcin{k}": "V" for k in range(2, MAX_BANKS + 1)})

@@ -96,6 +96,7 @@ from bucksim.model.input_network import input_network
 from bucksim.model.levels import Level, is_analog_loop, operating_levels
 from bucksim.model.parts import Diode, Mosfet, Scenario
 from bucksim.model.stage_input import INPUT_SIGNALS, InputRows
+from bucksim.model.stage_ramps import RAMP_STATES, RampRows, check_ramps_fit, ramp_switches
 
 #: The stage and the conduction rules it is read by (defined in conduction).
 __all__ = ["Stage", "CONDUCTION_NAMES", "CONTROLLER_UNIT", "GATE_HIGH", "GATE_LOW", "GATE_OFF",
@@ -105,7 +106,7 @@ __all__ = ["Stage", "CONDUCTION_NAMES", "CONTROLLER_UNIT", "GATE_HIGH", "GATE_LO
            "zero_current_states"]
 
 
-class Stage(InputRows):
+class Stage(InputRows, RampRows):
     """Linear systems and output maps for every (level, conduction state).
 
     System id ``s = ((level * n_modes + held) * n_bands + band) * N_CONDUCTION + conduction``
@@ -155,11 +156,18 @@ class Stage(InputRows):
         self.n_in = 0 if self.net is None else self.net.n
         #: position of the first input-network state
         self.i_in = N_STATES + int(self.node)
+        #: which switches ramp (stage_ramps), and where their [current, slope] states are
+        ramps = ramp_switches(scenario, self.node)
+        check_ramps_fit(scenario, *ramps)
+        first = self.i_in + self.n_in
+        self.i_hs = first if ramps[0] else -1
+        self.i_ls = first + 2 * ramps[0] if ramps[1] else -1
         #: position of the first controller state (analog loop)
-        self.i_ctl = self.i_in + self.n_in
+        self.i_ctl = first + 2 * (ramps[0] + ramps[1])
         self.n = self.i_ctl + (k + 1 if self.analog else 0)
+        ramp_names = sum((RAMP_STATES[j] for j in (0, 1) if ramps[j]), ())
         self.state_names = (STATE_NAMES + ((NODE_STATE,) if self.node else ())
-                            + (self.net.names if self.net is not None else ())
+                            + (self.net.names if self.net is not None else ()) + ramp_names
                             + (tuple(f"w{i + 1}" for i in range(k)) + ("vref",)
                                if self.analog else ()))
         self.plant_index = np.array([0, 1] + ([2] if self.node else [])
@@ -271,8 +279,12 @@ class Stage(InputRows):
             high = self._embed(np.array([rn - self.rs - self.r_hs, 0.0, vin + self.vf_hs]),
                                vn=-1.0)
         else:   # the body diode's node voltage: the cell's (carrying iL) + Vf - r_hs iL
-            high = self._cell_row(self.levels[level], True) + self._embed(
+            high = self._cell_row(self.levels[level], HIGH_DIODE) + self._embed(
                 np.array([rn - self.r_hs, 0.0, self.vf_hs]), vn=-1.0)
+        # ramp currents (stage_ramps): each clamp's diode carries what the ramp does not
+        open_extra = self._ramp_extra(OPEN)
+        low += open_extra - self._ramp_extra(LOW_DIODE)
+        high += self._ramp_extra(HIGH_DIODE) - open_extra
         return low, high
 
     def initial_state(self, x0) -> np.ndarray:
@@ -290,7 +302,7 @@ class Stage(InputRows):
         out = np.zeros(self.n)
         out[:N_STATES] = x0
         if self.net is not None:
-            out[self.i_in:self.i_ctl] = self.net.rest_state(self.levels[0].vin)
+            out[self.i_in:self.i_in + self.n_in] = self.net.rest_state(self.levels[0].vin)
         if self.analog:
             ctl = self.scenario.control
             out[-1] = 0.0 if ctl.soft_start > 0 else ctl.reference
@@ -322,6 +334,7 @@ class Stage(InputRows):
         if k == IDLE or (k == OPEN and not self.node):
             di = np.zeros(3)  # iL is held at exactly zero (OPEN is unused without Cn)
         elif k == OPEN:
+            # with ramps, + rn (ihs + ils) in vsw and + (ihs + ils) / Cn in vn' (below)
             # L iL' = vn - rn iL - vo - DCR iL, Cn vn' = -iL (the open node)
             di = (-vo - np.array([self.dcr + self.r_node, 0.0, 0.0])) / self.L
             di_vn = 1.0 / self.L
@@ -336,8 +349,13 @@ class Stage(InputRows):
         q = self.n_controller
         M = np.zeros((m, m))
         M[0], M[1] = self._embed(di, vn=di_vn if self.node else 0.0), self._embed(dv)
+        if k not in (IDLE, HIGH, LOW):
+            M[0] += self._ramp_extra(k) / self.L
         if self.node:
             M[self.i_node] = self._embed(dvn_row, vn=dvn)
+            if k == OPEN:
+                M[self.i_node] += (self._ramp_unit(0) + self._ramp_unit(1)) / cn
+        self._ramp_rows(M)
         if self.net is not None:
             self._with_network(M, lev, k, vo)
         if not self.analog:
@@ -365,14 +383,28 @@ class Stage(InputRows):
         """
         if name in ("u", "vref"):
             return self._controller_signal(name, system)
+        if name.endswith(("_ramp", "_ramp_voltage")):
+            return self._ramp_signal(name, system)
         if name in INPUT_SIGNALS or name.startswith("icin"):
             return self._input_signal(name, system)
         level, k = self.split_id(system)
         if name == "vsw" and self.net is not None and k in (HIGH, HIGH_DIODE):
             return self._cell_vsw(self.levels[level], k)    # the cell's voltage, less drops
         if name == "vsw" and self.node and k == OPEN:
-            return self._embed(np.array([-self.r_node, 0.0, 0.0]), vn=1.0)
-        return self._embed(self._signal3(name, system))
+            return self._embed(np.array([-self.r_node, 0.0, 0.0]), vn=1.0) + self._ramp_extra(k)
+        if name == "iin":
+            return self._drawn(k)
+        row = self._embed(self._signal3(name, system))
+        if name == "vsw":
+            return row + self._ramp_extra(k)
+        # a diode carries what a ramping channel does not (stage_ramps)
+        if k == LOW_DIODE and name in ("low_side", "low_side_body_diode", "switch_node"):
+            return row - self._ramp_unit(0) if row[0] != 0.0 else row
+        if k == HIGH_DIODE and name == "high_side_body_diode":
+            return row + self._ramp_unit(1)
+        if k == OPEN and name == "switch_node":
+            return row - self._ramp_unit(0) - self._ramp_unit(1)
+        return row
 
     def _controller_signal(self, name: str, system: int) -> np.ndarray:
         if not self.analog:
@@ -441,5 +473,6 @@ class Stage(InputRows):
         is :meth:`~bucksim.model.capacitance.NodeCurve.stored`, ``Cn vsw^2 / 2`` when
         linear)."""
         node = float(self.curves[level].stored(vsw)) if self.node else 0.0
-        net = self.net.stored_energy(x[self.i_in:self.i_ctl]) if self.net is not None else 0.0
+        net = (self.net.stored_energy(x[self.i_in:self.i_in + self.n_in])
+               if self.net is not None else 0.0)
         return 0.5 * self.L * x[0] ** 2 + 0.5 * self.C * x[1] ** 2 + node + net

@@ -36,14 +36,17 @@ from bucksim.engine.small_expm import expm_many
 from bucksim.model.input_network import input_network
 from bucksim.model.pulse_limits import open_loop_on_time
 from bucksim.model.stage import (
+    HIGH,
     HIGH_DIODE,
     IDLE,
+    LOW,
     LOW_DIODE,
     OPEN,
     Stage,
     node_capacitance,
     zero_current_states,
 )
+from bucksim.model.stage_ramps import RAMP_SCALE
 from bucksim.steady.newton import shoot
 from bucksim.steady.result import SteadyState, check_settings, periodic_scenario
 
@@ -61,7 +64,12 @@ class PeriodMap:
         self.on_time = float(open_loop_on_time(self.scenario.control,
                                                self.scenario.control.duty * T))
         bounds = np.cumsum([0.0] + phase_durations(self.scenario, self.on_time))
-        self._edges = bounds
+        # a ramp that runs its time ends at a gate edge plus its duration: no event there
+        hs, ls = self.scenario.high_side, self.scenario.low_side
+        spans = [0.0] + [t for t in (hs.rise_time, hs.fall_time, getattr(ls, "rise_time", 0.0),
+                                     getattr(ls, "fall_time", 0.0)) if t > 0.0]
+        self._edges = np.unique(np.add.outer(bounds, spans).ravel()) if ramp_indices(
+            self.stage) else bounds
         self._evented = zero_current_states(self.scenario.switching.strategy)
 
     def step(self, x):
@@ -85,6 +93,11 @@ class PeriodMap:
         count = res.t0.shape[0]
         T = self.scenario.period
         phi = expm_many(Ms[res.system], res.dt)      # every segment's, in one call
+        # the ramps' states are zero at a period's start and end (engine.ramps): the
+        # map neither reads nor returns them
+        hidden = ramp_indices(self.stage)
+        ramps = bool(hidden)
+        J[hidden, hidden] = 0.0
         for j in range(count):
             s = res.system[j]
             J = phi[j, :n, :n] @ J
@@ -95,6 +108,12 @@ class PeriodMap:
                             if j + 1 < count else -1)
             if S is not None:
                 J = S @ J
+            if ramps and j + 1 < count:
+                z_end = phi[j] @ np.append(res.x0[j], 1.0)
+                R = ramp_reset(self.stage, res.conduction[j], z_end[:n], res.x0[j + 1])
+                if R is not None:
+                    J = R @ J
+        J[hidden] = 0.0
         return J
 
 
@@ -123,10 +142,10 @@ def jump_matrix(stage, s, cond, nxt, at_edge, evented, x_next, s_next):
     if not at_edge and x_next is not None:
         level = stage.split_id(s)[0]
         if cond in evented and nxt in (IDLE, OPEN):
-            g = np.zeros(n)
-            g[0] = 1.0
-        elif cond == OPEN and nxt in (LOW_DIODE, HIGH_DIODE):
-            g = stage.clamp_rows(level)[0 if nxt == LOW_DIODE else 1][:n]
+            g = _diode_row(stage, cond)
+        elif cond == OPEN and nxt in (LOW_DIODE, HIGH_DIODE, HIGH, LOW):
+            # a clamp; or a turning-on channel's ramp ending at its own (engine.ramps)
+            g = stage.clamp_rows(level)[0 if nxt in (LOW_DIODE, LOW) else 1][:n]
         elif (cond == OPEN and nxt == OPEN and s_next != s
               and stage.split_id(s_next)[0] == level):
             g = np.zeros(n)         # an edge of the node capacitance's band: vn = edge
@@ -144,11 +163,53 @@ def jump_matrix(stage, s, cond, nxt, at_edge, evented, x_next, s_next):
     return base + np.outer(f_plus - base @ f_minus, g) / den
 
 
+def _diode_row(stage, cond) -> np.ndarray:
+    """The zero-current event's row: the diode's current, ``iL`` less a ramping
+    channel's (``iL`` itself for the low-side channel in diode emulation)."""
+    g = np.zeros(stage.n)
+    g[0] = -1.0 if cond == HIGH_DIODE else 1.0
+    ramp = stage.i_hs if cond == LOW_DIODE else stage.i_ls if cond == HIGH_DIODE else -1
+    if ramp >= 0:
+        g[ramp] = -g[0]
+    return g
+
+
+def ramp_reset(stage, cond, x_end, x_next):
+    """The linear reset of the ramps' states between two segments (None: none).
+
+    A ramp that runs on is continuous; one that ends is zeroed; one that starts
+    takes its current and slope from ``iL`` or from the ramp it follows
+    (:mod:`bucksim.engine.ramps`): rise ``k = RAMP_SCALE iL / t_r``, fall
+    ``i = I0``, ``k = -RAMP_SCALE I0 / t_f``."""
+    n = stage.n
+    R = None
+    sc = stage.scenario
+    times = ((sc.high_side.rise_time, sc.high_side.fall_time),
+             (getattr(sc.low_side, "rise_time", 0.0), getattr(sc.low_side, "fall_time", 0.0)))
+    for dev, i in enumerate((stage.i_hs, stage.i_ls)):
+        if i < 0:
+            continue
+        new, old = x_next[i:i + 2], x_end[i:i + 2]
+        if np.allclose(new, old, rtol=1e-9, atol=1e-300):
+            continue
+        R = np.eye(n) if R is None else R
+        R[i], R[i + 1] = 0.0, 0.0
+        if new[0] == 0.0 and new[1] == 0.0:
+            continue                            # the ramp ended
+        if new[0] == 0.0:                       # a turn-on: slope from iL
+            R[i + 1, 0] = RAMP_SCALE / times[dev][0]
+            continue
+        src = 0 if cond in (HIGH, LOW) else i  # a turn-off: from iL, or the rising ramp
+        R[i, src] = 1.0
+        R[i + 1, src] = -RAMP_SCALE / times[dev][1]
+    return R
+
+
 def _scale(x, x1, res, n=None):
     """Residual scale: each state's largest magnitude over the period and at its ends
-    (the first ``n`` states)."""
-    n = x.shape[0] if n is None else n
-    mags = np.abs(res.x0[:, :n]).max(axis=0) if res.x0.shape[0] else np.zeros_like(x)
+    (the first ``n`` states, or the states of the index array ``n``)."""
+    cols = np.arange(x.shape[0] if n is None else n) if np.ndim(n) == 0 else n
+    mags = np.abs(res.x0[:, cols]).max(axis=0) if res.x0.shape[0] else np.zeros_like(x)
     return np.maximum(np.maximum(mags, np.abs(x)), np.maximum(np.abs(x1), 1e-12))
 
 
@@ -210,32 +271,16 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
                          f"scenario has no controller state, got {controller!r}")
     check_settings(tol, max_iter, max_brute_cycles)
     pmap = PeriodMap(scenario)
-    x = initial_guess(scenario) if x0 is None else _start_state(x0, pmap.stage.n)
+    x = _start_vector(scenario, x0, pmap.stage.n, len(ramp_indices(pmap.stage)))
     n = x.shape[0]
-    # a period that starts with the high side on never reads the node's start value
-    # (the channel sets the node): shoot on [iL, vC] and carry vn along, so that
-    # Newton's damping is not judged on a state the map does not depend on
-    reduced = pmap.stage.node and pmap.on_time > 0
-    iv, node = pmap.stage.i_node, {"vn": x[pmap.stage.i_node]}
-
-    def full(xr):
-        return np.insert(xr, iv, node["vn"]) if reduced else xr
-
-    def step(xr):
-        if not reduced:
-            return pmap.step(xr)
-        x1, res = pmap.step(full(xr))
-        node["vn"] = x1[iv]
-        return np.delete(x1, iv), res
-
-    def jacobian(xr, x1, res, s):
-        J = pmap.monodromy(res)
-        return np.delete(np.delete(J, iv, 0), iv, 1) if reduced else J
+    red = _ShotStates(pmap, x)
+    full, step, jacobian, keep, iv = red.full, red.step, red.jacobian, red.keep, red.iv
+    reduced, node = red.reduced, red.node
 
     def scale(xr, x1, res):
-        return _scale(xr, x1, res, xr.shape[0])
+        return _scale(xr, x1, res, keep)
 
-    start = np.delete(x, iv) if reduced else x
+    start = x[keep]
     shot = shoot(step, start, jacobian=jacobian, scale=scale, tol=tol, max_iter=max_iter,
                  max_halvings=30, max_brute_cycles=0)
     used, block = 0, PRE_SETTLE_CYCLES
@@ -254,7 +299,7 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
         if not (res.success and np.all(np.isfinite(res.x_end))):
             break
         node["vn"] = res.x_end[iv]
-        again = np.delete(res.x_end, iv) if reduced else res.x_end
+        again = res.x_end[keep]
         shot = shoot(step, again, jacobian=jacobian, scale=scale, tol=tol, max_iter=max_iter,
                      max_halvings=30, max_brute_cycles=0)
     if not shot.success and max_brute_cycles > used:
@@ -265,8 +310,10 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
         settled = shot.message.split("; ", 1)[-1]
         shot = dataclasses.replace(shot, message=f"{last}, also after {used} settled "
                                                  f"periods; {settled}")
-    if reduced:
-        shot = dataclasses.replace(shot, x=np.insert(shot.x, iv, shot.aux.x_end[iv]))
+    if keep.size < n:
+        if reduced:
+            node["vn"] = shot.aux.x_end[iv]
+        shot = dataclasses.replace(shot, x=full(shot.x))
     if shot.method == "brute-force" and not shot.success:
         J = np.eye(n)       # settling failed: no period to linearise about
     else:
@@ -275,6 +322,56 @@ def open_loop_steady_state(scenario, x0=None, *, controller=None, tol: float = 1
     return SteadyState(x=shot.x, iterations=shot.iterations, residual=shot.residual,
                        floquet=mu, monodromy=J, method=shot.method, cycles=pmap.evaluations,
                        status=shot.status, message=shot.message)
+
+
+class _ShotStates:
+    """The states the shooting solves for, and the map and Jacobian on them.
+
+    A period that starts with the high side on never reads the node's start value
+    (the channel sets the node; unless its current ramps up first): shoot on the rest
+    and carry ``vn`` along, so that Newton's damping is not judged on a state the map
+    does not depend on. The
+    ramps' states are zero at every period's start (:mod:`bucksim.engine.ramps`):
+    not shot on either."""
+
+    def __init__(self, pmap, x):
+        stage, n = pmap.stage, x.shape[0]
+        self.pmap, self.n = pmap, n
+        # (a turn-on ramp leaves the node open for its rise time: then the map reads it)
+        self.reduced = (stage.node and pmap.on_time > 0
+                        and not (stage.i_hs >= 0 and stage.scenario.high_side.rise_time > 0))
+        self.iv, self.node = stage.i_node, {"vn": x[stage.i_node]}
+        hidden = ([self.iv] if self.reduced else []) + ramp_indices(stage)
+        self.keep = np.array([i for i in range(n) if i not in hidden], dtype=int)
+
+    def full(self, xr):
+        out = np.zeros(self.n)
+        out[self.keep] = xr
+        if self.reduced:
+            out[self.iv] = self.node["vn"]
+        return out
+
+    def step(self, xr):
+        x1, res = self.pmap.step(self.full(xr))
+        if self.reduced:
+            self.node["vn"] = x1[self.iv]
+        return x1[self.keep], res
+
+    def jacobian(self, xr, x1, res, s):
+        return self.pmap.monodromy(res)[np.ix_(self.keep, self.keep)]
+
+
+def ramp_indices(stage) -> list[int]:
+    """Positions of the switches' ramp states (current and slope) in the state."""
+    return [j for i in (stage.i_hs, stage.i_ls) if i >= 0 for j in (i, i + 1)]
+
+
+def _start_vector(scenario, x0, n: int, n_ramps: int) -> np.ndarray:
+    """The shooting's first state, ramps zero: the averaged guess, or the caller's."""
+    if x0 is not None and np.size(x0) == n:
+        return _start_state(x0, n)
+    x = initial_guess(scenario) if x0 is None else _start_state(x0, n - n_ramps)
+    return np.concatenate([x, np.zeros(n_ramps)])
 
 
 def _start_state(x0, n: int = 2) -> np.ndarray:

@@ -91,10 +91,11 @@ def run():
 
 
 def test_at_accepts_any_shape_and_gives_the_same_values_as_a_flat_array(run):
-    # the core rail has node capacitance (states iL, vC, vn); the same rail without it has two
+    # the core rail has node capacitance and both channels' ramps (states iL, vC, vn, ihs,
+    # khs, ils, kls); the same rail without node capacitance has two
     for r in (run, bucksim.simulate(without_node(short()))):
         n = len(r.stage.state_names)
-        assert n == (3 if r.stage.node else 2)
+        assert n == (7 if r.stage.node else 2)
         t = np.linspace(0.1, 0.9, 12).reshape(3, 4) * r.t_end
         x = r.at(t)
         assert x.shape == (3, 4, n)
@@ -249,18 +250,27 @@ def test_closed_loop_max_iter_and_tol_are_honoured(settled):
 def test_open_loop_x0_max_iter_and_tol_are_honoured():
     sc = short()
     stage = Stage(sc)
-    assert stage.state_names == ("iL", "vC", "vn")      # the core rail has node capacitance
+    # the core rail has node capacitance, and both channels ramp (forced PWM)
+    assert stage.state_names == ("iL", "vC", "vn", "ihs", "khs", "ils", "kls")
     x0 = np.array([1.0, 0.5])
     ss = bucksim.steady_state(sc, x0=x0, max_iter=0, max_brute_cycles=0)
     assert ss.status == 2 and "max_iter = 0" in ss.message
     assert ss.x.shape == (stage.n,) and np.array_equal(ss.x[:2], x0)
-    # a period starts with the high side on, which sets the node: the map of [iL, vC]
-    # never reads a start value of vn, and the state carries the node voltage the
-    # period from x0 ends with
-    node = bucksim.steady_state(sc, x0=[1.0, 0.5, 5.0], max_iter=0, max_brute_cycles=0)
-    assert np.array_equal(node.x, ss.x) and node.residual == ss.residual
-    one = bucksim.simulate(periodic_scenario(sc), x0=np.append(x0, 5.0))
-    assert ss.x[stage.i_node] == pytest.approx(one.x_end[stage.i_node], rel=1e-12, abs=1e-12)
+    # a period starts with the high side on, which sets the node when it closes at once
+    # (no rise time): the map of [iL, vC] never reads a start value of vn, and the state
+    # carries the node voltage the period from x0 ends with
+    instant = dataclasses.replace(sc, high_side=dataclasses.replace(sc.high_side,
+                                                                   rise_time=0.0))
+    ss0 = bucksim.steady_state(instant, x0=x0, max_iter=0, max_brute_cycles=0)
+    node = bucksim.steady_state(instant, x0=[1.0, 0.5, 5.0], max_iter=0, max_brute_cycles=0)
+    assert np.array_equal(node.x, ss0.x) and node.residual == ss0.residual
+    one = bucksim.simulate(periodic_scenario(instant),
+                           x0=np.concatenate([x0, [5.0], np.zeros(4)]))
+    assert ss0.x[stage.i_node] == pytest.approx(one.x_end[stage.i_node], rel=1e-12, abs=1e-12)
+    # with its rise time the channel's current ramps while the node is still open: the
+    # map reads vn, and the start value is kept
+    ramped = bucksim.steady_state(sc, x0=[1.0, 0.5, 5.0], max_iter=0, max_brute_cycles=0)
+    assert ramped.x[stage.i_node] == 5.0 and ramped.residual != ss.residual
     ss = bucksim.steady_state(sc, x0=x0)
     assert ss.success and ss.residual <= 1e-12
     # a tolerance the start already meets: no update at all

@@ -78,7 +78,10 @@ def test_stage_rows_are_the_error_amplifier_equations(node):
     the plant's (``stage.i_ctl``), after the node state when there is one."""
     sc = demo(node)
     st = Stage(sc)
-    plant_names = ("iL", "vC", "vn") if node else ("iL", "vC")
+    # with node capacitance the channels' current ramps join the plant (model.stage_ramps)
+    ramps = tuple(n for n in ("ihs", "khs", "ils", "kls") if n in st.state_names)
+    assert bool(ramps) == (node and sc.high_side.rise_time > 0)
+    plant_names = ("iL", "vC", "vn") + ramps if node else ("iL", "vC")
     assert st.state_names == plant_names + ("w1", "w2", "w3", "vref")
     assert st.node == node and st.i_ctl == len(plant_names)
     assert st.n_modes == 2 and st.matrices.shape[0] == 2 * N_CONDUCTION * len(st.levels)
@@ -111,7 +114,8 @@ def test_stage_rows_are_the_error_amplifier_equations(node):
         assert M[i_ref, -1] == slope and not np.any(M[i_ref, :-1])
     # u = C w + D H (vref - vo): the signal row
     s = 0 * N_CONDUCTION + LOW
-    values = {"iL": 1.0, "vC": 1.7, "vn": -0.02, "w1": 0.2, "w2": 0.3, "w3": 0.25, "vref": 1.8}
+    values = {"iL": 1.0, "vC": 1.7, "vn": -0.02, "w1": 0.2, "w2": 0.3, "w3": 0.25, "vref": 1.8,
+              "ihs": 0.0, "khs": 0.0, "ils": 0.0, "kls": 0.0}
     z = np.array([values[name] for name in st.state_names] + [1.0])
     want = r.C @ z[c0:c0 + 3] + r.D * H * (z[i_ref] - st.signal("vo", s) @ z)
     assert st.signal("u", s) @ z == pytest.approx(want, rel=1e-14)
@@ -130,7 +134,9 @@ def test_compensator_states_follow_scipy_between_switching_instants(node):
     sc = dataclasses.replace(sc, run=dataclasses.replace(sc.run, duration=None, cycles=50))
     run = bucksim.simulate(sc)
     st, seg = run.stage, run.segments
-    other = [i for i, name in enumerate(st.state_names) if name != "vn"]
+    # (and the ramps' states, which the loop sets at gate edges: engine.ramps)
+    other = [i for i, name in enumerate(st.state_names)
+             if name not in ("vn", "ihs", "khs", "ils", "kls")]
     opened = 0
     for k in range(len(seg) - 1):                   # every segment: 50 cycles, a few hundred
         z0 = np.append(seg.x0[k], 1.0)

@@ -69,32 +69,52 @@ def test_conduction_items_agree_in_ccm_with_small_ripple(strategy):
         assert rows[key]["simulated"] == pytest.approx(rows[key]["closed_form"], rel=1e-9), key
     # the node's charge: the closed form Cn (v_b - v_a)(V_p - (v_a + v_b)/2) per closing
     # switch at the averaged edge currents (derived; budget._node_charge) against the
-    # circuit's node state, where the clamp voltages move with the exact currents: ~1e-5
+    # circuit's node state: the high side closes at the end of its current ramp, when the
+    # diode's current has gone (-Vf); iL falls during the ramp, so the diode stops a
+    # little earlier and the node starts to rise: measured 6.7e-4 and 2.5e-4
     r = rows["switching.coss"]
-    assert r["simulated"] == pytest.approx(r["closed_form"], rel=1e-4)
+    assert r["simulated"] == pytest.approx(r["closed_form"], rel=2e-3)
 
 
 def test_overlap_energy_uses_the_exact_edge_currents():
-    """0.5 Vin i t_rise at each hard high-side turn-on, and at each turn-off the
-    channel's ramp against the node capacitance (the snubbed turn-off; its
-    integral is checked in tests/unit/test_node_engine.py), with i read from the
-    waveform at that instant."""
-    sc = rail()
-    ss = bucksim.steady_state(sc)
-    sc = dataclasses.replace(sc, run=dataclasses.replace(
-        sc.run, initial_current=ss.x[0], initial_voltage=ss.x[1]))
-    run = bucksim.simulate(sc)
-    seg = run.segments
-    on = np.nonzero(seg.conduction == HIGH)[0]
-    off = on + 1
-    i_on, i_off = seg.x0[on, 0], seg.x0[off[off < len(seg)], 0]
-    cn = 300e-12 + 600e-12
-    e_off = np.sum(snubbed_turn_off(12.0, i_off, 4e-9, cn))
-    want = (0.5 * 12.0 * np.sum(i_on) * 5e-9 + e_off) / (20 * sc.period)
-    got = run.summary().to_dict()["devices"]["high_side"]["switching"]["overlap"]
-    assert got == pytest.approx(want, rel=1e-12)
-    # every turn-on in CCM is from the low-side body diode: one recovery per period
-    assert np.all(seg.conduction[on[on > 0] - 1] == LOW_DIODE)
+    """Without node capacitance the overlap is a formula at the exact edge current:
+    0.5 Vin i t_rise at each hard high-side turn-on and 0.5 Vin i t_fall at each
+    turn-off (common practice), with i read from the waveform at that instant. With
+    it, the channel's current ramps are circuit and their integral follows the closed
+    forms at the same currents (derived, tests/validation/test_ramp_reference.py):
+    0.5 (Vin + Vf) i t_rise against the clamped diode, the snubbed turn-off to the
+    diode's clamp: within 1 % (measured 0.6 %: iL moves during each edge, and the
+    diode's drop r (i - i_hs) adds to the channel's voltage)."""
+    for cn in (0.0, 300e-12 + 600e-12):
+        sc = rail()
+        if cn == 0.0:
+            sc = dataclasses.replace(sc, high_side=dataclasses.replace(sc.high_side, coss=0.0),
+                                     low_side=dataclasses.replace(sc.low_side, coss=0.0))
+        ss = bucksim.steady_state(sc)
+        sc = dataclasses.replace(sc, run=dataclasses.replace(
+            sc.run, initial_current=ss.x[0], initial_voltage=ss.x[1]))
+        run = bucksim.simulate(sc)
+        seg = run.segments
+        ramps = run.stage.i_hs >= 0
+        assert ramps == (cn > 0)
+        if ramps:   # each ramp starts at a gate edge: its first segment's slope state
+            k = seg.x0[:, run.stage.i_hs + 1]
+            starts = np.nonzero(np.diff(np.r_[0.0, k]) != 0.0)[0]
+            i_on = seg.x0[starts[k[starts] > 0], 0]
+            i_off = seg.x0[starts[k[starts] < 0], run.stage.i_hs]
+        else:
+            on = np.nonzero(seg.conduction == HIGH)[0]
+            off = on + 1
+            i_on, i_off = seg.x0[on, 0], seg.x0[off[off < len(seg)], 0]
+        vf = sc.low_side.body_diode.vf if ramps else 0.0
+        e_off = np.sum(snubbed_turn_off(12.0 + vf, i_off, 4e-9, cn))
+        want = (0.5 * (12.0 + vf) * np.sum(i_on) * 5e-9 + e_off) / (20 * sc.period)
+        got = run.summary().to_dict()["devices"]["high_side"]["switching"]["overlap"]
+        assert got == pytest.approx(want, rel=1e-2 if ramps else 1e-12)
+        # every turn-on in CCM is from the low-side body diode: one recovery per period
+        on = np.nonzero(seg.conduction == HIGH)[0]
+        before = seg.conduction[on[on > 0] - 1]
+        assert np.all(before == LOW_DIODE) if not ramps else np.all(before != HIGH)
 
 
 def test_energy_balance_certifies_the_waveform_integrals_with_switching_and_core_booked():
@@ -137,7 +157,10 @@ def test_zero_dead_time_counts_every_hard_turn_on():
     other held, so each edge moves the node's whole swing: about 0.5 Cn Vin^2 fs per
     edge, Cn Vin^2 fs in all (derived: the charge Cn Vin moved through a closing switch
     from a source at Vin or ground)."""
-    sc = dataclasses.replace(rail(R=16.5, L=4.7e-6, dead=(0.0, 0.0)))
+    # (instant edges: a current ramp longer than a zero dead time is refused)
+    sc = rail(R=16.5, L=4.7e-6, dead=(0.0, 0.0))
+    sc = dataclasses.replace(sc, high_side=dataclasses.replace(sc.high_side, rise_time=0.0,
+                                                               fall_time=0.0))
     cc = crosscheck(sc)
     assert cc.summary["reverse_current"]
     row = {r["item"]: r for r in cc.rows}["switching.coss"]
@@ -183,7 +206,15 @@ def test_dcm_operating_point_is_the_textbook_conversion_ratio(strategy, D, R):
 
 @pytest.fixture(scope="module")
 def sensor():
+    """sensor_rail with instant edges: the DCM closed form's own checks (with the
+    channels' current ramps in the circuit its first-order ramp terms widen the rows,
+    crosscheck.RAMP_TOLERANCES; the bundled rail is checked in
+    test_every_row_carries_its_reason_and_tolerance)."""
     sc = load_scenario(SENSOR)
+    sc = dataclasses.replace(sc, high_side=dataclasses.replace(sc.high_side, rise_time=0.0,
+                                                               fall_time=0.0),
+                             low_side=dataclasses.replace(sc.low_side, rise_time=0.0,
+                                                          fall_time=0.0))
     run = simulate_settled(sc, None)
     return sc, run, crosscheck(sc, run=run)
 

@@ -47,6 +47,11 @@ def test_charge_is_conserved_at_the_cell(low_coss):
     width = s.window.stop - s.window.start
     src = s.source_current.mean * width
     drawn = s.devices["high_side"].mean * width
+    if "high_side_ramp" in run.signals:     # and the channel's current ramps (exact)
+        from bucksim.analysis.summarize import WindowIntegrals
+        from bucksim.analysis.windows import window_pieces
+        idx, ta, tb, za = window_pieces(run, s.window.start)
+        drawn += WindowIntegrals(run, idx, tb - ta, za, width).integral("high_side_ramp")
     node = node_transfers(run, s.window.start)
     jumps = node["conduction"] == HIGH
     stage = run.stage
