@@ -106,9 +106,6 @@ def _parts(scenario) -> dict:
             "t_rise": rise_delay(scenario)}
 
 
-RISE_GAIN = 1.0
-
-
 def _swing(p: dict, vo: float, ipk: float) -> dict:
     """The node's swing after the high side opens at ``ipk`` [A]: from ``Vin - (Rs +
     Rds_hs) Ipk`` on the series RLC (:func:`~bucksim.analysis.budget_ring.rlc_swing`)
@@ -136,7 +133,7 @@ def _swing(p: dict, vo: float, ipk: float) -> dict:
     square = rlc_square(L, R, cn, vo, v0, ipk, t_s) + (
         ramped_square(ipk, t_real, t_r) - ipk * ipk * t_s)
     # the ramp holds the node near v0 for the delay: the current rises on meanwhile
-    i_s += RISE_GAIN * (v0 - vo) * (t_real - t_s) / L
+    i_s += (v0 - vo) * (t_real - t_s) / L
     out.update(t_swing=t_real, v_swing=v_s, i_swing=i_s, swing_charge=cn * (v0 - v_s),
                swing_square=square)
     if out["clamped"]:

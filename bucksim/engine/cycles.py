@@ -163,13 +163,13 @@ def run_periods(tab, prog, ctl, cst, z, level, c_start, c_stop, buf, sc):
                     cond, r_dev = ramp_done(tab, z, cond, r_dev, r_on), NO_RAMP
                 level = level_at(level_times, level, t)
                 t_stop = segment_stop(level_times, level, t_ph_end, t_end)
-                if r_dev != NO_RAMP and r_end < t_stop:
-                    t_stop = r_end
                 search_ls = search_hs = False
                 if cond == OPEN:
                     cond, search_ls, search_hs, at_ls, at_hs = open_clamps(
                         tab, tab.Cls[level], tab.Chs[level], z)
                     cond, r_dev = ramp_takeover(tab, z, at_ls, at_hs, cond, r_dev, r_on)
+                if r_dev != NO_RAMP and r_end < t_stop:     # (not after a takeover)
+                    t_stop = r_end
                 if n_modes == 2:
                     held = hold_rule(ctl.settings, ctl.Ce[level], z, held)
                 if cond == OPEN and not band_known:

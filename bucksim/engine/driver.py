@@ -324,9 +324,7 @@ def _stage_tables(stage, table: TransitionTable) -> StageTables:
 
 def _ramp_fields(stage, Ms, bnd, e_il):
     """The ramps' positions, durations and diode-current rows (:mod:`bucksim.engine.ramps`)."""
-    hs, ls = stage.scenario.high_side, stage.scenario.low_side
-    times = np.array([hs.rise_time, hs.fall_time, getattr(ls, "rise_time", 0.0),
-                      getattr(ls, "fall_time", 0.0)], dtype=float)
+    times = stage.ramp_times
     Zd = np.array([e_il, -e_il])
     if stage.i_hs >= 0:
         Zd[0, stage.i_hs] = -1.0

@@ -162,6 +162,9 @@ class Stage(InputRows, RampRows):
         first = self.i_in + self.n_in
         self.i_hs = first if ramps[0] else -1
         self.i_ls = first + 2 * ramps[0] if ramps[1] else -1
+        #: (4,) [rise_hs, fall_hs, rise_ls, fall_ls] [s]: the ramps' durations
+        self.ramp_times = np.array([hs.rise_time, hs.fall_time, getattr(ls, "rise_time", 0.0),
+                                    getattr(ls, "fall_time", 0.0)], dtype=float)
         #: position of the first controller state (analog loop)
         self.i_ctl = first + 2 * (ramps[0] + ramps[1])
         self.n = self.i_ctl + (k + 1 if self.analog else 0)

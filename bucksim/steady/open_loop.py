@@ -65,9 +65,7 @@ class PeriodMap:
                                                self.scenario.control.duty * T))
         bounds = np.cumsum([0.0] + phase_durations(self.scenario, self.on_time))
         # a ramp that runs its time ends at a gate edge plus its duration: no event there
-        hs, ls = self.scenario.high_side, self.scenario.low_side
-        spans = [0.0] + [t for t in (hs.rise_time, hs.fall_time, getattr(ls, "rise_time", 0.0),
-                                     getattr(ls, "fall_time", 0.0)) if t > 0.0]
+        spans = [0.0] + [t for t in self.stage.ramp_times if t > 0.0]
         self._edges = np.unique(np.add.outer(bounds, spans).ravel()) if ramp_indices(
             self.stage) else bounds
         self._evented = zero_current_states(self.scenario.switching.strategy)
@@ -183,9 +181,7 @@ def ramp_reset(stage, cond, x_end, x_next):
     ``i = I0``, ``k = -RAMP_SCALE I0 / t_f``."""
     n = stage.n
     R = None
-    sc = stage.scenario
-    times = ((sc.high_side.rise_time, sc.high_side.fall_time),
-             (getattr(sc.low_side, "rise_time", 0.0), getattr(sc.low_side, "fall_time", 0.0)))
+    times = stage.ramp_times.reshape(2, 2)
     for dev, i in enumerate((stage.i_hs, stage.i_ls)):
         if i < 0:
             continue
