@@ -12,10 +12,12 @@ the segment's start: ``x = x0 + y`` with ``y(0) = 0`` and ``y' = A y + f0``,
     \int_0^d x\,dt = x_0 d + Y_1, \qquad
     \int_0^d x x^T dt = x_0 x_0^T d + x_0 Y_1^T + Y_1 x_0^T + Y_2,
 
-where ``Y_1 = [G_N(d) v_0]_y`` and ``Y_2 = [\mathrm{unvec}(Q_N(d) (v_0
-\otimes v_0))]_{yy}``, with ``G_N = int_0^d expm(N t) dt`` and ``Q_N =
-int_0^d expm((N (+) N) t) dt``, each the upper-right block of one block
-exponential (Van Loan [1]_), memoised per system and length.
+where ``Y_1 = [G_N(d) v_0]_y`` and ``Y_2 = [X]_{yy}``, with ``G_N = int_0^d
+expm(N t) dt`` and ``X = int_0^d expm(N t) v_0 v_0^T expm(N^T t) dt`` (linear in
+``v_0 v_0^T``: summed over the segments of one system and length), both by scaling
+and squaring on the integrals themselves (:mod:`bucksim.analysis.drift_integrals`;
+Van Loan's block exponential [1]_ of the Kronecker sum gives the same, at
+``O(k^6)``).
 
 Why about the start: the moments of ``z`` itself come from one block
 exponential of ``M (+) M`` that couples the constant drive (``Vin / L`` with
@@ -39,21 +41,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from bucksim.engine.small_expm import expm_many
-
-
-def _van_loan(A: np.ndarray, d: float) -> np.ndarray:
-    """``int_0^d expm(A t) dt``: upper-right block of ``expm([[A, I], [0, 0]] d)``."""
-    k = A.shape[0]
-    big = np.zeros((2 * k, 2 * k))
-    big[:k, :k] = A
-    big[:k, k:] = np.eye(k)
-    return expm_many(big[None], d)[0, :k, k:]
-
-
-def _kron_sum(A: np.ndarray) -> np.ndarray:
-    eye = np.eye(A.shape[0])
-    return np.kron(A, eye) + np.kron(eye, A)
+from bucksim.analysis.drift_integrals import drift_integrals
 
 
 def _drift_system(M: np.ndarray) -> np.ndarray:
@@ -65,6 +53,10 @@ def _drift_system(M: np.ndarray) -> np.ndarray:
     return N
 
 
+#: Groups of one system and length whose blocks are held at once (bounded memory).
+_GROUPS_AT_ONCE = 4096
+
+
 class SegmentMoments:
     """Memoised exact moments of segments of the systems ``matrices`` (shape ``(n_sys, m, m)``)."""
 
@@ -73,7 +65,9 @@ class SegmentMoments:
         self.m = matrices.shape[1]
         self.n = self.m - 1
         self._first: dict[tuple[int, float], np.ndarray] = {}
-        self._second: dict[tuple[int, float], np.ndarray] = {}
+        self._N: np.ndarray | None = None
+        #: groups of one system and length in the last :meth:`second_sums`
+        self.last_groups = 0
 
     def _start(self, s, z0):
         """``(x0, v0 = [0, f0])`` of a segment of system ``s`` starting at ``z0``."""
@@ -83,25 +77,27 @@ class SegmentMoments:
         return z0[:-1], v0
 
     def _g(self, s: int, d: float) -> np.ndarray:
-        """The first moment's Van Loan block of system ``s`` over ``d`` (memoised)."""
+        """The first moment's block ``G_N(d)[:n]`` of system ``s`` (memoised)."""
         key = (s, d)
         G = self._first.get(key)
         if G is None:
-            G = _van_loan(_drift_system(self.matrices[s]), d)[: self.n]
+            G = self._blocks(np.array([s]), np.array([d]), None)[0][0, : self.n]
             self._first[key] = G
         return G
 
-    def _q(self, s: int, d: float) -> np.ndarray:
-        """The second moment's Van Loan block of system ``s`` over ``d`` (memoised): the
-        rows of ``y (x) y`` only, the rest is never read."""
-        key = (s, d)
-        Q = self._second.get(key)
-        if Q is None:
-            n, k = self.n, 2 * self.n
-            full = _van_loan(_kron_sum(_drift_system(self.matrices[s])), d)
-            Q = full[(np.arange(n)[:, None] * k + np.arange(n)[None, :]).ravel()]
-            self._second[key] = Q
-        return Q
+    def _blocks(self, systems, lengths, Qs):
+        """``(G_N, X)`` of each group ``(systems[g], lengths[g])`` with ``Qs[g]`` (zero
+        when None): :func:`~bucksim.analysis.drift_integrals.drift_integrals`."""
+        if self._N is None:
+            self._N = np.array([_drift_system(M) for M in self.matrices])
+        k, n_g = 2 * self.n, systems.shape[0]
+        if Qs is None:
+            Qs = np.zeros((n_g, k, k))
+        G, X = np.empty((n_g, k, k)), np.empty((n_g, k, k))
+        drift_integrals(self._N, np.ascontiguousarray(systems, dtype=np.int64),
+                        np.ascontiguousarray(lengths, dtype=float),
+                        np.ascontiguousarray(Qs, dtype=float), G, X)
+        return G, X
 
     def first(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z dt`` over a segment of system ``s`` starting at ``z0`` (ends in 1)."""
@@ -118,15 +114,14 @@ class SegmentMoments:
         :meth:`second` over the segments of system ``s`` (``systems``, start states
         ``z0s`` as rows, ``lengths`` [s]); shape ``(n_systems, m, m)``.
 
-        Segments of one system and length share their Van Loan blocks, so each such
-        group is one batched product; a periodic window of ``N`` periods has as many
+        Segments of one system and length share their blocks, so each such group
+        is one batched product; a periodic window of ``N`` periods has as many
         groups as one period has segments. Lengths within 4 spacings of doubles at
         ``time_scale`` [s] (the window's absolute time, whose rounding every
         segment's length carries) count as one: the blocks are taken at the group's
         first length, the terms linear in the length at each segment's own.
         """
-        n, m = self.n, self.m
-        S = np.zeros((n_systems, m, m))
+        S = np.zeros((n_systems, self.m, self.m))
         systems = np.asarray(systems, dtype=np.int64)
         lengths = np.asarray(lengths, dtype=float)
         z0s = np.asarray(z0s, dtype=float)
@@ -140,35 +135,48 @@ class SegmentMoments:
         new = np.ones(order.shape[0], dtype=bool)
         new[1:] = (s_o[1:] != s_o[:-1]) | (b_o[1:] != b_o[:-1])
         bounds = np.append(np.flatnonzero(new), order.shape[0])
-        for u in range(bounds.shape[0] - 1):
+        starts = bounds[:-1]
+        self.last_groups = starts.shape[0]
+        for first in range(0, starts.shape[0], _GROUPS_AT_ONCE):
+            self._add_groups(S, order, bounds[first:first + _GROUPS_AT_ONCE + 1], s_o, d_o,
+                             z0s, lengths)
+        return S
+
+    def _add_groups(self, S, order, bounds, s_o, d_o, z0s, lengths):
+        """Add to ``S`` the groups ``bounds[u]:bounds[u + 1]`` of the sorted segments."""
+        n = self.n
+        starts = bounds[:-1]
+        # a group's integral is linear in sum v0 v0^T, v0 = [0, f0] (f0 = each
+        # segment's derivative at its start)
+        Qs = np.zeros((starts.shape[0], 2 * n, 2 * n))
+        for u in range(starts.shape[0]):
+            f0 = z0s[order[bounds[u]:bounds[u + 1]]] @ self.matrices[s_o[bounds[u]], :-1].T
+            Qs[u, n:, n:] = f0.T @ f0
+        G, X = self._blocks(s_o[starts], d_o[starts], Qs)
+        for u in range(starts.shape[0]):
             sel = order[bounds[u]:bounds[u + 1]]
-            s, d = int(s_o[bounds[u]]), float(d_o[bounds[u]])
+            s = int(s_o[bounds[u]])
             dd = lengths[sel]
-            G, Q = self._g(s, d), self._q(s, d)
             z = z0s[sel]
             x0 = z[:, :-1]
-            v0 = np.zeros((sel.shape[0], 2 * n))
-            v0[:, n:] = z @ self.matrices[s, :-1, :].T
-            y1 = v0 @ G.T
-            vv = (v0[:, :, None] * v0[:, None, :]).reshape(sel.shape[0], -1)
-            y2 = (vv @ Q.T).reshape(-1, n, n).sum(axis=0)
+            y1 = (z @ self.matrices[s, :-1].T) @ G[u, :n, n:].T
             xd = x0 * dd[:, None]
             ix = xd.sum(axis=0) + y1.sum(axis=0)
             xy = x0.T @ y1
             out = S[s]
-            out[:-1, :-1] += x0.T @ xd + xy + xy.T + y2
+            out[:-1, :-1] += x0.T @ xd + xy + xy.T + X[u, :n, :n]
             out[:-1, -1] += ix
             out[-1, :-1] += ix
             out[-1, -1] += dd.sum()
-        return S
 
     def second(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z z^T dt`` over a segment of system ``s`` starting at ``z0``."""
         s, d = int(s), float(d)
         n, m = self.n, self.m
         x0, v0 = self._start(s, z0)
-        y1 = self._g(s, d) @ v0
-        y2 = (self._q(s, d) @ np.kron(v0, v0)).reshape(n, n)
+        G, X = self._blocks(np.array([s]), np.array([d]), np.outer(v0, v0)[None])
+        y1 = G[0, :n] @ v0
+        y2 = X[0, :n, :n]
         ix = x0 * d + y1
         out = np.empty((m, m))
         out[:-1, :-1] = d * np.outer(x0, x0) + np.outer(x0, y1) + np.outer(y1, x0) + y2

@@ -22,6 +22,7 @@ COMPILE_SECONDS = {
     "bucksim.engine.cycles.run_cycles": 65.0,
     "bucksim.engine.kernels.evaluate": 4.0,
     "bucksim.analysis.pruned._candidates": 2.0,
+    "bucksim.analysis.drift_integrals.drift_integrals": 2.0,
 }
 
 
