@@ -43,16 +43,6 @@ import numpy as np
 
 from bucksim.analysis.drift_integrals import drift_integrals
 
-
-def _drift_system(M: np.ndarray) -> np.ndarray:
-    """``N = [[A, I], [0, 0]]`` for ``M = [[A, b], [0, 0]]``: ``[y, f]' = N [y, f]``."""
-    n = M.shape[0] - 1
-    N = np.zeros((2 * n, 2 * n))
-    N[:n, :n] = M[:-1, :-1]
-    N[:n, n:] = np.eye(n)
-    return N
-
-
 #: Groups of one system and length whose blocks are held at once (bounded memory).
 _GROUPS_AT_ONCE = 4096
 
@@ -65,46 +55,43 @@ class SegmentMoments:
         self.m = matrices.shape[1]
         self.n = self.m - 1
         self._first: dict[tuple[int, float], np.ndarray] = {}
-        self._N: np.ndarray | None = None
+        self._A = np.ascontiguousarray(matrices[:, :-1, :-1])
         #: groups of one system and length in the last :meth:`second_sums`
         self.last_groups = 0
 
     def _start(self, s, z0):
-        """``(x0, v0 = [0, f0])`` of a segment of system ``s`` starting at ``z0``."""
-        n = self.n
-        v0 = np.zeros(2 * n)
-        v0[n:] = self.matrices[s, :-1, :] @ z0
-        return z0[:-1], v0
+        """``(x0, f0)`` of a segment of system ``s`` starting at ``z0``: its state and
+        derivative there."""
+        return z0[:-1], self.matrices[s, :-1, :] @ z0
 
     def _g(self, s: int, d: float) -> np.ndarray:
-        """The first moment's block ``G_N(d)[:n]`` of system ``s`` (memoised)."""
+        """The first moment's block ``H = [G_N(d)]_{yf}`` of system ``s`` (memoised):
+        ``Y_1 = H f0``."""
         key = (s, d)
-        G = self._first.get(key)
-        if G is None:
-            G = self._blocks(np.array([s]), np.array([d]), None)[0][0, : self.n]
-            self._first[key] = G
-        return G
+        H = self._first.get(key)
+        if H is None:
+            H = self._blocks(np.array([s]), np.array([d]), None)[0][0]
+            self._first[key] = H
+        return H
 
-    def _blocks(self, systems, lengths, Qs):
-        """``(G_N, X)`` of each group ``(systems[g], lengths[g])`` with ``Qs[g]`` (zero
+    def _blocks(self, systems, lengths, Qfs):
+        """``(H, X_yy)`` of each group ``(systems[g], lengths[g])`` with ``Qfs[g]`` (zero
         when None): :func:`~bucksim.analysis.drift_integrals.drift_integrals`."""
-        if self._N is None:
-            self._N = np.array([_drift_system(M) for M in self.matrices])
-        k, n_g = 2 * self.n, systems.shape[0]
-        if Qs is None:
-            Qs = np.zeros((n_g, k, k))
-        G, X = np.empty((n_g, k, k)), np.empty((n_g, k, k))
-        drift_integrals(self._N, np.ascontiguousarray(systems, dtype=np.int64),
+        n, n_g = self.n, systems.shape[0]
+        if Qfs is None:
+            Qfs = np.zeros((n_g, n, n))
+        H, X = np.empty((n_g, n, n)), np.empty((n_g, n, n))
+        drift_integrals(self._A, np.ascontiguousarray(systems, dtype=np.int64),
                         np.ascontiguousarray(lengths, dtype=float),
-                        np.ascontiguousarray(Qs, dtype=float), G, X)
-        return G, X
+                        np.ascontiguousarray(Qfs, dtype=float), H, X)
+        return H, X
 
     def first(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z dt`` over a segment of system ``s`` starting at ``z0`` (ends in 1)."""
         s, d = int(s), float(d)
-        x0, v0 = self._start(s, z0)
+        x0, f0 = self._start(s, z0)
         out = np.empty(self.m)
-        out[:-1] = x0 * d + self._g(s, d) @ v0
+        out[:-1] = x0 * d + self._g(s, d) @ f0
         out[-1] = d
         return out
 
@@ -148,23 +135,23 @@ class SegmentMoments:
         starts = bounds[:-1]
         # a group's integral is linear in sum v0 v0^T, v0 = [0, f0] (f0 = each
         # segment's derivative at its start)
-        Qs = np.zeros((starts.shape[0], 2 * n, 2 * n))
+        Qfs = np.empty((starts.shape[0], n, n))
         for u in range(starts.shape[0]):
             f0 = z0s[order[bounds[u]:bounds[u + 1]]] @ self.matrices[s_o[bounds[u]], :-1].T
-            Qs[u, n:, n:] = f0.T @ f0
-        G, X = self._blocks(s_o[starts], d_o[starts], Qs)
+            Qfs[u] = f0.T @ f0
+        H, X = self._blocks(s_o[starts], d_o[starts], Qfs)
         for u in range(starts.shape[0]):
             sel = order[bounds[u]:bounds[u + 1]]
             s = int(s_o[bounds[u]])
             dd = lengths[sel]
             z = z0s[sel]
             x0 = z[:, :-1]
-            y1 = (z @ self.matrices[s, :-1].T) @ G[u, :n, n:].T
+            y1 = (z @ self.matrices[s, :-1].T) @ H[u].T
             xd = x0 * dd[:, None]
             ix = xd.sum(axis=0) + y1.sum(axis=0)
             xy = x0.T @ y1
             out = S[s]
-            out[:-1, :-1] += x0.T @ xd + xy + xy.T + X[u, :n, :n]
+            out[:-1, :-1] += x0.T @ xd + xy + xy.T + X[u]
             out[:-1, -1] += ix
             out[-1, :-1] += ix
             out[-1, -1] += dd.sum()
@@ -172,11 +159,11 @@ class SegmentMoments:
     def second(self, s: int, z0: np.ndarray, d: float) -> np.ndarray:
         """``int_0^d z z^T dt`` over a segment of system ``s`` starting at ``z0``."""
         s, d = int(s), float(d)
-        n, m = self.n, self.m
-        x0, v0 = self._start(s, z0)
-        G, X = self._blocks(np.array([s]), np.array([d]), np.outer(v0, v0)[None])
-        y1 = G[0, :n] @ v0
-        y2 = X[0, :n, :n]
+        m = self.m
+        x0, f0 = self._start(s, z0)
+        H, X = self._blocks(np.array([s]), np.array([d]), np.outer(f0, f0)[None])
+        y1 = H[0] @ f0
+        y2 = X[0]
         ix = x0 * d + y1
         out = np.empty((m, m))
         out[:-1, :-1] = d * np.outer(x0, x0) + np.outer(x0, y1) + np.outer(y1, x0) + y2

@@ -25,10 +25,20 @@ def _drift(A):
     return N
 
 
-def _compiled(N, d, Q):
-    G, X = np.empty((1,) + N.shape), np.empty((1,) + N.shape)
-    drift_integrals(N[None], np.zeros(1, dtype=np.int64), np.array([d]), Q[None], G, X)
-    return G[0], X[0]
+def _compiled(A, d, Qf):
+    """(H, X_yy) by the kernel for N = _drift(A), Q = [[0, 0], [0, Qf]]."""
+    H, X = np.empty((1,) + A.shape), np.empty((1,) + A.shape)
+    drift_integrals(A[None], np.zeros(1, dtype=np.int64), np.array([d]), Qf[None], H, X)
+    return H[0], X[0]
+
+
+def _reference(A, d, Qf):
+    """(H, X_yy) from Van Loan's blocks of the whole drift system."""
+    n = A.shape[0]
+    Q = np.zeros((2 * n, 2 * n))
+    Q[n:, n:] = Qf
+    G, X = drift_integrals_reference(_drift(A), d, Q)
+    return G[:n, n:], X[:n, :n]
 
 
 def _lc_stage(L=330e-9, C=880e-6, R=0.05, r=3e-3):
@@ -54,49 +64,48 @@ CASES = {
 @pytest.mark.parametrize("name", list(CASES))
 def test_against_van_loan_blocks(name):
     A, d = CASES[name]
-    N = _drift(A)
     rng = np.random.default_rng(3)
-    F = rng.normal(size=(5, N.shape[0]))
-    Q = F.T @ F
-    G, X = _compiled(N, d, Q)
-    G_ref, X_ref = drift_integrals_reference(N, d, Q)
-    assert np.allclose(G, G_ref, rtol=1e-10, atol=1e-12 * np.abs(G_ref).max())
+    F = rng.normal(size=(5, A.shape[0]))
+    Qf = F.T @ F
+    H, X = _compiled(A, d, Qf)
+    H_ref, X_ref = _reference(A, d, Qf)
+    assert np.allclose(H, H_ref, rtol=1e-10, atol=1e-12 * np.abs(H_ref).max())
     assert np.allclose(X, X_ref, rtol=1e-10, atol=1e-11 * np.abs(X_ref).max())
 
 
 @pytest.mark.parametrize("name", ["lc over a period", "stiff pole", "unstable"])
 def test_against_quadrature(name):
     A, d = CASES[name]
+    n = A.shape[0]
     N = _drift(A)
-    v = np.linspace(1.0, 2.0, N.shape[0])
-    Q = np.outer(v, v)
-    _, X = _compiled(N, d, Q)
+    f0 = np.linspace(1.0, 2.0, n)
+    v0 = np.concatenate((np.zeros(n), f0))
+    _, X = _compiled(A, d, np.outer(f0, f0))
 
     def integrand(t):
-        e = expm(N * t) @ v
-        return np.outer(e, e)
+        y = (expm(N * t) @ v0)[:n]
+        return np.outer(y, y)
 
     ref, _ = quad_vec(integrand, 0.0, d, epsabs=0.0, epsrel=1e-12, limit=2000)
     assert np.allclose(X, ref, rtol=1e-9, atol=1e-11 * np.abs(ref).max())
 
 
 def test_zero_drive_and_zero_length_are_exact():
-    N = _drift(_lc_stage())
-    G, X = _compiled(N, 1e-6, np.zeros_like(N))
+    A = _lc_stage()
+    H, X = _compiled(A, 1e-6, np.zeros_like(A))
     assert np.all(X == 0.0)
-    G, X = _compiled(N, 0.0, np.eye(N.shape[0]))
-    assert np.all(G == 0.0) and np.all(X == 0.0)
+    H, X = _compiled(A, 0.0, np.eye(2))
+    assert np.all(H == 0.0) and np.all(X == 0.0)
 
 
 def test_many_groups_equal_each_alone():
-    N1, N2 = _drift(_lc_stage()), _drift(_lc_stage(R=0.5))
-    Ns = np.array([N1, N2])
+    As = np.array([_lc_stage(), _lc_stage(R=0.5)])
     systems = np.array([0, 1, 0, 1], dtype=np.int64)
     lengths = np.array([1e-6, 2e-6, 3e-7, 0.0])
     rng = np.random.default_rng(11)
-    Qs = np.array([(lambda f: f.T @ f)(rng.normal(size=(3, 4))) for _ in range(4)])
-    G, X = np.empty_like(Qs), np.empty_like(Qs)
-    drift_integrals(Ns, systems, lengths, Qs, G, X)
+    Qs = np.array([(lambda f: f.T @ f)(rng.normal(size=(3, 2))) for _ in range(4)])
+    H, X = np.empty_like(Qs), np.empty_like(Qs)
+    drift_integrals(As, systems, lengths, Qs, H, X)
     for g in range(4):
-        Gg, Xg = _compiled(Ns[systems[g]], lengths[g], Qs[g])
-        assert np.array_equal(G[g], Gg) and np.array_equal(X[g], Xg)
+        Hg, Xg = _compiled(As[systems[g]], lengths[g], Qs[g])
+        assert np.array_equal(H[g], Hg) and np.array_equal(X[g], Xg)

@@ -60,3 +60,25 @@ def test_many_segments_at_once_equal_the_sum_of_each():
     assert np.allclose(S, ref, rtol=1e-11, atol=1e-13 * np.abs(ref).max())
     assert mom.last_groups == 2           # one block per system: the ulp apart merged
     assert mom.second_sums(systems[:0], z0s[:0], lengths[:0], 2).shape == (2, 3, 3)
+
+
+def test_a_stage_with_its_node_against_quadrature():
+    """Four states (iL, vC, the node's voltage and an input cell's), a stiff node pole
+    beside the LC ring and a constant drive; numbers our own."""
+    A = np.array([[-1e4, -3e6, 3e6, 0.0],
+                  [1.1e3, -20.0, 0.0, 0.0],
+                  [-6e8, 0.0, -5e7, 5e7],
+                  [0.0, 0.0, 2e5, -4e5]])
+    M = np.zeros((5, 5))
+    M[:4, :4] = A
+    M[3, 4] = 4e5 * 12.0
+    mom = SegmentMoments(M[None])
+    z0 = np.array([2.0, 3.3, 0.4, 11.9, 1.0])
+    for d in (3e-8, 1.3e-6):
+        got = mom.second(0, z0, d)
+        ref = _quad(M, z0, d)
+        assert np.allclose(got, ref, rtol=1e-10, atol=1e-12 * np.abs(ref).max())
+        S = mom.second_sums(np.zeros(3, dtype=np.int64), np.array([z0, 0.5 * z0 + 0.5, z0]),
+                            np.full(3, d), 1)
+        ref3 = 2 * ref + _quad(M, 0.5 * z0 + 0.5, d)
+        assert np.allclose(S[0], ref3, rtol=1e-10, atol=1e-12 * np.abs(ref3).max())
