@@ -59,6 +59,8 @@ MODE_SOLVER_FAILED = 3           # a steady-state solve failed
 
 #: Conduction states of the idle interval (no switch conducts; the node open).
 _IDLE_STATES = tuple(CONDUCTION_NAMES.index(n) for n in ("idle", "open"))
+#: The pulse's freewheel: the low side or its diode carries the current back to zero.
+_FREEWHEEL_STATES = tuple(CONDUCTION_NAMES.index(n) for n in ("low", "low-diode"))
 #: Geometric step of the bracket search, and how far it may go [factor of the guess].
 _GROW, _REACH = 1.6, 1e4
 
@@ -416,7 +418,13 @@ def _checked(result, run, period, t_on, count):
     seg = run.segments
     vth = result.threshold
     peak = float(run.at(t_on)[0, 0])
-    idle = np.flatnonzero(np.isin(seg.conduction, _IDLE_STATES) & (seg.t0 >= t_on))
+    # the idle interval follows the freewheel: the open node of the dead time right
+    # after the pulse is the swing to the low clamp, not idling
+    after = seg.t0 >= t_on
+    freewheel = np.flatnonzero(np.isin(seg.conduction, _FREEWHEEL_STATES) & after)
+    if freewheel.size:
+        after &= np.arange(len(seg)) > freewheel[0]
+    idle = np.flatnonzero(np.isin(seg.conduction, _IDLE_STATES) & after)
     out = dataclasses.replace(result, period=period, switching_frequency=1.0 / period,
                               on_time=t_on, peak_current=peak, run=run, evaluations=count,
                               summary=run.summary(cycles=1))

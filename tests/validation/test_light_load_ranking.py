@@ -105,7 +105,7 @@ def test_pulse_skipping_row_pulses_at_the_charge_balance_rate(asleep):
     def rate(t):
         return skip.load_current / min_on_charge(sc, t)
 
-    # 163 kHz at t_min, 129 kHz with the 10 ns dead time added (152 kHz measured)
+    # 163 kHz at t_min, 129 kHz with the 10 ns dead time added (158 kHz measured)
     assert rate(t_min + sc.switching.dead_time[0]) < skip.switching_frequency < rate(t_min)
     assert skip.duty == pytest.approx(skip.switching_frequency * t_min, rel=1e-12)
     # fewer gate charges than the clock: it beats fixed-frequency diode emulation, and
@@ -137,8 +137,9 @@ def test_boundary_says_where_pfm_hands_over_to_the_clock(capsys):
     # balance, derived); there the idle interval is about nothing, the output crosses the
     # threshold on a lobe of the node's ring, and the exact, lossy stage's period lies
     # within one ring period 2 pi sqrt(L Cn) of the clock's (derived: lobes are a ring
-    # period apart; at 0.1 % less load the orbit moves by one lobe, 1.002 MHz -> 912 kHz,
-    # so no tighter bound holds whatever the rounding)
+    # period apart; near the boundary the rate is not even monotone in load, 920.0 kHz at
+    # 0.05 % less load and 911.3 kHz at 0.05 % more, so no tighter bound holds whatever
+    # the rounding)
     from bucksim.cli.main import main
     pfm = boundary_json(capsys, "--pfm-peak-current", "0.4 A")["pfm"]
     sc = load_scenario(RAIL)

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -238,3 +239,22 @@ def test_open_loop_on_time_below_the_minimum_is_raised_or_skipped(skip):
     assert np.allclose(steady.x, bucksim.steady_state(
         dataclasses.replace(sc, control=Control(mode="open-loop", duty=0.1))).x,
         rtol=1e-9, atol=1e-12)     # both solved to a residual of 1e-12 of the scale
+
+
+def test_pfm_idle_interval_starts_where_the_freewheel_ends():
+    # with node capacitance the node is open in the dead time right after the pulse as
+    # well (its swing to the low clamp); the idle interval is where the current is back
+    # at zero [CB]: toff = L Ipk / Vo after the on-time, within 10 % (the losses, the dead
+    # time and the swing move it; the bundled radio rail, its parts read from the file)
+    from bucksim.studies.profile import load_scenario_and_profile
+    root = Path(__file__).resolve().parents[2]
+    sc, _ = load_scenario_and_profile(root / "scenarios" / "radio_rail_3v3_controller_supply.toml")
+    r = pfm_steady_state(with_level(sc, LoadLevel("current", 0.01)), peak_current=0.4,
+                         threshold=3.3)
+    assert r.success, r.message
+    seg = r.run.segments
+    k = int(np.searchsorted(seg.t0, r.idle_start))
+    assert CONDUCTION_NAMES[seg.conduction[k]] in ("idle", "open")
+    assert abs(float(r.run.at(r.idle_start, "iL")[0])) < 1e-6 * r.peak_current
+    toff = sc.inductor.inductance * r.peak_current / 3.3
+    assert r.idle_start - r.on_time == pytest.approx(toff, rel=0.1)
