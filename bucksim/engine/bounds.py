@@ -246,6 +246,59 @@ def _cubic(f, s1, s2, B3, u):
     return f + u * (s1 + u * (0.5 * s2 - u * B3 / 6.0))
 
 
+#: A reach is returned within this share of the root below it (a proof needs only a
+#: lower bound; the march it steps is refined on the exact solution afterwards).
+REACH_RTOL = 2.0 ** -40
+
+
+@njit(cache=True, inline="always")
+def _lower_root(f, s1, s2, B3, a, b):
+    """The largest point found with ``p > 0`` below the root of ``p`` in ``[a, b]``
+    (``p(a) > 0 >= p(b)``, ``p`` monotone there), within :data:`REACH_RTOL` of it:
+    false position with the Illinois halving (Dowell & Jarratt, BIT 11, 1971; from
+    memory), bisection where a step would leave the bracket."""
+    fa = _cubic(f, s1, s2, B3, a)
+    fb = _cubic(f, s1, s2, B3, b)
+    side = 0
+    for _ in range(200):
+        if not b - a > REACH_RTOL * b:
+            break
+        x = b - fb * (b - a) / (fb - fa)
+        if not a < x < b:
+            x = 0.5 * (a + b)
+            if not a < x < b:
+                break
+        fx = _cubic(f, s1, s2, B3, x)
+        if fx > 0.0:
+            a, fa = x, fx
+            if side == 1:
+                fb *= 0.5
+            side = 1
+        else:
+            b, fb = x, fx
+            if side == -1:
+                fa *= 0.5
+            side = -1
+    return a
+
+
+@njit(cache=True, inline="always")
+def _root_scale(f, s1, s2, B3):
+    """A length on the scale of the first root of ``f + s1 u + s2 u^2 / 2 - B3 u^3 / 6``
+    (``f > 0``): the least of ``f / |s1|``, ``sqrt(2 f / |s2|)`` and ``cbrt(6 f / B3)``
+    that exist, at least 1e-300."""
+    u = np.inf
+    if s1 != 0.0:
+        u = min(u, f / abs(s1))
+    if s2 != 0.0:
+        u = min(u, np.sqrt(2.0 * f / abs(s2)))
+    if B3 > 0.0:
+        u = min(u, np.cbrt(6.0 * f / B3))
+    if not u < np.inf:
+        return 1e-300
+    return max(u, 1e-300)
+
+
 @njit(cache=True, _nrt=False)
 def reach3(f, s1, s2, B3):
     """Proven distance over which a function with value ``f > 0``, first and second
@@ -282,7 +335,9 @@ def reach3(f, s1, s2, B3):
         if b == np.inf:
             if B3 == 0.0 and (s2 > 0.0 or (s2 == 0.0 and s1 >= 0.0)):
                 return np.inf             # p grows (or stays) for ever
-            b = max(2.0 * a, 1e-300)
+            # start the doubling at the polynomial's own scale, not at 1e-300 (from there
+            # a nanosecond is ~970 doublings); any start brackets the same root
+            b = max(2.0 * a, _root_scale(f, s1, s2, B3))
             found = False
             for _ in range(2100):
                 if _cubic(f, s1, s2, B3, b) <= 0.0:
@@ -294,15 +349,7 @@ def reach3(f, s1, s2, B3):
         if _cubic(f, s1, s2, B3, b) > 0.0:
             a = b
             continue
-        for _ in range(200):              # p(a) > 0 >= p(b), p monotone on [a, b]
-            mid = 0.5 * (a + b)
-            if not a < mid < b:
-                break
-            if _cubic(f, s1, s2, B3, mid) > 0.0:
-                a = mid
-            else:
-                b = mid
-        return a
+        return _lower_root(f, s1, s2, B3, a, b)
     return np.inf
 
 

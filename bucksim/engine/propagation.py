@@ -31,7 +31,9 @@ def plain_args(kernel):
     ``int64``, numba compiles one copy and the caller converts its value; the values,
     and so the results, are the same. Python calls are typed as before (no literals).
     """
-    typing = kernel.get_call_template
+    typing = getattr(kernel, "get_call_template", None)
+    if typing is None:      # NUMBA_DISABLE_JIT=1 (debugging): a plain Python function
+        return kernel
 
     def get_call_template(args, kws):
         return typing(tuple(_plain(a) for a in args), kws)
@@ -55,6 +57,13 @@ def apply(E, s, k, z, tmp):
         z[1] = E[s, k, 1, 0] * z0 + E[s, k, 1, 1] * z1 + E[s, k, 1, 2] * z2
         z[2] = E[s, k, 2, 0] * z0 + E[s, k, 2, 1] * z1 + E[s, k, 2, 2] * z2
         return
+    if m == 4:  # with the switch node
+        z0, z1, z2, z3 = z[0], z[1], z[2], z[3]
+        z[0] = E[s, k, 0, 0] * z0 + E[s, k, 0, 1] * z1 + E[s, k, 0, 2] * z2 + E[s, k, 0, 3] * z3
+        z[1] = E[s, k, 1, 0] * z0 + E[s, k, 1, 1] * z1 + E[s, k, 1, 2] * z2 + E[s, k, 1, 3] * z3
+        z[2] = E[s, k, 2, 0] * z0 + E[s, k, 2, 1] * z1 + E[s, k, 2, 2] * z2 + E[s, k, 2, 3] * z3
+        z[3] = E[s, k, 3, 0] * z0 + E[s, k, 3, 1] * z1 + E[s, k, 3, 2] * z2 + E[s, k, 3, 3] * z3
+        return
     for i in range(m):
         acc = 0.0
         for j in range(m):
@@ -76,23 +85,45 @@ def derivative(Ms, s, z, row):
 @plain_args
 @njit(cache=True, _nrt=False)
 def taylor_step(Ms, s, z, u, tmp):
-    """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER, for short ``u``.
+    """z <- sum_j (M_s u)^j / j! z over j <= TAYLOR_ORDER, for short ``u``, by Horner's
+    rule (``a <- z + (u / j) M_s a`` from ``j = TAYLOR_ORDER`` down to 1).
 
-    ``tmp`` holds at least ``2 m`` entries: the current term and the product.
+    ``tmp`` holds at least ``2 m`` entries: the iterate and its successor.
     """
     m = z.shape[0]
+    A = Ms[s]
     for i in range(m):
-        tmp[i] = z[i]                      # term_0 = z
-    for j in range(1, TAYLOR_ORDER + 1):
+        tmp[i] = z[i]                      # a = z
+    for j in range(TAYLOR_ORDER, 0, -1):
         c = u / j
         for i in range(m):
             v = 0.0
             for q in range(m):
-                v += Ms[s, i, q] * tmp[q]
-            tmp[m + i] = c * v             # term_j = (u / j) M term_{j-1}
+                v += A[i, q] * tmp[q]
+            tmp[m + i] = z[i] + c * v
         for i in range(m):
             tmp[i] = tmp[m + i]
-            z[i] += tmp[i]
+    for i in range(m):
+        z[i] = tmp[i]
+
+
+@njit(cache=True, inline="always")
+def taylor_step4(Ms, s, z, u):
+    """:func:`taylor_step` for a stage with its switch node (``m = 4``), in registers."""
+    z0, z1, z2, z3 = z[0], z[1], z[2], z[3]
+    a0, a1, a2, a3 = z0, z1, z2, z3
+    m00, m01, m02, m03 = Ms[s, 0, 0], Ms[s, 0, 1], Ms[s, 0, 2], Ms[s, 0, 3]
+    m10, m11, m12, m13 = Ms[s, 1, 0], Ms[s, 1, 1], Ms[s, 1, 2], Ms[s, 1, 3]
+    m20, m21, m22, m23 = Ms[s, 2, 0], Ms[s, 2, 1], Ms[s, 2, 2], Ms[s, 2, 3]
+    m30, m31, m32, m33 = Ms[s, 3, 0], Ms[s, 3, 1], Ms[s, 3, 2], Ms[s, 3, 3]
+    for j in range(TAYLOR_ORDER, 0, -1):
+        c = u / j
+        b0 = z0 + c * (m00 * a0 + m01 * a1 + m02 * a2 + m03 * a3)
+        b1 = z1 + c * (m10 * a0 + m11 * a1 + m12 * a2 + m13 * a3)
+        b2 = z2 + c * (m20 * a0 + m21 * a1 + m22 * a2 + m23 * a3)
+        b3 = z3 + c * (m30 * a0 + m31 * a1 + m32 * a2 + m33 * a3)
+        a0, a1, a2, a3 = b0, b1, b2, b3
+    z[0], z[1], z[2], z[3] = a0, a1, a2, a3
 
 
 @njit(cache=True, inline="always")
@@ -131,5 +162,7 @@ def advance(Ms, E, h, s, z, d, tmp):
     if r > 0.0:
         if z.shape[0] == 3:
             taylor_step3(Ms, s, z, r)
+        elif z.shape[0] == 4:
+            taylor_step4(Ms, s, z, r)
         else:
             taylor_step(Ms, s, z, r, tmp)
