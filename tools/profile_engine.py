@@ -16,7 +16,8 @@ buckets ``perf``'s samples by the nearest kernel below each address::
 
 Cases: ``plain`` (forced PWM, two states), ``node`` (node capacitance), ``ramps``
 (node and the channels' current ramps), ``dcm-node`` (diode emulation, the node
-ringing). "(other)" is everything outside the kernels: Python, imports, buffers.
+ringing), ``analog`` (the analog voltage-mode loop in DCM). "(other)" is everything
+outside the kernels: Python, imports, buffers.
 Relies on numba internals (the cache's pickle layout, the code library's JIT engine);
 a tool for contributors, not part of bucksim.
 """
@@ -49,7 +50,7 @@ def _rail(case: str):
         return rail("forced-pwm", 0.66, 100_000, coss=node, edges=(5e-9, 5e-9))
     if case == "dcm-node":
         return rail("diode-emulation", 30.0, 100_000, coss=node)
-    raise SystemExit(f"unknown case {case!r}: plain, node, ramps or dcm-node")
+    raise SystemExit(f"unknown case {case!r}: plain, node, ramps, dcm-node or analog")
 
 
 def _cached_names(cache_dir: str) -> set[str]:
@@ -98,7 +99,11 @@ def run_and_map(case: str, out: str) -> None:
 
     import bucksim.engine.driver as driver
 
-    rate, _ = engine_rate(_rail(case))
+    if case == "analog":
+        from bench_engine import closed_loop_rate
+        rate = closed_loop_rate(200_000, implementation="analog")
+    else:
+        rate, _ = engine_rate(_rail(case))
     print(f"{case}: {rate:.3g} cycles/s")
     cache = os.environ.get("NUMBA_CACHE_DIR")
     if not cache:
