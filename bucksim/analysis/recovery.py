@@ -43,8 +43,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import expm
 
+from bucksim.engine.small_expm import expm_many
 from bucksim.model.parts import Mosfet
 from bucksim.model.stage import HIGH, HIGH_DIODE, IDLE, LOW, LOW_DIODE
 
@@ -193,7 +193,7 @@ class ChargeGains:
         q(d) = e^{-d/\tau} q(0) + g_{s,d}\, z(0),
 
     ``g_{s,d}`` the first ``m`` entries of the last row of the block
-    exponential (one ``scipy.linalg.expm`` per pair; Van Loan 1978, in the module's
+    exponential (one compiled ``expm_many`` per pair; Van Loan 1978, in the module's
     References). Without
     conduction the block is diagonal, ``g = 0``, and the charge decays as
     ``e^{-d/\tau}``: no exponential is needed.
@@ -221,7 +221,7 @@ class ChargeGains:
             big[:m, :m] = M
             big[m, :m] = self.rows[key[0]]
             big[m, m] = -1.0 / self.tau
-            g = expm(big * key[1])[m, :m].copy()
+            g = expm_many(big[None], key[1])[0, m, :m].copy()
             self._cache[key] = g
         return g
 

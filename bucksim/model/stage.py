@@ -129,6 +129,7 @@ class Stage(InputRows, RampRows):
 
     def __init__(self, scenario: Scenario):
         self.scenario = scenario
+        self._signal_rows: dict[tuple[str, int], np.ndarray] = {}
         self.levels = operating_levels(scenario)
         self.analog = is_analog_loop(scenario)
         self.loop = None
@@ -375,7 +376,9 @@ class Stage(InputRows, RampRows):
         return M
 
     def signal(self, name: str, system: int) -> np.ndarray:
-        """Row vector ``c`` with ``signal = c @ z`` in ``system``.
+        """Row vector ``c`` with ``signal = c @ z`` in ``system`` (read-only: one array per
+        name and system, built once; the steady state's Jacobian asks for the same rows
+        every period).
 
         Names: ``iL``, ``vC``, ``vo``, ``io``, ``ic``, ``iin`` (current drawn
         from the ideal source), ``vsw``, ``vin``, and the device currents
@@ -384,6 +387,15 @@ class Stage(InputRows, RampRows):
         channels carry iL, the high-side body diode carries -iL). In an
         analog loop also ``u`` (compensator output [V]) and ``vref`` [V].
         """
+        key = (name, int(system))
+        row = self._signal_rows.get(key)
+        if row is None:
+            row = np.array(self._signal_row(name, system), dtype=float)
+            row.flags.writeable = False
+            self._signal_rows[key] = row
+        return row
+
+    def _signal_row(self, name: str, system: int) -> np.ndarray:
         if name in ("u", "vref"):
             return self._controller_signal(name, system)
         if name.endswith(("_ramp", "_ramp_voltage")):
