@@ -96,6 +96,14 @@ class PeriodMap:
         hidden = ramp_indices(self.stage)
         ramps = bool(hidden)
         J[hidden, hidden] = 0.0
+        if ramps and count:
+            # a ramp that starts at the period's first edge: its slope is read from the
+            # start state (the map's input has the ramps at zero)
+            x_start = res.x0[0].copy()
+            x_start[hidden] = 0.0
+            R = ramp_reset(self.stage, res.conduction[-1], x_start, res.x0[0])
+            if R is not None:
+                J = R @ J
         for j in range(count):
             s = res.system[j]
             J = phi[j, :n, :n] @ J
