@@ -3,8 +3,9 @@
 Every metric is a linear or quadratic functional of the augmented state
 ``z = [iL, vC, 1]`` (``[iL, vC, vn, 1]`` with node capacitance), so it is a
 sum over segments of the exact moments ``int z dt`` and ``int z z^T dt``
-(:mod:`bucksim.analysis.moments`: block exponentials after Van Loan [1]_,
-taken about each segment's start state). RMS values, losses,
+(:mod:`bucksim.analysis.moments`, taken about each segment's start state; their matrix
+integrals, which Van Loan [1]_ writes as blocks of one exponential, by scaling and
+squaring in :mod:`bucksim.analysis.drift_integrals`). RMS values, losses,
 powers and the energy balance are therefore exact to rounding. Extrema are
 located on the analytic solution (zeros of the derivative).
 

@@ -1,7 +1,7 @@
 """Matrix exponentials of many small matrices in one compiled call.
 
-The transition tables, the phase exponentials and the Van Loan blocks of a
-steady-state point are some 80 exponentials of 3 x 3 to 32 x 32 matrices;
+The transition tables, the phase exponentials, the steady state's monodromy and the
+recovery charge's blocks of a steady-state point are some 80 exponentials of 3 x 3 to 32 x 32 matrices;
 ``scipy.linalg.expm`` spends about 30 us of Python around each (a 3 x 3 takes
 a few microseconds of arithmetic). :func:`expm_many` computes a whole stack in
 one numba call by the scaling-and-squaring method with the [13/13] Padé
@@ -28,8 +28,7 @@ from numba import njit
 
 #: 1-norm bound of the scaled matrix for the [13/13] approximant (Higham 2005).
 THETA_13 = 5.371920351148152
-#: Above this size the plain loops lose to BLAS (the Van Loan block of a stage with
-#: an input filter is 200 x 200): ``scipy.linalg.expm`` takes those.
+#: Above this size the plain loops lose to BLAS: ``scipy.linalg.expm`` takes those.
 LARGEST = 32
 #: Past this many squarings (a 1-norm above 5.4 x 2^64 ~ 1e20: no physical stage over one
 #: period; a capacitance of 1e-300 F is one) the matrix goes to ``scipy.linalg.expm`` too,
