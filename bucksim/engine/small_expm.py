@@ -1,8 +1,8 @@
 """Matrix exponentials of many small matrices in one compiled call.
 
 The transition tables, the phase exponentials, the steady state's monodromy and the
-recovery charge's blocks of a steady-state point are some 80 exponentials of 3 x 3 to 32 x 32 matrices;
-``scipy.linalg.expm`` spends about 30 us of Python around each (a 3 x 3 takes
+recovery charge's blocks of a steady-state point are some 80 exponentials of 3 x 3
+to 32 x 32 matrices; ``scipy.linalg.expm`` spends about 30 us of Python around each (a 3 x 3 takes
 a few microseconds of arithmetic). :func:`expm_many` computes a whole stack in
 one numba call by the scaling-and-squaring method with the [13/13] Padé
 approximant [1]_: ``A`` is scaled by ``2^-s`` until its 1-norm is at most
