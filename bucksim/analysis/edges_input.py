@@ -50,17 +50,19 @@ def jump_energies(run, idx, tau_a, z_a, cond) -> dict:
     net, lo, hi = stage.net, stage.i_in, stage.i_in + stage.n_in
     caps = np.array([name.startswith("vc") for name in net.names])
     loss, supply = np.zeros(len(v_b)), np.zeros(len(v_b))
-    for j, (k, va, vb) in enumerate(zip(idx[jump], v_a, v_b, strict=True)):
-        level = stage.split_id(seg.system[k])[0]
+    levels = np.array([stage.split_id(s)[0] for s in seg.system[idx[jump]]], dtype=int)
+    post = z_j[:, lo:hi]
+    for level in np.unique(levels):     # one curve and supply voltage per level
+        j = levels == level
         curve, vs = stage.curves[level], stage.levels[level].vin
-        q = float(curve.charge(va, vb))
-        post = z_j[j, lo:hi]
-        dx = net.b_d * q
-        pre = post - dx
-        q_src = q + float(np.sum(net.storage[caps] * dx[caps]))    # the banks' share left
+        va, vb = v_a[j], v_b[j]
+        q = np.asarray(curve.charge(va, vb), dtype=float)
+        dx = np.outer(q, net.b_d)
+        pre = post[j] - dx
+        q_src = q + dx[:, caps] @ net.storage[caps]     # the banks' share left
         supply[j] = vs * q_src
-        loss[j] = (net.stored_energy(pre) - net.stored_energy(post) + supply[j]
-                   - (float(curve.stored(vb)) - float(curve.stored(va))))
+        stored = 0.5 * (pre * pre - post[j] * post[j]) @ net.storage
+        loss[j] = stored + supply[j] - (curve.stored(vb) - curve.stored(va))
     out["jump"][jump] = True
     out["v_b"][jump], out["loss"][jump], out["supply"][jump] = v_b, loss, supply
     return out
