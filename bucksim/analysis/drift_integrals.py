@@ -42,6 +42,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from bucksim.engine.small_expm import norm_1
+
 #: Largest ``||N h||_1`` of the base step.
 THETA = 0.5
 #: Taylor order of the base step.
@@ -136,13 +138,8 @@ def drift_integrals(As, systems, lengths, Qfs, H_out, X_out):
         A = As[systems[g]]
         Qf = Qfs[g]
         d = lengths[g]
-        # ||N||_1 of N = [[A, I], [0, 0]]: A's column sums, plus one
-        norm = 1.0
-        for j in range(n):
-            col = 0.0
-            for i in range(n):
-                col += abs(A[i, j])
-            norm = max(norm, col)
+        # ||N||_1 of N = [[A, I], [0, 0]]: A's largest column sum, or the identity's 1
+        norm = max(norm_1(A), 1.0)
         h, n_sq = d, 0
         while h * norm > THETA:
             h *= 0.5

@@ -61,8 +61,8 @@ def jump_energies(run, idx, tau_a, z_a, cond) -> dict:
         pre = post[j] - dx
         q_src = q + dx[:, caps] @ net.storage[caps]     # the banks' share left
         supply[j] = vs * q_src
-        stored = 0.5 * (pre * pre - post[j] * post[j]) @ net.storage
-        loss[j] = stored + supply[j] - (curve.stored(vb) - curve.stored(va))
+        loss[j] = (net.stored_energy(pre) - net.stored_energy(post[j]) + supply[j]
+                   - (curve.stored(vb) - curve.stored(va)))
     out["jump"][jump] = True
     out["v_b"][jump], out["loss"][jump], out["supply"][jump] = v_b, loss, supply
     return out

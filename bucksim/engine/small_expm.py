@@ -100,9 +100,9 @@ def _powers(out, base, keep, a6, a4, a2, c6, c4, c2, c0):
             out[i, j] = base[i, j] + x if keep else x
 
 
-@njit(cache=True)
-def _expm_one(A, coef, out, w):
-    """``out <- expm(A)``; ``w``: work space of shape ``(8, n, n)``."""
+@njit(cache=True, inline="always")
+def norm_1(A):
+    """The 1-norm of a square matrix: its largest column sum of magnitudes."""
     n = A.shape[0]
     norm = 0.0
     for j in range(n):
@@ -110,6 +110,14 @@ def _expm_one(A, coef, out, w):
         for i in range(n):
             col += abs(A[i, j])
         norm = max(norm, col)
+    return norm
+
+
+@njit(cache=True)
+def _expm_one(A, coef, out, w):
+    """``out <- expm(A)``; ``w``: work space of shape ``(8, n, n)``."""
+    n = A.shape[0]
+    norm = norm_1(A)
     s = 0
     if norm > THETA_13:
         s = int(math.ceil(math.log2(norm / THETA_13)))
@@ -240,4 +248,4 @@ def expm_many(mats, scales=None) -> np.ndarray:
     return out
 
 
-__all__ = ["expm_many", "THETA_13"]
+__all__ = ["expm_many", "norm_1", "THETA_13"]

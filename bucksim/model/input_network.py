@@ -88,10 +88,12 @@ class InputNetwork:
         capacitors at ``vs``, currents zero."""
         return np.array([vs if name.startswith("vc") else 0.0 for name in self.names])
 
-    def stored_energy(self, x) -> float:
-        """Energy [J] in the network's capacitors and inductors at state ``x``."""
+    def stored_energy(self, x):
+        """Energy [J] in the network's capacitors and inductors at state ``x`` (a float;
+        one per row when ``x`` holds states as rows)."""
         x = np.asarray(x, dtype=float)
-        return float(0.5 * np.sum(self.storage * x * x))
+        e = 0.5 * (x * x) @ self.storage
+        return float(e) if x.ndim == 1 else e
 
 
 def input_network(scenario) -> InputNetwork | None:
